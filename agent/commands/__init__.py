@@ -1,0 +1,1 @@
+"""Command groups of the ``lethe`` CLI; each module exposes ``register(subparsers)``."""
