@@ -132,6 +132,10 @@ SCHEMA: dict[str, dict[str, Field]] = {
         "audio_interval_minutes": Field(NUM, 10.0, _range(1.0, 1440.0)),
         "gps_interval_minutes": Field(NUM, 10.0, _range(0.1, 1440.0)),
         "accel_rate_hz": Field(NUM, 10.0, _range(1.0, 200.0)),
+        "accel_burst_seconds": Field(NUM, 60.0, _range(1.0, 86400.0),
+                                     "length of each accelerometry recording burst"),
+        "accel_interval_minutes": Field(NUM, 10.0, _range(1.0, 1440.0),
+                                        "a burst starts this often (duty cycling saves battery)"),
         "mood_prompts_per_day": Field(int, 8, _range(1, 48)),
         "emotions": Field(list, list(DEFAULT_EMOTIONS), _names),
         "mood_scale_min": Field(int, 1, _range(0, 10)),
@@ -365,6 +369,10 @@ def _cross_checks(p: dict, source: str) -> None:
     if c["sound_k_min"] > c["sound_k_max"]:
         raise PolicyError(source, "codebook.sound_k_max",
                           f"value {c['sound_k_max']} must be at least sound_k_min = {c['sound_k_min']}")
+    if s["accel_burst_seconds"] > s["accel_interval_minutes"] * 60:
+        raise PolicyError(source, "schedule.accel_burst_seconds",
+                          f"value {s['accel_burst_seconds']} is longer than the burst interval "
+                          f"({s['accel_interval_minutes']} minutes)")
     if p["retention"]["settle_seconds"] >= p["retention"]["raw_seconds"]:
         raise PolicyError(source, "retention.settle_seconds",
                           f"value {p['retention']['settle_seconds']} must be shorter than raw_seconds = "
