@@ -1,0 +1,1 @@
+"""The participant's side: enrolment, status, pause, withdrawal, background service."""

@@ -1,0 +1,181 @@
+"""Per-user background service: a systemd user unit on Linux, a launchd agent on macOS.
+
+The agent runs with low CPU and IO priority, restarts on failure and logs into
+the home.  ``install`` writes the file and enables it; with ``dry_run`` (and on
+platforms with neither service manager) it only returns the file and the
+commands, so the participant can see exactly what would be done.
+"""
+
+from __future__ import annotations
+
+import os
+import shlex
+import shutil
+import subprocess
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..errors import StateError
+
+UNIT_NAME = "lethe-agent.service"
+LAUNCHD_LABEL = "org.lethe.agent"
+
+
+@dataclass
+class ServicePlan:
+    manager: str  # "systemd", "launchd" or "none"
+    path: Path | None
+    content: str
+    enable: list[list[str]] = field(default_factory=list)
+    disable: list[list[str]] = field(default_factory=list)
+
+    def describe(self) -> str:
+        lines = [f"service manager: {self.manager}"]
+        if self.path:
+            lines.append(f"file: {self.path}")
+        lines += ["", self.content.rstrip(), ""]
+        if self.enable:
+            lines.append("commands to enable:")
+            lines += ["  " + shlex.join(c) for c in self.enable]
+        return "\n".join(lines)
+
+
+def lethe_command() -> list[str]:
+    """How to start this very installation: the console script, else ``python -m agent.cli``."""
+    exe = shutil.which("lethe")
+    if exe:
+        return [str(Path(exe).resolve())]
+    return [sys.executable, "-m", "agent.cli"]
+
+
+def detect_manager() -> str:
+    if sys.platform == "darwin":
+        return "launchd"
+    if sys.platform.startswith("linux") and shutil.which("systemctl"):
+        return "systemd"
+    return "none"
+
+
+def systemd_unit(home_root: Path, command: list[str]) -> str:
+    exec_start = " ".join(shlex.quote(c) for c in command + ["--home", str(home_root), "run"])
+    return f"""[Unit]
+Description=lethe on-device study agent (destroys raw drops, keeps coarse codes)
+Documentation=file://{home_root}/README-lethe.txt
+After=default.target
+
+[Service]
+Type=simple
+ExecStart={exec_start}
+Environment=LETHE_HOME={home_root}
+Environment=NUMBA_CACHE_DIR={home_root}/cache/numba
+Restart=on-failure
+RestartSec=10
+Nice=15
+CPUSchedulingPolicy=idle
+IOSchedulingClass=idle
+UMask=0077
+StandardOutput=append:{home_root}/logs/service.out
+StandardError=append:{home_root}/logs/service.out
+
+[Install]
+WantedBy=default.target
+"""
+
+
+def launchd_plist(home_root: Path, command: list[str]) -> str:
+    args = "".join(f"\n      <string>{_xml(c)}</string>" for c in command + ["--home", str(home_root), "run"])
+    return f"""<?xml version="1.0" encoding="UTF-8"?>
+<!DOCTYPE plist PUBLIC "-//Apple//DTD PLIST 1.0//EN" "http://www.apple.com/DTDs/PropertyList-1.0.dtd">
+<plist version="1.0">
+  <dict>
+    <key>Label</key>
+    <string>{LAUNCHD_LABEL}</string>
+    <key>ProgramArguments</key>
+    <array>{args}
+    </array>
+    <key>EnvironmentVariables</key>
+    <dict>
+      <key>LETHE_HOME</key>
+      <string>{_xml(str(home_root))}</string>
+      <key>NUMBA_CACHE_DIR</key>
+      <string>{_xml(str(home_root))}/cache/numba</string>
+    </dict>
+    <key>RunAtLoad</key>
+    <true/>
+    <key>KeepAlive</key>
+    <dict>
+      <key>SuccessfulExit</key>
+      <false/>
+    </dict>
+    <key>ProcessType</key>
+    <string>Background</string>
+    <key>LowPriorityIO</key>
+    <true/>
+    <key>Nice</key>
+    <integer>15</integer>
+    <key>Umask</key>
+    <integer>63</integer>
+    <key>StandardOutPath</key>
+    <string>{_xml(str(home_root))}/logs/service.out</string>
+    <key>StandardErrorPath</key>
+    <string>{_xml(str(home_root))}/logs/service.out</string>
+  </dict>
+</plist>
+"""
+
+
+def _xml(s: str) -> str:
+    return s.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+
+
+def plan(home, manager: str | None = None, command: list[str] | None = None) -> ServicePlan:
+    manager = manager or detect_manager()
+    command = command or lethe_command()
+    root = Path(home.root)
+    if manager == "launchd":
+        path = Path.home() / "Library" / "LaunchAgents" / f"{LAUNCHD_LABEL}.plist"
+        return ServicePlan("launchd", path, launchd_plist(root, command),
+                           enable=[["launchctl", "load", "-w", str(path)]],
+                           disable=[["launchctl", "unload", "-w", str(path)]])
+    config = Path(os.environ.get("XDG_CONFIG_HOME", Path.home() / ".config"))
+    path = config / "systemd" / "user" / UNIT_NAME
+    p = ServicePlan("systemd" if manager == "systemd" else "none", path, systemd_unit(root, command),
+                    enable=[["systemctl", "--user", "daemon-reload"],
+                            ["systemctl", "--user", "enable", "--now", UNIT_NAME]],
+                    disable=[["systemctl", "--user", "disable", "--now", UNIT_NAME]])
+    return p
+
+
+def install(home, *, dry_run: bool = False, manager: str | None = None) -> ServicePlan:
+    p = plan(home, manager)
+    if dry_run:
+        return p
+    if p.manager == "none":
+        raise StateError("no supported service manager (systemd user session or launchd) found; "
+                         "use 'lethe service install --dry-run' to see the unit and run it yourself")
+    p.path.parent.mkdir(parents=True, exist_ok=True)
+    p.path.write_text(p.content, encoding="utf-8")
+    for cmd in p.enable:
+        _run(cmd)
+    return p
+
+
+def remove(home, *, dry_run: bool = False, manager: str | None = None) -> ServicePlan:
+    p = plan(home, manager)
+    if dry_run or p.manager == "none":
+        return p
+    for cmd in p.disable:
+        _run(cmd, check=False)
+    if p.path.exists():
+        p.path.unlink()
+    if p.manager == "systemd":
+        _run(["systemctl", "--user", "daemon-reload"], check=False)
+    return p
+
+
+def _run(cmd, check=True):
+    r = subprocess.run(cmd, capture_output=True, text=True)
+    if check and r.returncode != 0:
+        raise StateError(f"'{shlex.join(cmd)}' failed (exit {r.returncode}): {r.stderr.strip()}")
+    return r
