@@ -1,0 +1,319 @@
+"""Typed co-occurrence graph of hourly episodes, with a degree cap and W(θ).
+
+Terminology (see ``docs/graph.md``):
+
+node
+    A pair ``(kind, label)`` with both parts strings, e.g. ``("hour", "14")``,
+    ``("place", "P3")``, ``("mood", "calm")``.  Only the kinds listed in
+    ``policy.graph.nodes`` are used.
+co-occurrence
+    Two nodes present in the same episode co-occur once for that episode.
+counts
+    The symmetric matrix of co-occurrence counts (zero diagonal), no cap.
+degree cap
+    No node keeps more than ``m = policy.graph.degree_cap`` edges.  Edges are
+    admitted greedily, each only while both ends still have spare degree, in one
+    of two documented orders (``policy.graph.cap_rule``):
+
+    ``"arrival"``
+        episodes in time order (``utc``), and within an episode the node pairs
+        in index order; an edge is considered at its first co-occurrence.  As
+        degrees only grow, a pair refused at its first co-occurrence can never
+        be admitted later, so this is a greedy pass over distinct pairs sorted
+        by first co-occurrence.
+    ``"strongest"``
+        distinct pairs by decreasing count; ties by first co-occurrence (the
+        arrival order above), which is total, so the result is deterministic.
+
+Everything is :mod:`scipy.sparse`; construction is vectorised with numpy except
+for the greedy cap, which loops once over the distinct pairs.
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Iterable, Mapping, Sequence
+
+import numpy as np
+import scipy.sparse as sp
+
+from .policy import NODE_KINDS
+
+TIME_KINDS = ("hour", "weekday", "week")
+CAP_RULES = ("arrival", "strongest")
+
+
+def _label_key(label: str):
+    """Natural order: numbers numerically, ``P2`` before ``P10``."""
+    parts = re.split(r"(\d+)", label)
+    return tuple((0, int(p), "") if p.isdigit() else (1, 0, p) for p in parts if p != "")
+
+
+def episode_nodes(episode: Mapping, kinds: Sequence[str] = NODE_KINDS) -> list[tuple[str, str]]:
+    """The nodes an episode contributes, restricted to ``kinds``.
+
+    ``place``, ``sound`` and ``motion`` equal to ``None`` contribute nothing (an
+    hour without location data still links its time, sound, motion and moods).
+    """
+    out: list[tuple[str, str]] = []
+    for kind in kinds:
+        if kind == "mood":
+            for m in episode.get("moods") or ():
+                out.append(("mood", str(m)))
+            continue
+        value = episode.get(kind)
+        if value is None:
+            continue
+        out.append((kind, str(value)))
+    return list(dict.fromkeys(out))  # de-duplicate, keep order
+
+
+def _cap_order_arrival(first: np.ndarray, count: np.ndarray) -> np.ndarray:
+    return np.argsort(first, kind="stable")
+
+
+def _cap_order_strongest(first: np.ndarray, count: np.ndarray) -> np.ndarray:
+    return np.lexsort((first, -count))
+
+
+def greedy_degree_cap(rows: np.ndarray, cols: np.ndarray, order: np.ndarray, n_nodes: int,
+                      degree_cap: int) -> np.ndarray:
+    """Admit pairs ``(rows[k], cols[k])`` in ``order`` while both ends have spare degree.
+
+    Returns a boolean mask over the pairs.
+    """
+    if degree_cap < 1:
+        raise ValueError(f"degree_cap must be a positive integer, got {degree_cap!r}")
+    deg = np.zeros(n_nodes, dtype=np.int64)
+    keep = np.zeros(len(rows), dtype=bool)
+    r = rows.tolist()
+    c = cols.tolist()
+    d = deg.tolist()
+    for k in order.tolist():
+        i, j = r[k], c[k]
+        if d[i] < degree_cap and d[j] < degree_cap:
+            d[i] += 1
+            d[j] += 1
+            keep[k] = True
+    return keep
+
+
+def _theta_key(key) -> tuple[str, str]:
+    if isinstance(key, str):
+        parts = key.split("|")
+        if len(parts) != 2:
+            raise ValueError(f"theta key {key!r}: expected 'kind|kind' such as 'hour|place'")
+        return tuple(sorted(parts))  # type: ignore[return-value]
+    a, b = key
+    return tuple(sorted((str(a), str(b))))  # type: ignore[return-value]
+
+
+class CooccurrenceGraph:
+    """Typed co-occurrence graph.  Build with :meth:`from_episodes`.
+
+    Attributes
+    ----------
+    nodes : list of (kind, label)
+        Ordered by kind (policy order) and then by natural label order.
+    index : dict
+        Node to row/column index.
+    kinds : ndarray of str
+        Kind of each node.
+    counts : scipy.sparse.csr_matrix
+        Symmetric co-occurrence counts (float64, zero diagonal), no cap.
+    capped : scipy.sparse.csr_matrix
+        Symmetric 0/1 adjacency after the degree cap.
+    type_pairs : list of (str, str)
+        Kind pairs (each pair alphabetically sorted, list sorted) with at least
+        one capped edge.
+    degree_cap, cap_rule : int, str
+    n_episodes : int
+    """
+
+    def __init__(self, nodes, counts, capped, degree_cap, cap_rule, n_episodes):
+        self.nodes = list(nodes)
+        self.index = {n: i for i, n in enumerate(self.nodes)}
+        self.kinds = np.array([k for k, _ in self.nodes], dtype=str)
+        self.counts = counts.tocsr()
+        self.capped = capped.tocsr()
+        self.degree_cap = int(degree_cap)
+        self.cap_rule = cap_rule
+        self.n_episodes = int(n_episodes)
+        upper = sp.triu(self.capped, k=1).tocoo()
+        self._edge_rows = upper.row.astype(np.int64)
+        self._edge_cols = upper.col.astype(np.int64)
+        pairs = [tuple(sorted((self.kinds[i], self.kinds[j])))
+                 for i, j in zip(self._edge_rows.tolist(), self._edge_cols.tolist())]
+        self.type_pairs = sorted(set(pairs))
+        pid = {p: k for k, p in enumerate(self.type_pairs)}
+        self._edge_pair = np.array([pid[p] for p in pairs], dtype=np.int64)
+
+    # -- construction ------------------------------------------------------
+    @classmethod
+    def from_episodes(cls, episodes: Iterable[Mapping], policy=None, *, kinds=None,
+                      degree_cap=None, cap_rule=None) -> "CooccurrenceGraph":
+        """Build the graph from episode records (``docs/architecture.md``, Episodes).
+
+        Parameters
+        ----------
+        episodes : iterable of dict
+            Episode records; order does not matter (they are sorted by ``utc``).
+        policy : Policy, optional
+            Supplies ``graph.nodes``, ``graph.degree_cap`` and ``graph.cap_rule``;
+            keyword arguments override it.
+        """
+        if policy is not None:
+            kinds = kinds if kinds is not None else list(policy.graph.nodes)
+            degree_cap = degree_cap if degree_cap is not None else policy.graph.degree_cap
+            cap_rule = cap_rule if cap_rule is not None else policy.graph.cap_rule
+        kinds = list(kinds) if kinds is not None else list(NODE_KINDS)
+        degree_cap = 5 if degree_cap is None else degree_cap
+        cap_rule = "arrival" if cap_rule is None else cap_rule
+        bad = [k for k in kinds if k not in NODE_KINDS]
+        if bad:
+            raise ValueError(f"unknown node kinds {bad}; expected a subset of {list(NODE_KINDS)}")
+        if cap_rule not in CAP_RULES:
+            raise ValueError(f"cap_rule {cap_rule!r}: expected one of {list(CAP_RULES)}")
+        if not isinstance(degree_cap, (int, np.integer)) or degree_cap < 1:
+            raise ValueError(f"degree_cap {degree_cap!r}: expected a positive integer")
+
+        eps = sorted(episodes, key=lambda e: (float(e["utc"]), str(e.get("key", ""))))
+        per_episode = [episode_nodes(e, kinds) for e in eps]
+        kind_rank = {k: r for r, k in enumerate(kinds)}
+        node_set = {n for ns in per_episode for n in ns}
+        nodes = sorted(node_set, key=lambda n: (kind_rank[n[0]], _label_key(n[1])))
+        index = {n: i for i, n in enumerate(nodes)}
+        n_nodes, n_eps = len(nodes), len(eps)
+
+        width = max((len(ns) for ns in per_episode), default=0)
+        m = np.full((n_eps, max(width, 1)), -1, dtype=np.int64)
+        for e, ns in enumerate(per_episode):
+            idx = sorted(index[n] for n in ns)
+            m[e, : len(idx)] = idx
+
+        # every unordered pair of nodes within an episode, with its episode
+        lo_parts, hi_parts, ep_parts = [], [], []
+        ep_ids = np.arange(n_eps, dtype=np.int64)
+        for a in range(width):
+            for b in range(a + 1, width):
+                ok = m[:, b] >= 0  # rows are sorted and padded at the end
+                lo_parts.append(m[ok, a])
+                hi_parts.append(m[ok, b])
+                ep_parts.append(ep_ids[ok])
+        if lo_parts:
+            lo = np.concatenate(lo_parts)
+            hi = np.concatenate(hi_parts)
+            ep = np.concatenate(ep_parts)
+        else:
+            lo = hi = ep = np.zeros(0, dtype=np.int64)
+        order = np.lexsort((hi, lo, ep))  # time order, then pair order within the episode
+        key = lo[order] * max(n_nodes, 1) + hi[order]
+        uniq, first, count = np.unique(key, return_index=True, return_counts=True)
+        rows = uniq // max(n_nodes, 1)
+        cols = uniq % max(n_nodes, 1)
+
+        counts = sp.coo_matrix((np.concatenate([count, count]).astype(np.float64),
+                                (np.concatenate([rows, cols]), np.concatenate([cols, rows]))),
+                               shape=(n_nodes, n_nodes)).tocsr()
+        pick = _cap_order_arrival if cap_rule == "arrival" else _cap_order_strongest
+        keep = greedy_degree_cap(rows, cols, pick(first, count), n_nodes, int(degree_cap))
+        kr, kc = rows[keep], cols[keep]
+        ones = np.ones(2 * len(kr), dtype=np.float64)
+        capped = sp.coo_matrix((ones, (np.concatenate([kr, kc]), np.concatenate([kc, kr]))),
+                               shape=(n_nodes, n_nodes)).tocsr()
+        return cls(nodes, counts, capped, int(degree_cap), cap_rule, n_eps)
+
+    # -- views -------------------------------------------------------------
+    @property
+    def n_nodes(self) -> int:
+        return len(self.nodes)
+
+    @property
+    def n_edges(self) -> int:
+        """Edges of the capped graph."""
+        return int(len(self._edge_rows))
+
+    def binary(self) -> sp.csr_matrix:
+        """0/1 adjacency of the uncapped graph (every co-occurring pair)."""
+        b = self.counts.copy()
+        b.data = np.ones_like(b.data)
+        return b
+
+    def degrees(self, which: str = "capped") -> np.ndarray:
+        mat = {"capped": self.capped, "binary": self.binary(), "counts": self.counts}[which]
+        return np.asarray((mat != 0).sum(axis=1)).ravel().astype(np.int64)
+
+    def weighted(self, theta: Mapping) -> sp.csr_matrix:
+        """W(θ): each capped edge weighted by θ of its kind pair.
+
+        ``theta`` maps a kind pair, as a tuple in either order or a string
+        ``"hour|place"``, to a weight.  Pairs not given weigh 0.
+        """
+        vals = np.zeros(len(self.type_pairs), dtype=np.float64)
+        pid = {p: k for k, p in enumerate(self.type_pairs)}
+        for key, w in theta.items():
+            p = _theta_key(key)
+            for kind in p:
+                if kind not in NODE_KINDS:
+                    raise ValueError(f"theta key {key!r}: unknown node kind {kind!r}")
+            if p in pid:
+                vals[pid[p]] = float(w)
+        w = vals[self._edge_pair]
+        n = self.n_nodes
+        return sp.coo_matrix((np.concatenate([w, w]),
+                              (np.concatenate([self._edge_rows, self._edge_cols]),
+                               np.concatenate([self._edge_cols, self._edge_rows]))),
+                             shape=(n, n)).tocsr()
+
+    def cue_vector(self, hour, weekday, week) -> np.ndarray:
+        """Unit-norm vector over the time nodes present among hour, weekday and week.
+
+        Time nodes absent from the graph are skipped; if none is present the
+        zero vector is returned.
+        """
+        v = np.zeros(self.n_nodes, dtype=np.float64)
+        for kind, value in (("hour", hour), ("weekday", weekday), ("week", week)):
+            if value is None:
+                continue
+            i = self.index.get((kind, str(value)))
+            if i is not None:
+                v[i] = 1.0
+        norm = np.linalg.norm(v)
+        return v / norm if norm > 0 else v
+
+    def nodes_of(self, kind: str) -> list[int]:
+        return [i for i, (k, _) in enumerate(self.nodes) if k == kind]
+
+    def edge_list(self) -> list[tuple[tuple[str, str], tuple[str, str], int]]:
+        """Capped edges as ``(node_a, node_b, count)`` with ``a`` before ``b`` in index order."""
+        c = self.counts
+        return [(self.nodes[i], self.nodes[j], int(c[i, j]))
+                for i, j in zip(self._edge_rows.tolist(), self._edge_cols.tolist())]
+
+
+def graph_summary(g: CooccurrenceGraph) -> dict:
+    """Sizes per kind, degree histograms and per-type-pair edge counts (no content)."""
+    sizes: dict[str, int] = {}
+    for k in g.kinds.tolist():
+        sizes[k] = sizes.get(k, 0) + 1
+    deg = g.degrees("capped")
+    hist = np.bincount(deg, minlength=g.degree_cap + 1) if len(deg) else np.zeros(g.degree_cap + 1, int)
+    udeg = g.degrees("binary")
+    pairs: dict[str, int] = {}
+    for p, k in zip(*np.unique(g._edge_pair, return_counts=True)):
+        a, b = g.type_pairs[int(p)]
+        pairs[f"{a}|{b}"] = int(k)
+    binary_edges = int(g.counts.nnz // 2)
+    return {
+        "n_episodes": g.n_episodes,
+        "n_nodes": g.n_nodes,
+        "nodes_per_kind": sizes,
+        "cap_rule": g.cap_rule,
+        "degree_cap": g.degree_cap,
+        "edges_capped": g.n_edges,
+        "edges_uncapped": binary_edges,
+        "max_degree_capped": int(deg.max()) if len(deg) else 0,
+        "max_degree_uncapped": int(udeg.max()) if len(udeg) else 0,
+        "degree_histogram": {str(d): int(n) for d, n in enumerate(hist.tolist()) if n},
+        "edges_per_type_pair": dict(sorted(pairs.items())),
+    }
