@@ -1,0 +1,36 @@
+"""``lethe demo``: the whole study, end to end, on a fictional participant."""
+
+from __future__ import annotations
+
+from ._common import add_json, emit
+
+
+def register(sub) -> None:
+    p = sub.add_parser("demo", help="run every stage end to end on a fictional participant",
+                       description="Plays the researcher, the participant (with a simulated recorder and "
+                                   "simulated memory-test answers) and the ethics board in one work "
+                                   "directory, and says in plain words what happened at each stage.")
+    p.add_argument("--days", type=int, default=14, help="simulated days of data (default: 14)")
+    p.add_argument("--seed", type=int, default=7, help="random seed of the scenario (default: 7)")
+    p.add_argument("--workdir", metavar="DIR",
+                   help="new or empty directory to work in (default: a fresh temporary directory)")
+    p.add_argument("--policy", metavar="FILE", help="study policy (default: policies/default.toml)")
+    add_json(p)
+    p.set_defaults(func=_demo)
+
+
+def _demo(args) -> int:
+    import io
+    import os
+    import sys
+
+    from ..demo.run import run_demo
+
+    if args.workdir is None and getattr(args, "home", None):
+        args.workdir = args.home
+    os.environ.setdefault("MPLBACKEND", "Agg")
+    out = io.StringIO() if args.json else sys.stdout
+    facts = run_demo(args.workdir, days=args.days, seed=args.seed, policy_path=args.policy, out=out)
+    if args.json:
+        emit(args, facts)
+    return 0
