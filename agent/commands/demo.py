@@ -26,9 +26,12 @@ def _demo(args) -> int:
 
     from ..demo.run import run_demo
 
-    if args.workdir is None and getattr(args, "home", None):
-        args.workdir = args.home
     os.environ.setdefault("MPLBACKEND", "Agg")
+    if "NUMBA_CACHE_DIR" not in os.environ:
+        # librosa's compiled functions are cached per user so a second demo starts fast
+        import platformdirs
+
+        os.environ["NUMBA_CACHE_DIR"] = os.path.join(platformdirs.user_cache_dir("lethe"), "numba")
     out = io.StringIO() if args.json else sys.stdout
     facts = run_demo(args.workdir, days=args.days, seed=args.seed, policy_path=args.policy, out=out)
     if args.json:
