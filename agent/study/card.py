@@ -1,0 +1,324 @@
+"""The study card (researcher -> participant) and the enrolment file (participant -> researcher).
+
+Both are small JSON documents specified in ``docs/bundle-format.md``:
+
+* **study card**, ``"lethe-study-card"`` v1: study id, suite, the study's HPKE
+  public key and its fingerprint, the approved policy fingerprints, a contact
+  line, the consent text and the issue date.  A card is public; it is not
+  signed (the participant checks the fingerprint out of band if needed, and a
+  policy may pin it in ``[study].key_fingerprint``).
+* **enrolment file**, ``"lethe-enrolment"`` v1: study id, pseudonym, the
+  device's Ed25519 public key and key id, the policy fingerprint and the date,
+  signed by the device key over the canonical JSON of every other field (proof
+  that the sender holds the private key).
+
+Loading is strict: unknown or missing fields, wrong types and bad encodings
+raise :class:`~agent.errors.DataError` naming the file and the field.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..errors import DataError, IntegrityError, StateError
+from ..home import write_private
+from ..policy import canonical_json
+from .keys import PUBLIC_KEY_BYTES, SUITES, _check_study_id, b64d, b64e, key_fingerprint, load_public
+
+CARD_FORMAT = "lethe-study-card"
+CARD_VERSION = 1
+ENROLMENT_FORMAT = "lethe-enrolment"
+ENROLMENT_VERSION = 1
+
+_HEX64 = re.compile(r"^[0-9a-f]{64}$")
+_HEX16 = re.compile(r"^[0-9a-f]{16}$")
+_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+_PSEUDONYM = re.compile(r"^[A-Za-z0-9_-]{4,64}$")
+
+CARD_FIELDS = {
+    "format": str, "version": int, "study_id": str, "suite": str, "kem": str, "kdf": str, "aead": str,
+    "public_key": str, "key_fingerprint": str, "approved_policies": list, "contact": str,
+    "consent_text": str, "issued": str,
+}
+ENROLMENT_FIELDS = {
+    "format": str, "version": int, "study_id": str, "pseudonym": str, "device_public_key": str,
+    "device_key_id": str, "policy_fingerprint": str, "created": str, "signature": str,
+}
+
+
+@dataclass(frozen=True)
+class StudyCard:
+    """A validated study card.  ``public_key`` is the raw key bytes."""
+
+    study_id: str
+    suite: str
+    public_key: bytes
+    key_fingerprint: str
+    approved_policies: tuple[str, ...]
+    contact: str
+    consent_text: str
+    issued: str
+    source: str = field(default="<memory>", compare=False)
+
+    @property
+    def suite_names(self) -> dict:
+        return dict(SUITES[self.suite])
+
+    def hpke_public_key(self):
+        from .keys import public_key_object
+
+        return public_key_object(self.suite, self.public_key)
+
+    def as_dict(self) -> dict:
+        return {
+            "format": CARD_FORMAT, "version": CARD_VERSION, "study_id": self.study_id,
+            "suite": self.suite, **SUITES[self.suite], "public_key": b64e(self.public_key),
+            "key_fingerprint": self.key_fingerprint, "approved_policies": list(self.approved_policies),
+            "contact": self.contact, "consent_text": self.consent_text, "issued": self.issued,
+        }
+
+
+def device_key_id(public_bytes: bytes) -> str:
+    """First 16 hex digits of SHA-256(raw Ed25519 public key) (architecture contract)."""
+    import hashlib
+
+    return hashlib.sha256(public_bytes).hexdigest()[:16]
+
+
+def _check_fields(doc, spec: dict, source, what: str) -> None:
+    if not isinstance(doc, dict):
+        raise DataError(f"{source}: expected a JSON object ({what})")
+    unknown = sorted(set(doc) - set(spec))
+    if unknown:
+        raise DataError(f"{source}: [{unknown[0]}] unknown field in a {what}; allowed: {', '.join(spec)}")
+    for k, t in spec.items():
+        if k not in doc:
+            raise DataError(f"{source}: [{k}] required field is missing from the {what}")
+        v = doc[k]
+        if not isinstance(v, t) or (t is int and isinstance(v, bool)):
+            raise DataError(f"{source}: [{k}] expected {t.__name__}, got {type(v).__name__}")
+
+
+def _read_json(path, what: str) -> dict:
+    p = Path(path)
+    try:
+        data = p.read_bytes()
+    except FileNotFoundError:
+        raise DataError(f"{p}: no such {what} file") from None
+    except OSError as e:
+        raise DataError(f"{p}: cannot read the {what}: {e.strerror}") from None
+    if len(data) > 1 << 20:
+        raise DataError(f"{p}: too large for a {what} ({len(data)} bytes)")
+    try:
+        return json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError) as e:
+        raise DataError(f"{p}: not a JSON {what} ({e})") from None
+
+
+# -- study card --------------------------------------------------------------
+
+def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
+    """Validate a card document strictly and return a :class:`StudyCard`."""
+    if not isinstance(doc, dict):
+        raise DataError(f"{source}: expected a JSON object (study card)")
+    # Format and version first, so a future card is refused as such.
+    if doc.get("format") != CARD_FORMAT:
+        raise DataError(f"{source}: [format] expected {CARD_FORMAT!r}, got {doc.get('format')!r}")
+    if doc.get("version") != CARD_VERSION:
+        raise DataError(f"{source}: [version] study card version {doc.get('version')!r} is not supported; "
+                        f"this lethe reads version {CARD_VERSION}")
+    _check_fields(doc, CARD_FIELDS, source, "study card")
+    _check_study_id(doc["study_id"], source)
+    suite = doc["suite"]
+    if suite not in SUITES:
+        raise DataError(f"{source}: [suite] {suite!r} is not one of {', '.join(SUITES)}")
+    for k in ("kem", "kdf", "aead"):
+        if doc[k] != SUITES[suite][k]:
+            raise DataError(f"{source}: [{k}] {doc[k]!r} does not match suite {suite!r} ({SUITES[suite][k]!r})")
+    public = b64d(doc["public_key"], what="public_key", source=source)
+    if len(public) != PUBLIC_KEY_BYTES[suite]:
+        raise DataError(f"{source}: [public_key] a {suite!r} key has {PUBLIC_KEY_BYTES[suite]} bytes, got {len(public)}")
+    if not _HEX64.match(doc["key_fingerprint"]):
+        raise DataError(f"{source}: [key_fingerprint] expected 64 lower-case hex digits")
+    if key_fingerprint(public) != doc["key_fingerprint"]:
+        raise IntegrityError(f"{source}: [key_fingerprint] does not match the card's public key "
+                             f"(card says {doc['key_fingerprint'][:16]}…, key hashes to "
+                             f"{key_fingerprint(public)[:16]}…)")
+    pols = doc["approved_policies"]
+    if not pols or not all(isinstance(p, str) and _HEX64.match(p) for p in pols) or len(set(pols)) != len(pols):
+        raise DataError(f"{source}: [approved_policies] expected a non-empty list of distinct policy "
+                        f"fingerprints (64 lower-case hex digits each)")
+    if not _DATE.match(doc["issued"]):
+        raise DataError(f"{source}: [issued] expected a date YYYY-MM-DD, got {doc['issued']!r}")
+    return StudyCard(doc["study_id"], suite, public, doc["key_fingerprint"], tuple(pols),
+                     doc["contact"], doc["consent_text"], doc["issued"], str(source))
+
+
+def load_card(path) -> StudyCard:
+    """Read and strictly validate a study card file."""
+    return card_from_dict(_read_json(path, "study card"), source=str(path))
+
+
+def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.date | None = None) -> StudyCard:
+    """Build the study card from ``STUDYDIR/keys/study.pub`` and the approved policies.
+
+    Every policy must name the key's study id, and a policy that pins
+    ``[study].key_fingerprint`` must pin this key.  The consent text is the
+    first policy's; ``contact`` defaults to the first policy's contact line.
+    """
+    from ..policy import Policy, load_policy
+
+    pub = load_public(study_dir)
+    pols = [p if isinstance(p, Policy) else load_policy(p) for p in policies]
+    if not pols:
+        raise DataError("a study card needs at least one approved policy")
+    for p in pols:
+        if p.study.study_id != pub["study_id"]:
+            raise StateError(f"{p.source}: [study.study_id] {p.study.study_id!r} is not this study "
+                             f"({pub['study_id']!r})")
+        pinned = p.study.key_fingerprint
+        if pinned and pinned != pub["key_fingerprint"]:
+            raise StateError(f"{p.source}: [study.key_fingerprint] pins key {pinned}, but the study key "
+                             f"is {pub['key_fingerprint']}; refusing to approve it on this card")
+    fps = list(dict.fromkeys(p.fingerprint for p in pols))
+    contact = contact if contact is not None else pols[0].study.contact
+    issued = (issued or _dt.datetime.now(_dt.timezone.utc).date()).isoformat()
+    return StudyCard(pub["study_id"], pub["suite"], pub["public_key"], pub["key_fingerprint"],
+                     tuple(fps), contact, pols[0].study.consent_text, issued)
+
+
+def card_path(study_dir) -> Path:
+    """The study's own copy of its current card (``open`` reads the approved list from it)."""
+    return Path(study_dir) / "card.json"
+
+
+def write_card(study_dir, policies, contact: str | None = None, out=None) -> Path:
+    """Write the study card to ``out`` and to ``STUDYDIR/card.json``; returns ``out``."""
+    card = make_card(study_dir, policies, contact)
+    data = (json.dumps(card.as_dict(), indent=2, sort_keys=True, ensure_ascii=False) + "\n").encode()
+    write_private(card_path(study_dir), data)
+    out = Path(out) if out is not None else card_path(study_dir)
+    if out.absolute() != card_path(study_dir).absolute():
+        write_private(out, data)
+    import os
+
+    os.chmod(out, 0o644)  # a card is public
+    return out
+
+
+def study_card(study_dir) -> StudyCard:
+    p = card_path(study_dir)
+    if not p.exists():
+        raise StateError(f"{p}: this study has no card yet; run 'lethe study card' first")
+    return load_card(p)
+
+
+def check_policy_approved(card: StudyCard, policy) -> None:
+    """Raise :class:`StateError` unless the card approves ``policy`` (and it names this study/key)."""
+    fp = policy.fingerprint
+    if policy.study.study_id != card.study_id:
+        raise StateError(f"{policy.source}: [study.study_id] {policy.study.study_id!r} does not match the "
+                         f"study card {card.source} ({card.study_id!r})")
+    pinned = policy.study.key_fingerprint
+    if pinned and pinned != card.key_fingerprint:
+        raise StateError(f"{policy.source}: [study.key_fingerprint] {pinned} does not match the key on the "
+                         f"study card {card.source} ({card.key_fingerprint})")
+    if fp not in card.approved_policies:
+        raise StateError(f"{policy.source}: policy fingerprint {fp} is not approved by the study card "
+                         f"{card.source} (approved: {', '.join(card.approved_policies)})")
+
+
+# -- enrolment ---------------------------------------------------------------
+
+def _raw_public(device_private_key) -> bytes:
+    from cryptography.hazmat.primitives import serialization
+
+    return device_private_key.public_key().public_bytes(serialization.Encoding.Raw,
+                                                        serialization.PublicFormat.Raw)
+
+
+def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, *,
+                   created: _dt.date | None = None) -> dict:
+    """The signed enrolment document for this device.
+
+    Parameters
+    ----------
+    card : StudyCard
+    policy : Policy
+        The policy the participant enrols under; must be approved by the card.
+    pseudonym : str
+        4-64 characters from ``[A-Za-z0-9_-]``.
+    device_private_key : Ed25519PrivateKey
+        The device key (``Keystore(home).device_key()``).
+    """
+    check_policy_approved(card, policy)
+    if not isinstance(pseudonym, str) or not _PSEUDONYM.match(pseudonym):
+        raise DataError(f"[pseudonym] {pseudonym!r}: expected 4-64 characters from A-Z a-z 0-9 _ -")
+    pub = _raw_public(device_private_key)
+    created = (created or _dt.datetime.now(_dt.timezone.utc).date()).isoformat()
+    doc = {"format": ENROLMENT_FORMAT, "version": ENROLMENT_VERSION, "study_id": card.study_id,
+           "pseudonym": pseudonym, "device_public_key": b64e(pub), "device_key_id": device_key_id(pub),
+           "policy_fingerprint": policy.fingerprint, "created": created}
+    doc["signature"] = b64e(device_private_key.sign(canonical_json(doc)))
+    return doc
+
+
+def write_enrolment(home, card: StudyCard, policy, pseudonym: str, out_path, *,
+                    device_private_key=None) -> Path:
+    """Write the enrolment file for ``home``'s device key to ``out_path`` (atomic, 0600)."""
+    if device_private_key is None:
+        from ..keystore import Keystore
+
+        device_private_key = Keystore(home).device_key()
+    doc = make_enrolment(card, policy, pseudonym, device_private_key)
+    out = Path(out_path)
+    write_private(out, (json.dumps(doc, indent=2, sort_keys=True) + "\n").encode())
+    return out
+
+
+def verify_enrolment(doc: dict, source="<memory>") -> dict:
+    """Check an enrolment document's shape and its proof of possession.
+
+    Returns ``{"study_id", "pseudonym", "device_public_key" (bytes), "device_key_id",
+    "policy_fingerprint", "created"}``.
+    """
+    from cryptography.exceptions import InvalidSignature
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
+
+    if not isinstance(doc, dict):
+        raise DataError(f"{source}: expected a JSON object (enrolment)")
+    if doc.get("format") != ENROLMENT_FORMAT:
+        raise DataError(f"{source}: [format] expected {ENROLMENT_FORMAT!r}, got {doc.get('format')!r}")
+    if doc.get("version") != ENROLMENT_VERSION:
+        raise DataError(f"{source}: [version] enrolment version {doc.get('version')!r} is not supported; "
+                        f"this lethe reads version {ENROLMENT_VERSION}")
+    _check_fields(doc, ENROLMENT_FIELDS, source, "enrolment")
+    _check_study_id(doc["study_id"], source)
+    if not _PSEUDONYM.match(doc["pseudonym"]):
+        raise DataError(f"{source}: [pseudonym] expected 4-64 characters from A-Z a-z 0-9 _ -")
+    pub = b64d(doc["device_public_key"], what="device_public_key", source=source)
+    if len(pub) != 32:
+        raise DataError(f"{source}: [device_public_key] an Ed25519 public key has 32 bytes, got {len(pub)}")
+    if not _HEX16.match(doc["device_key_id"]) or doc["device_key_id"] != device_key_id(pub):
+        raise DataError(f"{source}: [device_key_id] does not match the device public key")
+    if not _HEX64.match(doc["policy_fingerprint"]):
+        raise DataError(f"{source}: [policy_fingerprint] expected 64 lower-case hex digits")
+    if not _DATE.match(doc["created"]):
+        raise DataError(f"{source}: [created] expected a date YYYY-MM-DD")
+    sig = b64d(doc["signature"], what="signature", source=source)
+    body = canonical_json({k: v for k, v in doc.items() if k != "signature"})
+    try:
+        Ed25519PublicKey.from_public_bytes(pub).verify(sig, body)
+    except (InvalidSignature, ValueError):
+        raise IntegrityError(f"{source}: [signature] the enrolment is not signed by the device key it names") from None
+    return {"study_id": doc["study_id"], "pseudonym": doc["pseudonym"], "device_public_key": pub,
+            "device_key_id": doc["device_key_id"], "policy_fingerprint": doc["policy_fingerprint"],
+            "created": doc["created"]}
+
+
+def load_enrolment(path) -> dict:
+    return verify_enrolment(_read_json(path, "enrolment"), source=str(path))

@@ -1,0 +1,172 @@
+"""Withdrawal certificates ("lethe-withdrawal" v1): made on the device, checked by the study.
+
+When a participant withdraws, the device signs a certificate with its Ed25519
+key just before the key is destroyed.  The certificate says who withdrew (the
+pseudonym and device key id), when (UTC, to the minute), where the audit
+ledger ended (its head sequence number and hash) and how many records of each
+table were destroyed.  It carries no content.
+
+The device public key is included so that the certificate can be checked on
+its own (:func:`verify_withdrawal_signature`); the researcher's check
+(:func:`verify_withdrawal`) also requires that key to be the one enrolled
+under that pseudonym.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+from ..errors import DataError, IntegrityError, StateError
+from ..home import write_private
+from ..policy import canonical_json
+from .card import _PSEUDONYM, _check_fields, _read_json, device_key_id
+from .keys import _check_study_id, b64d, b64e
+
+WITHDRAWAL_FORMAT = "lethe-withdrawal"
+WITHDRAWAL_VERSION = 1
+
+FIELDS = {
+    "format": str, "version": int, "study_id": str, "pseudonym": str, "device_public_key": str,
+    "device_key_id": str, "time": str, "ledger_head": dict, "counts_destroyed": dict, "signature": str,
+}
+_TIME = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}Z$")
+_TABLE = re.compile(r"^[a-z][a-z0-9_]{0,63}$")
+
+
+def _minute_utc(now) -> str:
+    if now is None:
+        t = _dt.datetime.now(_dt.timezone.utc)
+    elif isinstance(now, (int, float)):
+        t = _dt.datetime.fromtimestamp(now, _dt.timezone.utc)
+    else:
+        t = now.astimezone(_dt.timezone.utc)
+    return t.strftime("%Y-%m-%dT%H:%MZ")
+
+
+def make_withdrawal_certificate(study_id: str, pseudonym: str, device_private_key, ledger_head: dict,
+                                counts_destroyed: dict, now=None) -> dict:
+    """Sign a withdrawal certificate with the device key.
+
+    Parameters
+    ----------
+    study_id, pseudonym : str
+    device_private_key : Ed25519PrivateKey
+    ledger_head : dict
+        ``{"seq": int, "hash": str}`` of the last ledger entry (``digest(...)["head"]``).
+    counts_destroyed : dict
+        ``{table: n}`` records destroyed per vault table (and ``"files"`` etc.).
+    now : float (Unix seconds) or datetime, optional
+        Recorded in UTC to the minute.
+    """
+    from cryptography.hazmat.primitives import serialization
+
+    pub = device_private_key.public_key().public_bytes(serialization.Encoding.Raw,
+                                                       serialization.PublicFormat.Raw)
+    doc = {"format": WITHDRAWAL_FORMAT, "version": WITHDRAWAL_VERSION, "study_id": study_id,
+           "pseudonym": pseudonym, "device_public_key": b64e(pub), "device_key_id": device_key_id(pub),
+           "time": _minute_utc(now),
+           "ledger_head": {"seq": int(ledger_head["seq"]), "hash": str(ledger_head["hash"])},
+           "counts_destroyed": {str(k): int(v) for k, v in sorted(counts_destroyed.items())}}
+    _check_body(doc, "<new certificate>")
+    doc["signature"] = b64e(device_private_key.sign(canonical_json(doc)))
+    return doc
+
+
+def write_withdrawal_certificate(path, cert: dict) -> Path:
+    write_private(Path(path), (json.dumps(cert, indent=2, sort_keys=True) + "\n").encode())
+    return Path(path)
+
+
+def _check_body(doc: dict, source) -> None:
+    _check_study_id(doc["study_id"], source)
+    if not _PSEUDONYM.match(doc["pseudonym"]):
+        raise DataError(f"{source}: [pseudonym] expected 4-64 characters from A-Z a-z 0-9 _ -")
+    if not _TIME.match(doc["time"]):
+        raise DataError(f"{source}: [time] expected UTC minutes YYYY-MM-DDTHH:MMZ, got {doc['time']!r}")
+    head = doc["ledger_head"]
+    if (set(head) != {"seq", "hash"} or not isinstance(head["seq"], int) or isinstance(head["seq"], bool)
+            or head["seq"] < 0 or not isinstance(head["hash"], str) or not head["hash"]):
+        raise DataError(f"{source}: [ledger_head] expected {{'seq': int >= 0, 'hash': str}}")
+    for k, v in doc["counts_destroyed"].items():
+        if not _TABLE.match(k) or not isinstance(v, int) or isinstance(v, bool) or v < 0:
+            raise DataError(f"{source}: [counts_destroyed.{k}] expected a table name and a count >= 0")
+
+
+@dataclass(frozen=True)
+class WithdrawalCheck:
+    """The outcome of a successful verification."""
+
+    study_id: str
+    pseudonym: str
+    device_key_id: str
+    time: str
+    ledger_head: dict
+    counts_destroyed: dict
+
+    def as_dict(self) -> dict:
+        return dict(self.__dict__)
+
+
+def verify_withdrawal_signature(cert: dict, public_key=None, source="<memory>") -> WithdrawalCheck:
+    """Check shape and signature (against ``public_key`` if given, else the key in the certificate)."""
+    from cryptography.exceptions import InvalidSignature
+    from cryptography.hazmat.primitives import serialization
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
+
+    if not isinstance(cert, dict):
+        raise DataError(f"{source}: expected a JSON object (withdrawal certificate)")
+    if cert.get("format") != WITHDRAWAL_FORMAT:
+        raise DataError(f"{source}: [format] expected {WITHDRAWAL_FORMAT!r}, got {cert.get('format')!r}")
+    if cert.get("version") != WITHDRAWAL_VERSION:
+        raise DataError(f"{source}: [version] withdrawal certificate version {cert.get('version')!r} is not "
+                        f"supported; this lethe reads version {WITHDRAWAL_VERSION}")
+    _check_fields(cert, FIELDS, source, "withdrawal certificate")
+    _check_body(cert, source)
+    pub = b64d(cert["device_public_key"], what="device_public_key", source=source)
+    if len(pub) != 32 or device_key_id(pub) != cert["device_key_id"]:
+        raise DataError(f"{source}: [device_key_id] does not match the device public key")
+    if public_key is not None:
+        given = public_key if isinstance(public_key, bytes) else public_key.public_bytes(
+            serialization.Encoding.Raw, serialization.PublicFormat.Raw)
+        if given != pub:
+            raise IntegrityError(f"{source}: [device_public_key] is not the expected device key "
+                                 f"(certificate names {cert['device_key_id']}, expected {device_key_id(given)})")
+    sig = b64d(cert["signature"], what="signature", source=source)
+    body = canonical_json({k: v for k, v in cert.items() if k != "signature"})
+    try:
+        Ed25519PublicKey.from_public_bytes(pub).verify(sig, body)
+    except InvalidSignature:
+        raise IntegrityError(f"{source}: [signature] the withdrawal certificate's signature does not verify "
+                             f"(altered, or not signed by device {cert['device_key_id']})") from None
+    return WithdrawalCheck(cert["study_id"], cert["pseudonym"], cert["device_key_id"], cert["time"],
+                           dict(cert["ledger_head"]), dict(cert["counts_destroyed"]))
+
+
+def verify_withdrawal(cert: dict, registry, source="<memory>") -> WithdrawalCheck:
+    """Verify a certificate against the study's enrolment registry.
+
+    The pseudonym must be enrolled in this study, the certificate's device key
+    must be the enrolled one, and the signature must verify with it.
+
+    Parameters
+    ----------
+    cert : dict
+    registry : Registry
+        From :class:`agent.study.registry.Registry`.
+    """
+    if isinstance(cert, dict) and cert.get("study_id") not in (None, registry.study_id):
+        raise StateError(f"{source}: [study_id] {cert.get('study_id')!r} is not this study ({registry.study_id!r})")
+    if not isinstance(cert, dict) or not isinstance(cert.get("pseudonym"), str):
+        return verify_withdrawal_signature(cert, None, source)  # raises the shape error
+    device = registry.device(cert["pseudonym"])
+    if device is None:
+        raise StateError(f"{source}: [pseudonym] {cert['pseudonym']!r} is not enrolled in study {registry.study_id!r}")
+    return verify_withdrawal_signature(cert, device.public_bytes, source)
+
+
+def load_withdrawal(path) -> dict:
+    return _read_json(path, "withdrawal certificate")
