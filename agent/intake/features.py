@@ -1,0 +1,286 @@
+"""On-device features: audio snippets and accelerometry bursts.
+
+Audio (one short-time Fourier transform, everything derived from it)
+    MFCC 1–20 mean and SD, an 8-band summary of a 40-band log-mel spectrogram,
+    spectral centroid, flatness and roll-off, zero-crossing rate, and two
+    levels: RMS in dBFS (AES17: a full-scale sine reads 0 dBFS) and an
+    A-weighted level in dB(A) re full scale (IEC 61672-1 weighting, applied in
+    the frequency domain).
+Accelerometry (per ``intake.accel_window_seconds`` window)
+    ENMO (van Hees et al. 2013), SD of the vector magnitude, dominant frequency
+    of the magnitude by Welch's method, and an active flag.
+
+The vector order is :data:`AUDIO_FEATURE_NAMES`; units and sources are in
+``docs/features.md``.  The decoded signal is discarded once these are computed.
+"""
+
+from __future__ import annotations
+
+import time
+from functools import lru_cache
+
+import numpy as np
+
+from .item import ItemResult
+
+N_MFCC = 20
+N_MELS = 40
+N_MEL_BANDS = 8
+ROLL_PERCENT = 0.85
+# Analysis frame of 32 ms and hop of 16 ms at any sample rate.
+FRAME_S = 0.032
+HOP_S = 0.016
+
+AUDIO_FEATURE_NAMES: tuple[str, ...] = (
+    tuple(f"mfcc{i}_mean" for i in range(1, N_MFCC + 1))
+    + tuple(f"mfcc{i}_sd" for i in range(1, N_MFCC + 1))
+    + tuple(f"logmel_band{i}_db" for i in range(1, N_MEL_BANDS + 1))
+    + ("centroid_hz", "flatness", "rolloff_hz", "zcr")
+)
+
+# IEC 61672-1 (clause 5.4.11 and Annex E, from memory): pole frequencies of the
+# A-weighting network in Hz, rounded as the standard quotes them,
+# and the +2.00 dB normalisation that makes A(1 kHz) = 0 dB.
+A_F1, A_F2, A_F3, A_F4 = 20.6, 107.7, 737.9, 12194.0
+A_1000_DB = 2.00
+
+# ENMO at or above 40 mg marks a window active: the inactivity/light boundary
+# used with wrist ENMO (common practice; thresholds of this size are reported
+# by Hildebrand et al. 2014, from memory).
+ACTIVE_ENMO_G = 0.040
+# Welch segment of 5 s with 50 % overlap: 0.2 Hz resolution, three segments in
+# a 10 s window.
+WELCH_SEGMENT_S = 5.0
+# A window whose magnitude varies less than this (g, SD) has no dominant frequency.
+STILL_SD_G = 1e-3
+
+
+# ---------------------------------------------------------------------------
+# A-weighting and levels
+# ---------------------------------------------------------------------------
+def a_weighting_db(f_hz) -> np.ndarray:
+    """IEC 61672-1 A-weighting in dB at frequencies ``f_hz`` (−inf at 0 Hz)."""
+    f = np.asarray(f_hz, dtype=float)
+    f2 = f * f
+    with np.errstate(divide="ignore"):
+        ra = (A_F4**2 * f2**2) / (
+            (f2 + A_F1**2) * np.sqrt((f2 + A_F2**2) * (f2 + A_F3**2)) * (f2 + A_F4**2)
+        )
+        return 20.0 * np.log10(ra) + A_1000_DB
+
+
+@lru_cache(maxsize=16)
+def _a_weight_power(n: int, sr: int) -> np.ndarray:
+    """Linear power weights |A(f)|² on the ``rfft`` grid of length ``n``."""
+    f = np.fft.rfftfreq(n, 1.0 / sr)
+    w = np.zeros_like(f)
+    w[1:] = 10.0 ** (a_weighting_db(f[1:]) / 10.0)
+    return w
+
+
+def level_dbfs(y: np.ndarray) -> float:
+    """RMS level in dBFS, AES17 convention: ``20 log10(rms * sqrt(2))``."""
+    rms = float(np.sqrt(np.mean(np.square(y, dtype=np.float64))))
+    return 20.0 * float(np.log10(max(rms * np.sqrt(2.0), 1e-10)))
+
+
+def level_dba(y: np.ndarray, sr: int) -> float:
+    """A-weighted RMS level in dB(A) re full scale (same AES17 reference).
+
+    The weighting is applied to the power spectrum of the whole snippet; by
+    Parseval's theorem the weighted power sum is the mean square of the
+    A-filtered signal (zero-phase, circular).
+    """
+    y = np.asarray(y, dtype=np.float64)
+    n = len(y)
+    X = np.fft.rfft(y)
+    p = np.abs(X) ** 2
+    # One-sided spectrum: every bin except DC (and Nyquist for even n) counts twice.
+    p[1:(n + 1) // 2] *= 2.0
+    ms = float(np.sum(p * _a_weight_power(n, sr))) / (n * n)
+    return 10.0 * float(np.log10(max(2.0 * ms, 1e-20)))
+
+
+# ---------------------------------------------------------------------------
+# Audio
+# ---------------------------------------------------------------------------
+def frame_params(sr: int) -> tuple[int, int]:
+    """``(n_fft, hop_length)`` for ``sr``: a power of two near 32 ms, half-overlapping."""
+    n_fft = 1 << int(round(np.log2(FRAME_S * sr)))
+    return n_fft, n_fft // 2
+
+
+@lru_cache(maxsize=8)
+def _mel_basis(sr: int, n_fft: int) -> np.ndarray:
+    import librosa
+
+    return librosa.filters.mel(sr=sr, n_fft=n_fft, n_mels=N_MELS).astype(np.float64)
+
+
+@lru_cache(maxsize=8)
+def _dct_matrix(n_mels: int, n_mfcc: int) -> np.ndarray:
+    import scipy.fft
+
+    # DCT-II, orthonormal, as librosa.feature.mfcc uses.
+    return scipy.fft.dct(np.eye(n_mels), type=2, norm="ortho", axis=0)[:n_mfcc]
+
+
+def audio_vector(y: np.ndarray, sr: int) -> np.ndarray:
+    """The feature vector of a mono signal, in :data:`AUDIO_FEATURE_NAMES` order."""
+    import librosa
+
+    y = np.asarray(y, dtype=np.float32)
+    n_fft, hop = frame_params(sr)
+    X = librosa.stft(y, n_fft=n_fft, hop_length=hop, window="hann", center=True)
+    mag = np.abs(X).astype(np.float64)
+    power = mag * mag
+    freqs = np.fft.rfftfreq(n_fft, 1.0 / sr)
+
+    mel = _mel_basis(sr, n_fft) @ power
+    # power_to_db(ref=1, amin=1e-10, top_db=80) as librosa's mfcc() default does.
+    log_mel = 10.0 * np.log10(np.maximum(mel, 1e-10))
+    log_mel = np.maximum(log_mel, log_mel.max() - 80.0)
+    mfcc = _dct_matrix(N_MELS, N_MFCC) @ log_mel
+    bands = log_mel.reshape(N_MEL_BANDS, N_MELS // N_MEL_BANDS, -1).mean(axis=(1, 2))
+
+    mag_sum = mag.sum(axis=0)
+    centroid = (freqs @ mag) / np.maximum(mag_sum, 1e-10)
+    # Flatness on the power spectrum with amin = 1e-10 (librosa's definition).
+    pw = np.maximum(power, 1e-10)
+    flatness = np.exp(np.mean(np.log(pw), axis=0)) / np.mean(pw, axis=0)
+    cum = np.cumsum(mag, axis=0)
+    thresh = ROLL_PERCENT * cum[-1]
+    idx = np.argmax(cum >= thresh[None, :], axis=0)
+    rolloff = freqs[idx]
+    zcr = librosa.feature.zero_crossing_rate(y, frame_length=n_fft, hop_length=hop, center=True)[0]
+
+    return np.concatenate([
+        mfcc.mean(axis=1), mfcc.std(axis=1), bands,
+        [centroid.mean(), flatness.mean(), rolloff.mean(), zcr.mean()],
+    ])
+
+
+def audio_features(clip, policy) -> ItemResult:
+    """ItemResult with one ``audio_features`` row for a validated clip."""
+    vec = audio_vector(clip.y, clip.sr)
+    payload = {
+        "t": float(clip.t),
+        "vec": [float(v) for v in vec],
+        "dbfs": level_dbfs(clip.y),
+        "dba": level_dba(clip.y, clip.sr),
+    }
+    dur = len(clip.y) / clip.sr
+    return ItemResult(kind="audio", rows={"audio_features": [("", payload)]},
+                      warnings=list(clip.warnings), n_samples=int(clip.n_frames),
+                      t_start=float(clip.t), t_end=float(clip.t) + dur)
+
+
+# ---------------------------------------------------------------------------
+# Accelerometry
+# ---------------------------------------------------------------------------
+def enmo_g(xyz_g: np.ndarray) -> np.ndarray:
+    """Euclidean norm minus one g, negatives set to zero (van Hees et al. 2013)."""
+    mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g))
+    return np.maximum(mag - 1.0, 0.0)
+
+
+def dominant_hz(mag: np.ndarray, rate_hz: float) -> np.ndarray:
+    """Dominant frequency of each row of ``mag`` (windows × samples) by Welch."""
+    from scipy.signal import welch
+
+    mag = np.atleast_2d(mag)
+    n = mag.shape[-1]
+    nperseg = min(n, max(4, int(round(WELCH_SEGMENT_S * rate_hz))))
+    f, pxx = welch(mag, fs=rate_hz, nperseg=nperseg, noverlap=nperseg // 2,
+                   detrend="constant", axis=-1)
+    dom = f[1:][np.argmax(pxx[:, 1:], axis=-1)] if len(f) > 1 else np.zeros(mag.shape[0])
+    still = mag.std(axis=-1) < STILL_SD_G
+    return np.where(still, 0.0, dom)
+
+
+def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: float):
+    """Per-window features; returns ``(rows, n_skipped)``.
+
+    Windows start at ``t[0] + k * window_s``.  A window holding fewer than half
+    the samples the rate implies (the ragged end of a burst, or a gap) is
+    skipped and counted.
+    """
+    mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g))
+    enmo = np.maximum(mag - 1.0, 0.0)
+    k = np.floor((t - t[0]) / window_s).astype(np.int64)
+    n_win = int(k[-1]) + 1
+    counts = np.bincount(k, minlength=n_win)
+    expected = rate_hz * window_s
+    keep = np.flatnonzero(counts >= 0.5 * expected)
+    starts = np.concatenate([[0], np.cumsum(counts)])
+    enmo_sum = np.bincount(k, weights=enmo, minlength=n_win)
+    mag_sum = np.bincount(k, weights=mag, minlength=n_win)
+    mag_sq = np.bincount(k, weights=mag * mag, minlength=n_win)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        enmo_mean = enmo_sum / counts
+        mag_mean = mag_sum / counts
+        sd = np.sqrt(np.maximum(mag_sq / counts - mag_mean**2, 0.0))
+    dom = np.zeros(n_win)
+    # Batch the windows of equal length through one Welch call.
+    by_len: dict[int, list[int]] = {}
+    for w in keep:
+        by_len.setdefault(int(counts[w]), []).append(int(w))
+    for length, ws in by_len.items():
+        block = np.stack([mag[starts[w]:starts[w] + length] for w in ws])
+        dom[ws] = dominant_hz(block, rate_hz)
+    rows = [
+        [float(t[0] + w * window_s), float(enmo_mean[w]), float(sd[w]), float(dom[w]),
+         int(enmo_mean[w] >= ACTIVE_ENMO_G)]
+        for w in keep
+    ]
+    return rows, int(n_win - len(keep))
+
+
+def accel_features(rec, policy) -> ItemResult:
+    """ItemResult with one ``accel_features`` row for a validated burst."""
+    window_s = float(policy.intake.accel_window_seconds)
+    rows, skipped = accel_windows(rec.t, rec.xyz_g, rec.rate_hz, window_s)
+    warnings = list(rec.warnings)
+    dropped = dict(rec.dropped)
+    if skipped:
+        dropped["short_window"] = skipped
+        warnings.append(f"{skipped} window(s) with under half the expected samples skipped")
+    if not rows:
+        from .readers._common import reject
+
+        reject(rec.path, "too_short",
+               f"no {window_s:g} s window (intake.accel_window_seconds) holds half its samples")
+    active = [r[4] for r in rows]
+    payload = {
+        "t0": float(rec.t[0]),
+        "window_s": window_s,
+        "windows": rows,
+        "active_fraction": float(np.mean(active)),
+    }
+    return ItemResult(kind="accel", rows={"accel_features": [("", payload)]},
+                      warnings=warnings, n_samples=int(len(rec.t)), dropped=dropped,
+                      t_start=float(rec.t[0]), t_end=float(rec.t[-1]))
+
+
+# ---------------------------------------------------------------------------
+def warm_up(policy=None) -> float:
+    """Run every feature once on tiny synthetic inputs; returns the seconds taken.
+
+    librosa compiles some functions with numba on first use; calling this at
+    set-up (with ``NUMBA_CACHE_DIR`` pointing into the home) moves that cost out
+    of the first real snippet.
+    """
+    t0 = time.perf_counter()
+    sr = int(policy.intake.audio_sr) if policy is not None else 16000
+    rng = np.random.default_rng(0)
+    y = (0.1 * rng.standard_normal(sr // 2)).astype(np.float32)
+    audio_vector(y, sr)
+    level_dbfs(y)
+    level_dba(y, sr)
+    from .readers.audio import resample
+
+    resample(y, sr, sr // 2 if sr > 8000 else 16000)
+    tt = np.arange(200) / 10.0
+    xyz = np.column_stack([np.zeros(200), np.zeros(200), 1.0 + 0.1 * np.sin(2 * np.pi * tt)])
+    accel_windows(tt, xyz, 10.0, 10.0)
+    return time.perf_counter() - t0

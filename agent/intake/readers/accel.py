@@ -1,0 +1,125 @@
+"""Accelerometry bursts: ``*.accel.csv`` parsed in one vectorised pass.
+
+Format (``docs/inbox-formats.md``)::
+
+    # unit=g rate_hz=10
+    time,x,y,z
+    1793800800.000,0.012,-0.031,0.998
+    ...
+
+The body is parsed by :func:`numpy.loadtxt`, whose C parser (numpy >= 1.23) was
+the fastest option measured here (see ``docs/features.md``).  Values in m/s²
+are converted to g with standard gravity g_n = 9.80665 m/s² (3rd CGPM, 1901).
+"""
+
+from __future__ import annotations
+
+import io
+import re
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ._common import now_or, plausible_time, reject
+
+STANDARD_GRAVITY = 9.80665  # m/s², 3rd CGPM (1901)
+UNITS = {"g": 1.0, "m/s^2": 1.0 / STANDARD_GRAVITY}
+# A sensor that includes gravity reads about 1 g at rest; a median magnitude far
+# from that means the declared unit is wrong (m/s² labelled g reads ~9.8).
+MAGNITUDE_RANGE_G = (0.3, 3.0)
+# An interval longer than this many nominal sample periods is a gap.
+GAP_FACTOR = 2.0
+
+
+@dataclass
+class AccelRecord:
+    path: str
+    t: np.ndarray          # Unix seconds, strictly increasing
+    xyz_g: np.ndarray      # (n, 3) in g
+    rate_hz: float         # measured: 1 / median interval
+    warnings: list[str] = field(default_factory=list)
+    dropped: dict[str, int] = field(default_factory=dict)
+
+
+def parse_unit_line(path, line: bytes) -> tuple[float, float | None]:
+    """``(scale to g, declared rate or None)`` from ``# unit=… [rate_hz=…]``."""
+    s = line.decode("utf-8", "replace").strip()
+    if not s.startswith("#"):
+        reject(path, "bad_unit", "the first line must declare the unit: '# unit=g' or '# unit=m/s^2'")
+    opts = {}
+    for tok in s[1:].split():
+        k, eq, v = tok.partition("=")
+        if eq:
+            opts[k.strip().lower()] = v.strip()
+    unit = opts.get("unit")
+    if unit not in UNITS:
+        reject(path, "bad_unit", "unit must be 'g' or 'm/s^2'"
+               + (" (none declared)" if unit is None else ""))
+    rate = None
+    if "rate_hz" in opts:
+        try:
+            rate = float(opts["rate_hz"])
+        except ValueError:
+            rate = float("nan")
+        if not (np.isfinite(rate) and rate > 0):
+            reject(path, "bad_rate", "rate_hz must be a positive number")
+    return UNITS[unit], rate
+
+
+def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelRecord:
+    """Parse and validate one burst."""
+    now = now_or(now)
+    parts = data.split(b"\n", 2)
+    if len(parts) < 3:
+        reject(path, "too_short", "expected a unit line, a header line and samples")
+    scale, declared = parse_unit_line(path, parts[0])
+    header = tuple(h.strip().lower() for h in parts[1].decode("utf-8", "replace").strip().split(","))
+    if header != ("time", "x", "y", "z"):
+        reject(path, "bad_header", "expected the header 'time,x,y,z'")
+    try:
+        arr = np.loadtxt(io.BytesIO(parts[2]), delimiter=",", dtype=np.float64, ndmin=2,
+                         comments=None)
+    except ValueError as e:
+        m = re.search(r"row (\d+)", str(e))
+        where = f" at data row {int(m.group(1))}" if m else ""
+        reject(path, "bad_value", f"a row is not four numbers{where}")
+    if arr.shape[0] < 2:
+        reject(path, "too_short", f"{arr.shape[0]} sample(s); at least two are needed")
+    if arr.shape[1] != 4:
+        reject(path, "bad_value", f"rows have {arr.shape[1]} columns, expected 4")
+    if not np.isfinite(arr).all():
+        reject(path, "bad_value", "a value is NaN or infinite")
+    t = arr[:, 0]
+    dt = np.diff(t)
+    if not (dt > 0).all():
+        reject(path, "bad_timestamp", "times are not strictly increasing")
+    for edge in (t[0], t[-1]):
+        why = plausible_time(float(edge), now)
+        if why:
+            reject(path, "bad_timestamp", f"a sample time is {why}")
+
+    want = float(policy.schedule.accel_rate_hz)
+    tol = float(policy.intake.accel_rate_tolerance)
+    med = float(np.median(dt))
+    rate = 1.0 / med
+    for label, r in (("declared", declared), ("measured", rate)):
+        if r is not None and abs(r - want) > tol * want:
+            reject(path, "bad_rate",
+                   f"{label} rate {r:.3g} Hz is outside schedule.accel_rate_hz = {want:g} Hz "
+                   f"± {tol:.0%} (intake.accel_rate_tolerance)")
+    xyz = arr[:, 1:4] * scale if scale != 1.0 else np.ascontiguousarray(arr[:, 1:4])
+    mag_med = float(np.median(np.sqrt(np.einsum("ij,ij->i", xyz, xyz))))
+    lo, hi = MAGNITUDE_RANGE_G
+    if not lo <= mag_med <= hi:
+        reject(path, "bad_unit",
+               f"the median magnitude is not within {lo:g}–{hi:g} g, as a device sensing "
+               "gravity reads; is the declared unit right?")
+    warnings, dropped = [], {}
+    gaps = dt > GAP_FACTOR / want
+    if gaps.any():
+        n_gaps = int(gaps.sum())
+        lost = float(np.sum(dt[gaps] - 1.0 / want))
+        dropped["gap"] = n_gaps
+        warnings.append(f"{n_gaps} gap(s) in the samples, about {lost:.1f} s missing")
+    return AccelRecord(path=str(path), t=t, xyz_g=xyz, rate_hz=rate,
+                       warnings=warnings, dropped=dropped)

@@ -1,0 +1,161 @@
+"""Audio snippets: WAV, FLAC or Ogg Vorbis from bytes, to mono at ``intake.audio_sr``.
+
+Validation, in order (first failure wins):
+
+1. the container is one soundfile recognises (else ``not_audio``);
+2. the frames present are the frames the header claims, checked on the RIFF
+   ``data`` chunk of a WAV and the STREAMINFO total of a FLAC, and the decoder
+   reads to the end without error (else ``truncated``);
+3. the duration is ``schedule.audio_snippet_seconds`` within
+   ``intake.audio_length_tolerance_seconds`` (else ``wrong_length``);
+4. every sample is finite and the signal is not constant, which is what an
+   all-zero buffer or a stuck converter produces (else ``silent_corrupt``);
+5. the file name carries a plausible start time (else ``bad_timestamp``).
+"""
+
+from __future__ import annotations
+
+import io
+import struct
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ._common import now_or, plausible_time, reject, stamp_from_name
+
+try:  # librosa depends on soxr; keep a scipy path for installs without it
+    import soxr  # noqa: F401
+
+    RES_TYPE = "soxr_hq"
+except ImportError:  # pragma: no cover
+    RES_TYPE = "polyphase"
+
+# Half a 16-bit LSB: a peak-to-peak swing below this is no signal at all.
+CONSTANT_PTP = 2.0 ** -16
+
+_MAGIC = {b"RIFF": "wav", b"RF64": "wav", b"fLaC": "flac", b"OggS": "ogg"}
+
+
+@dataclass
+class AudioClip:
+    """A decoded, validated snippet."""
+
+    y: np.ndarray          # float32 mono at ``sr``
+    sr: int
+    t: float               # recording start, Unix seconds (UTC)
+    orig_sr: int
+    channels: int
+    n_frames: int          # frames decoded at ``orig_sr``
+    warnings: list[str] = field(default_factory=list)
+
+
+def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioClip:
+    """Decode and validate one snippet; see the module docstring for the checks."""
+    import soundfile as sf
+
+    now = now_or(now)
+    container = _MAGIC.get(data[:4])
+    claimed = None
+    if container == "wav" and data[:4] == b"RIFF":
+        claimed = _wav_claimed_frames(path, data)
+    elif container == "flac":
+        claimed = _flac_claimed_frames(data)
+
+    target = float(policy.schedule.audio_snippet_seconds)
+    tol = float(policy.intake.audio_length_tolerance_seconds)
+    try:
+        with sf.SoundFile(io.BytesIO(data)) as f:
+            orig_sr = int(f.samplerate)
+            channels = int(f.channels)
+            if orig_sr <= 0 or channels <= 0:
+                reject(path, "bad_header", "sample rate or channel count is zero")
+            # Read at most a little more than the longest allowed snippet, so a
+            # small compressed file cannot expand into gigabytes.
+            limit = int(np.ceil((target + tol) * orig_sr)) + 1
+            y = f.read(frames=limit, dtype="float32", always_2d=True)
+            header_frames = int(f.frames) if f.frames > 0 else None
+    except (sf.SoundFileError, RuntimeError, ValueError, TypeError, EOFError, struct.error) as e:
+        if container is None:
+            reject(path, "not_audio", "not a WAV, FLAC or Ogg Vorbis file")
+        reject(path, "truncated", f"the {container.upper()} decoder failed: {_short(e)}")
+    n = int(y.shape[0])
+    if n >= limit:
+        reject(path, "wrong_length",
+               f"longer than {target + tol:g} s (schedule.audio_snippet_seconds = {target:g} "
+               f"± intake.audio_length_tolerance_seconds = {tol:g})")
+    if claimed is not None and n < claimed:
+        reject(path, "truncated", f"{n} of the {claimed} frames the header claims are present")
+    if header_frames is not None and n < header_frames:
+        reject(path, "truncated", f"decoded {n} of {header_frames} frames")
+    if n == 0:
+        reject(path, "truncated", "no audio frames")
+    dur = n / orig_sr
+    if abs(dur - target) > tol + 0.5 / orig_sr:
+        reject(path, "wrong_length",
+               f"{dur:.3f} s, expected {target:g} ± {tol:g} s "
+               "(schedule.audio_snippet_seconds ± intake.audio_length_tolerance_seconds)")
+    if not np.isfinite(y).all():
+        reject(path, "silent_corrupt", "samples are NaN or infinite")
+    mono = y.mean(axis=1) if channels > 1 else y[:, 0]
+    if float(np.ptp(mono)) < CONSTANT_PTP:
+        reject(path, "silent_corrupt", "the signal is constant (all zero or a stuck DC level)")
+    t = stamp_from_name(path)
+    if t is None:
+        reject(path, "bad_timestamp", "the file name carries no start time YYYYMMDDTHHMMSSZ")
+    why = plausible_time(t, now)
+    if why:
+        reject(path, "bad_timestamp", f"start time in the file name is {why}")
+    sr = int(policy.intake.audio_sr)
+    mono = np.ascontiguousarray(mono, dtype=np.float32)
+    if orig_sr != sr:
+        mono = resample(mono, orig_sr, sr)
+    return AudioClip(y=mono, sr=sr, t=t, orig_sr=orig_sr, channels=channels, n_frames=n)
+
+
+def resample(y: np.ndarray, orig_sr: int, sr: int) -> np.ndarray:
+    """Band-limited resampling with librosa (soxr "HQ" when available)."""
+    import librosa
+
+    return librosa.resample(y, orig_sr=orig_sr, target_sr=sr, res_type=RES_TYPE).astype(np.float32)
+
+
+def _wav_claimed_frames(path, data: bytes) -> int | None:
+    """Frames the RIFF header promises, or ``None`` if it cannot say."""
+    if len(data) < 12 or data[8:12] != b"WAVE":
+        return None
+    pos = 12
+    block_align = None
+    while pos + 8 <= len(data):
+        cid = data[pos:pos + 4]
+        (size,) = struct.unpack_from("<I", data, pos + 4)
+        body = pos + 8
+        if cid == b"fmt " and size >= 16 and body + 16 <= len(data):
+            block_align = struct.unpack_from("<H", data, body + 12)[0]
+        elif cid == b"data":
+            if size in (0, 0xFFFFFFFF):
+                # A streaming writer that never finalised its header.
+                reject(path, "truncated", "the WAV data chunk size was never written")
+            available = len(data) - body
+            if size > available:
+                reject(path, "truncated",
+                       f"the WAV data chunk claims {size} bytes but {available} are present")
+            return size // block_align if block_align else None
+        pos = body + size + (size & 1)  # chunks are padded to even length
+    return None
+
+
+def _flac_claimed_frames(data: bytes) -> int | None:
+    """Total samples from FLAC STREAMINFO (0 means "unknown")."""
+    if len(data) < 42 or (data[4] & 0x7F) != 0:
+        return None
+    (word,) = struct.unpack_from(">Q", data, 8 + 10)
+    total = word & ((1 << 36) - 1)
+    return total or None
+
+
+def _short(e: Exception) -> str:
+    msg = str(e)
+    # soundfile prefixes "Error opening <_io.BytesIO object at 0x…>: "
+    if ">: " in msg:
+        msg = msg.split(">: ", 1)[1]
+    return msg.strip()[:120] or type(e).__name__
