@@ -1,0 +1,375 @@
+"""Keys at rest: the vault key, the content-MAC key and the device signing key.
+
+Terminology
+-----------
+vault key
+    32 random bytes; the AES-256-GCM key that seals every vault record.
+content key
+    32 random bytes; the HMAC-SHA256 key for *content MACs*.  A content MAC
+    identifies raw bytes (the same file always gets the same item id) without
+    letting anyone who holds a recording confirm that it passed through this
+    device, which a plain hash would.
+device key
+    An Ed25519 key pair that signs ledger entries and bundles.  The public half
+    (``keys/device.pub``) is readable without the passphrase so an auditor can
+    verify a copied home.
+key-encryption key (KEK)
+    With a passphrase, scrypt (n=2**15, r=8, p=1) turns it and a per-file salt
+    into a 32-byte key that wraps the secret with AES-256-GCM.
+
+Files (all 0600 in a 0700 directory, written atomically)::
+
+    HOME/keys/vault.key       {"v":1,"name":"vault","store":"file"|"keyring","wrap":"none"|"scrypt-aesgcm",...}
+    HOME/keys/content.key     same layout
+    HOME/keys/device.ed25519  PKCS8 PEM, encrypted with the passphrase when one is given
+    HOME/keys/device.pub      64 hex digits: the raw Ed25519 public key, then a newline
+
+The OS keyring (the optional ``keyring`` package) holds the vault and content
+keys when it is importable, has a real backend and no passphrase is in use; the
+key file then only records where the secret lives.  Details and the reasons for
+the scrypt parameters are in ``docs/vault.md``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import json
+import os
+import re
+from pathlib import Path
+
+from cryptography.exceptions import InvalidTag
+from cryptography.hazmat.primitives import serialization
+from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
+from cryptography.hazmat.primitives.ciphers.aead import AESGCM
+from cryptography.hazmat.primitives.kdf.scrypt import Scrypt
+
+from .errors import IntegrityError, StateError, UsageError
+from .home import DIR_MODE, Home, overwrite_and_unlink, write_private
+
+KEY_BYTES = 32
+KEYFILE_VERSION = 1
+
+# scrypt cost: n=2**15, r=8 needs 128*r*n = 32 MiB and about 0.1 s on a laptop
+# core, paid once per unlock.  That is the interactive setting commonly
+# recommended (common practice, no single source); memory-hardness is the point
+# of scrypt (RFC 7914), so r and p stay at their usual 8 and 1.
+SCRYPT_N = 2 ** 15
+SCRYPT_R = 8
+SCRYPT_P = 1
+SALT_BYTES = 16
+
+KEYRING_SERVICE = "lethe"
+VAULT_KEY_FILE = "vault.key"
+CONTENT_KEY_FILE = "content.key"
+DEVICE_KEY_FILE = "device.ed25519"
+DEVICE_PUB_FILE = "device.pub"
+
+
+class PassphraseError(StateError):
+    """The key files need a passphrase that was not given, or the one given is wrong."""
+
+
+def device_key_id(public_key) -> str:
+    """First 16 hex digits of SHA-256 of the raw 32-byte Ed25519 public key.
+
+    Parameters
+    ----------
+    public_key : Ed25519PublicKey or bytes
+        The key, or its raw 32 bytes.
+    """
+    raw = _raw_public(public_key)
+    return hashlib.sha256(raw).hexdigest()[:16]
+
+
+def content_mac(key: bytes, data: bytes) -> str:
+    """Hex HMAC-SHA256 of ``data`` under ``key`` (RFC 2104 with SHA-256)."""
+    if not isinstance(key, (bytes, bytearray)) or len(key) < 16:
+        raise UsageError(f"content_mac: expected a key of at least 16 bytes, got {type(key).__name__}"
+                         f"{'' if not isinstance(key, (bytes, bytearray)) else f' of {len(key)} bytes'}")
+    return hmac.new(bytes(key), data, hashlib.sha256).hexdigest()
+
+
+def public_key_from(value) -> Ed25519PublicKey:
+    """Accept an Ed25519PublicKey, raw 32 bytes, 64 hex digits or a PEM block."""
+    if isinstance(value, Ed25519PublicKey):
+        return value
+    if isinstance(value, Ed25519PrivateKey):
+        return value.public_key()
+    if isinstance(value, (bytes, bytearray)) and len(value) == 32:
+        return Ed25519PublicKey.from_public_bytes(bytes(value))
+    if isinstance(value, (bytes, bytearray)):
+        try:
+            value = bytes(value).decode("ascii")
+        except UnicodeDecodeError:
+            value = None
+    if isinstance(value, str):
+        text = value.strip()
+        if re.fullmatch(r"[0-9a-fA-F]{64}", text):
+            return Ed25519PublicKey.from_public_bytes(bytes.fromhex(text))
+        if text.startswith("-----BEGIN PUBLIC KEY-----"):
+            try:
+                key = serialization.load_pem_public_key(text.encode("ascii"))
+            except ValueError:
+                key = None
+            if isinstance(key, Ed25519PublicKey):
+                return key
+    raise UsageError("expected an Ed25519 public key (object, 32 raw bytes, 64 hex digits or PEM)")
+
+
+def read_device_public(keys_dir) -> Ed25519PublicKey:
+    """Read ``device.pub`` from a keys directory (no passphrase needed)."""
+    path = Path(keys_dir) / DEVICE_PUB_FILE
+    try:
+        text = path.read_text("ascii")
+    except FileNotFoundError:
+        raise StateError(f"{path}: no device public key here") from None
+    try:
+        return public_key_from(text)
+    except (UsageError, ValueError):
+        raise IntegrityError(f"{path}: not an Ed25519 public key (expected 64 hex digits)") from None
+
+
+def _raw_public(public_key) -> bytes:
+    if isinstance(public_key, (bytes, bytearray)) and len(public_key) == 32:
+        return bytes(public_key)
+    return public_key_from(public_key).public_bytes(serialization.Encoding.Raw,
+                                                    serialization.PublicFormat.Raw)
+
+
+def _as_passphrase(passphrase) -> bytes | None:
+    if passphrase is None:
+        return None
+    if isinstance(passphrase, str):
+        passphrase = passphrase.encode("utf-8")
+    if not isinstance(passphrase, (bytes, bytearray)):
+        raise UsageError(f"passphrase: expected bytes or str, got {type(passphrase).__name__}")
+    if not passphrase:
+        raise UsageError("passphrase: expected a non-empty passphrase (or None for none)")
+    return bytes(passphrase)
+
+
+def _keyring():
+    """The keyring module when it is installed and has a usable backend, else None."""
+    if os.environ.get("LETHE_NO_KEYRING"):
+        return None
+    try:
+        import keyring  # optional dependency
+        import keyring.backends.fail
+    except Exception:
+        return None
+    try:
+        backend = keyring.get_keyring()
+        if isinstance(backend, keyring.backends.fail.Keyring) or backend.priority <= 0:
+            return None
+    except Exception:
+        return None
+    return keyring
+
+
+class Keystore:
+    """The home's keys.
+
+    Parameters
+    ----------
+    home : Home or path-like
+        The lethe home (its ``keys/`` directory holds the key files).
+    passphrase : bytes or str, optional
+        When given, new secrets are wrapped with a scrypt-derived key and the
+        device key is PKCS8-encrypted; existing wrapped keys need it to open.
+    use_keyring : bool, optional
+        Keep the vault and content keys in the OS keyring when one is
+        available (default: yes, unless a passphrase is given or
+        ``LETHE_NO_KEYRING`` is set).
+    """
+
+    def __init__(self, home, passphrase: bytes | None = None, *, use_keyring: bool | None = None):
+        self.home = home if isinstance(home, Home) else Home(home)
+        self._passphrase = _as_passphrase(passphrase)
+        if use_keyring is None:
+            use_keyring = self._passphrase is None
+        self._use_keyring = bool(use_keyring) and self._passphrase is None
+        self._cache: dict[str, object] = {}
+
+    keys_dir = property(lambda self: self.home.keys)
+
+    def __repr__(self):
+        return f"Keystore({str(self.home.root)!r}, passphrase={'set' if self._passphrase else 'none'})"
+
+    # -- creation ----------------------------------------------------------
+    def exists(self) -> bool:
+        return all((self.keys_dir / n).exists() for n in (VAULT_KEY_FILE, CONTENT_KEY_FILE,
+                                                            DEVICE_KEY_FILE, DEVICE_PUB_FILE))
+
+    def ensure(self) -> "Keystore":
+        """Create any missing key (idempotent); existing keys are never replaced."""
+        old = os.umask(0o077)
+        try:
+            self.keys_dir.mkdir(parents=True, exist_ok=True, mode=DIR_MODE)
+            os.chmod(self.keys_dir, DIR_MODE)
+        finally:
+            os.umask(old)
+        for name, label in ((VAULT_KEY_FILE, "vault"), (CONTENT_KEY_FILE, "content")):
+            if not (self.keys_dir / name).exists():
+                self._create_secret(name, label)
+        priv = self.keys_dir / DEVICE_KEY_FILE
+        if not priv.exists():
+            key = Ed25519PrivateKey.generate()
+            enc = (serialization.BestAvailableEncryption(self._passphrase) if self._passphrase
+                   else serialization.NoEncryption())
+            write_private(priv, key.private_bytes(serialization.Encoding.PEM,
+                                                  serialization.PrivateFormat.PKCS8, enc))
+            self._write_public(key.public_key())
+            self._cache["device"] = key
+        elif not (self.keys_dir / DEVICE_PUB_FILE).exists():
+            self._write_public(self.device_key().public_key())
+        return self
+
+    def _write_public(self, pub: Ed25519PublicKey) -> None:
+        write_private(self.keys_dir / DEVICE_PUB_FILE, (_raw_public(pub).hex() + "\n").encode("ascii"))
+
+    def _create_secret(self, name: str, label: str) -> None:
+        secret = os.urandom(KEY_BYTES)
+        doc = {"v": KEYFILE_VERSION, "name": label}
+        kr = _keyring() if self._use_keyring else None
+        if kr is not None:
+            account = self._keyring_account(label)
+            try:
+                kr.set_password(KEYRING_SERVICE, account, secret.hex())
+                doc.update(store="keyring", service=KEYRING_SERVICE, account=account, wrap="none")
+            except Exception:
+                kr = None
+        if kr is None:
+            doc["store"] = "file"
+            if self._passphrase:
+                doc.update(self._wrap(secret, label))
+            else:
+                doc.update(wrap="none", key=secret.hex())
+        write_private(self.keys_dir / name, json.dumps(doc, sort_keys=True).encode() + b"\n")
+        self._cache[label] = secret
+
+    def _keyring_account(self, label: str) -> str:
+        # One entry per home: the home path's hash keeps two homes apart
+        # without putting the path itself in the keyring's listing.
+        tag = hashlib.sha256(str(self.home.root).encode()).hexdigest()[:16]
+        return f"{label}:{tag}"
+
+    # -- passphrase wrap -----------------------------------------------------
+    def _kek(self, salt: bytes, n: int, r: int, p: int) -> bytes:
+        return Scrypt(salt=salt, length=KEY_BYTES, n=n, r=r, p=p).derive(self._passphrase)
+
+    def _wrap(self, secret: bytes, label: str) -> dict:
+        salt, nonce = os.urandom(SALT_BYTES), os.urandom(12)
+        kek = self._kek(salt, SCRYPT_N, SCRYPT_R, SCRYPT_P)
+        ct = AESGCM(kek).encrypt(nonce, secret, f"lethe-key\0{label}".encode())
+        return {"wrap": "scrypt-aesgcm", "kdf": {"n": SCRYPT_N, "r": SCRYPT_R, "p": SCRYPT_P,
+                                                  "salt": salt.hex()},
+                "nonce": nonce.hex(), "ct": ct.hex()}
+
+    # -- reading -------------------------------------------------------------
+    def _secret(self, name: str, label: str) -> bytes:
+        if label in self._cache:
+            return self._cache[label]
+        path = self.keys_dir / name
+        try:
+            doc = json.loads(path.read_text("utf-8"))
+        except FileNotFoundError:
+            raise StateError(f"{path}: missing key file; run 'lethe init' (or Keystore.ensure())") from None
+        except (ValueError, UnicodeDecodeError):
+            raise IntegrityError(f"{path}: damaged key file (not JSON)") from None
+        if not isinstance(doc, dict) or doc.get("v") != KEYFILE_VERSION:
+            raise IntegrityError(f"{path}: unsupported key file (expected v={KEYFILE_VERSION})")
+        try:
+            if doc.get("store") == "keyring":
+                kr = _keyring()
+                if kr is None:
+                    raise StateError(f"{path}: the key is kept in the OS keyring, which is not available now")
+                value = kr.get_password(doc["service"], doc["account"])
+                if value is None:
+                    raise StateError(f"{path}: the OS keyring has no entry {doc['account']!r} any more")
+                secret = bytes.fromhex(value)
+            elif doc.get("wrap") == "none":
+                secret = bytes.fromhex(doc["key"])
+            elif doc.get("wrap") == "scrypt-aesgcm":
+                if not self._passphrase:
+                    raise PassphraseError(f"{path}: this key is protected by a passphrase; none was given")
+                kdf = doc["kdf"]
+                kek = self._kek(bytes.fromhex(kdf["salt"]), int(kdf["n"]), int(kdf["r"]), int(kdf["p"]))
+                try:
+                    secret = AESGCM(kek).decrypt(bytes.fromhex(doc["nonce"]), bytes.fromhex(doc["ct"]),
+                                                 f"lethe-key\0{label}".encode())
+                except InvalidTag:
+                    raise PassphraseError(f"{path}: wrong passphrase (or the key file was altered)") from None
+            else:
+                raise IntegrityError(f"{path}: unknown key wrapping {doc.get('wrap')!r}")
+        except (KeyError, TypeError, ValueError) as e:
+            raise IntegrityError(f"{path}: damaged key file ({e.__class__.__name__}: {e})") from None
+        if len(secret) != KEY_BYTES:
+            raise IntegrityError(f"{path}: key has {len(secret)} bytes, expected {KEY_BYTES}")
+        self._cache[label] = secret
+        return secret
+
+    def vault_key(self) -> bytes:
+        """The 32-byte AES-256-GCM key for the vault."""
+        return self._secret(VAULT_KEY_FILE, "vault")
+
+    def content_key(self) -> bytes:
+        """The 32-byte HMAC-SHA256 key for content MACs."""
+        return self._secret(CONTENT_KEY_FILE, "content")
+
+    def device_key(self) -> Ed25519PrivateKey:
+        """The Ed25519 signing key (needs the passphrase if it was created with one)."""
+        if "device" in self._cache:
+            return self._cache["device"]
+        path = self.keys_dir / DEVICE_KEY_FILE
+        try:
+            pem = path.read_bytes()
+        except FileNotFoundError:
+            raise StateError(f"{path}: missing device key; run 'lethe init' (or Keystore.ensure())") from None
+        encrypted = b"ENCRYPTED PRIVATE KEY" in pem
+        if encrypted and not self._passphrase:
+            raise PassphraseError(f"{path}: the device key is protected by a passphrase; none was given")
+        try:
+            key = serialization.load_pem_private_key(pem, password=self._passphrase if encrypted else None)
+        except ValueError:
+            if encrypted:
+                raise PassphraseError(f"{path}: wrong passphrase (or the key file was altered)") from None
+            raise IntegrityError(f"{path}: damaged device key (not a PKCS8 PEM key)") from None
+        if not isinstance(key, Ed25519PrivateKey):
+            raise IntegrityError(f"{path}: not an Ed25519 key")
+        self._cache["device"] = key
+        return key
+
+    def device_public(self) -> Ed25519PublicKey:
+        """The device's public key, read from ``device.pub`` (no passphrase needed)."""
+        return read_device_public(self.keys_dir)
+
+    def device_key_id(self) -> str:
+        return device_key_id(self.device_public())
+
+    # -- withdrawal ------------------------------------------------------------
+    def destroy(self) -> int:
+        """Overwrite and unlink every key file (and keyring entries); returns files removed.
+
+        Once the vault key is gone the vault's ciphertext cannot be read, even
+        where the filesystem keeps old blocks (see ``docs/vault.md``).
+        """
+        removed = 0
+        for name, label in ((VAULT_KEY_FILE, "vault"), (CONTENT_KEY_FILE, "content")):
+            path = self.keys_dir / name
+            try:
+                doc = json.loads(path.read_text("utf-8"))
+                if doc.get("store") == "keyring":
+                    kr = _keyring()
+                    if kr is not None:
+                        kr.delete_password(doc["service"], doc["account"])
+            except Exception:
+                pass  # a damaged or absent file is removed below all the same
+        for name in (VAULT_KEY_FILE, CONTENT_KEY_FILE, DEVICE_KEY_FILE, DEVICE_PUB_FILE):
+            path = self.keys_dir / name
+            if path.exists() or path.is_symlink():
+                overwrite_and_unlink(path)
+                removed += 1
+        self._cache.clear()
+        return removed
