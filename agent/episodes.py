@@ -253,6 +253,15 @@ def study_start(home) -> float | None:
         return None
 
 
+def participant_tz(home, policy) -> ZoneInfo:
+    """The participant's zone: home config ``timezone``, else the policy's default."""
+    try:
+        name = home.read_config().get("timezone")
+    except Exception:
+        name = None
+    return ZoneInfo(name or policy.study.default_timezone)
+
+
 def load_episodes(vault) -> list[dict]:
     """All stored episodes, sorted by ``utc``."""
     return sorted((obj for _rid, obj in vault.items("episodes")), key=lambda e: (e["utc"], e["key"]))
@@ -276,7 +285,7 @@ def build_episodes(home, policy, vault, now: float | None = None) -> list[dict]:
     moods = [obj for _rid, obj in vault.items("mood_reports")]
     mood_rids = [rid for rid, _obj in vault.items("mood_reports")]
     start = study_start(home)
-    eps = episodes_from_policy(coded, moods, policy, home.timezone(), study_start_utc=start, now=now)
+    eps = episodes_from_policy(coded, moods, policy, participant_tz(home, policy), study_start_utc=start, now=now)
     settled_before = now - float(policy.retention.feature_days) * 86400.0
     window_s = float(policy.episodes.mood_window_minutes) * 60.0
     with vault.transaction():
