@@ -91,6 +91,12 @@ def content_mac(key: bytes, data: bytes) -> str:
     return hmac.new(bytes(key), data, hashlib.sha256).hexdigest()
 
 
+def derive_kek(passphrase: bytes, salt: bytes, *, n: int = SCRYPT_N, r: int = SCRYPT_R, p: int = SCRYPT_P,
+               length: int = KEY_BYTES) -> bytes:
+    """scrypt (RFC 7914) of a passphrase: the key-encryption key that wraps a secret."""
+    return Scrypt(salt=salt, length=length, n=n, r=r, p=p).derive(passphrase)
+
+
 def public_key_from(value) -> Ed25519PublicKey:
     """Accept an Ed25519PublicKey, raw 32 bytes, 64 hex digits or a PEM block."""
     if isinstance(value, Ed25519PublicKey):
@@ -257,7 +263,7 @@ class Keystore:
 
     # -- passphrase wrap -----------------------------------------------------
     def _kek(self, salt: bytes, n: int, r: int, p: int) -> bytes:
-        return Scrypt(salt=salt, length=KEY_BYTES, n=n, r=r, p=p).derive(self._passphrase)
+        return derive_kek(self._passphrase, salt, n=n, r=r, p=p)
 
     def _wrap(self, secret: bytes, label: str) -> dict:
         salt, nonce = os.urandom(SALT_BYTES), os.urandom(12)
