@@ -1,0 +1,51 @@
+"""``lethe run``: the intake agent (watch the inbox, or drain it once with ``--once``)."""
+
+from __future__ import annotations
+
+from ._common import add_json, emit, home_from
+
+
+def register(sub) -> None:
+    p = sub.add_parser("run", help="run the intake agent: featurise raw drops and destroy the originals",
+                       description="Watch HOME/inbox and take each raw file when it is complete: read it "
+                                   "safely, keep only its features (encrypted), destroy the original within "
+                                   "the policy's raw-retention window. Stop with Ctrl-C or SIGTERM.")
+    p.add_argument("--once", action="store_true", help="drain the inbox, print a summary and exit")
+    p.add_argument("--settle", type=float, metavar="S", default=None,
+                   help="seconds a file's size and mtime must stay unchanged to count as complete "
+                        "(default: the policy's retention.settle_seconds)")
+    add_json(p)
+    p.set_defaults(func=_run)
+
+
+def _run(args) -> int:
+    import os
+    import signal
+    import threading
+
+    from ..errors import UsageError
+
+    home = home_from(args).require()
+    if args.settle is not None and not (0.0 <= args.settle <= 60.0):
+        raise UsageError(f"--settle {args.settle}: expected seconds between 0 and 60")
+    # numba (used by librosa) reads this when first imported: it must point into
+    # the home before anything imports librosa, or each start recompiles.
+    os.environ.setdefault("NUMBA_CACHE_DIR", str(home.numba_cache))
+    home.numba_cache.mkdir(parents=True, exist_ok=True, mode=0o700)
+    policy = home.load_policy()
+
+    from ..intake.watcher import run_agent
+
+    stop = threading.Event()
+
+    def _stop(signum, frame):
+        stop.set()
+
+    old = {s: signal.signal(s, _stop) for s in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        report = run_agent(home, policy, once=args.once, settle_s=args.settle, stop_event=stop)
+    finally:
+        for s, h in old.items():
+            signal.signal(s, h)
+    emit(args, report.as_dict(), report.text())
+    return 0

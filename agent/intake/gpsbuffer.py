@@ -1,0 +1,121 @@
+"""The rolling GPS buffer: validated fixes wait in the vault only until they fold into stays.
+
+Terminology
+-----------
+fix
+    One validated position, vault table ``gps_fixes``, rid ``item:i``,
+    payload ``{"t", "lat", "lon", "acc_m"}`` (encrypted like every record).
+stay
+    A dwell of at least ``codebook.stay_min_minutes`` within
+    ``codebook.stay_radius_m`` (stay points: Li et al. 2008; Zheng et al. 2009),
+    vault table ``stays``, rid ``f"{t_start:.0f}"``, payload
+    ``{"t_start", "t_end", "lat", "lon", "n"}``.
+buffer horizon
+    ``retention.gps_buffer_minutes`` before the newest buffered fix.
+
+:func:`fold` runs inside the transaction that stored a GPS file's fixes (see
+:meth:`agent.intake.pipeline.Intake.commit`), so a crash leaves either the old
+buffer or the new buffer and its stays, never half of each.  After it:
+
+* every closed stay is in ``stays`` (``put``: an existing rid is left alone, so
+  running it twice adds nothing);
+* fixes folded into a closed stay are deleted;
+* fixes older than the buffer horizon are deleted even if still unfolded, so
+  raw coordinates never stay longer than the policy allows.  A stay still
+  open at the horizon is first closed at the horizon (it is stored as a stay
+  ending there, and the rest of the dwell becomes a following stay at the
+  same place), so a long stay at one place is not lost to the horizon.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+FIXES = "gps_fixes"
+STAYS = "stays"
+
+
+@dataclass
+class FoldReport:
+    fixes_before: int = 0
+    stays_new: int = 0
+    fixes_deleted: int = 0
+    fixes_left: int = 0
+
+
+def stay_rid(stay: dict) -> str:
+    return f"{float(stay['t_start']):.0f}"
+
+
+def fold(vault, policy) -> FoldReport:
+    """Fold the buffered fixes into stays and drop what may not stay (see module docstring).
+
+    Parameters
+    ----------
+    vault : agent.vault.Vault
+        Open vault; the caller normally holds a transaction.
+    policy : agent.policy.Policy
+        Uses ``codebook.stay_radius_m``, ``codebook.stay_min_minutes`` and
+        ``retention.gps_buffer_minutes``.
+    """
+    from .staypoints import extract_stays
+
+    radius_m = float(policy.codebook.stay_radius_m)
+    min_minutes = float(policy.codebook.stay_min_minutes)
+    horizon_s = float(policy.retention.gps_buffer_minutes) * 60.0
+    with vault.transaction():
+        buffered = sorted(vault.items(FIXES), key=lambda rf: (float(rf[1]["t"]), rf[0]))
+        rep = FoldReport(fixes_before=len(buffered))
+        if not buffered:
+            return rep
+        newest = float(buffered[-1][1]["t"])
+        cutoff = newest - horizon_s
+        fixes = [dict(obj) for _, obj in buffered]
+        stays, leftover = extract_stays(fixes, radius_m, min_minutes)
+        left_keys = {_key(f) for f in leftover}
+        old_open = [f for f in leftover if float(f["t"]) < cutoff]
+        if old_open:
+            # The horizon cuts an unfinished dwell: close what lies before it.
+            more, _rest = extract_stays(old_open, radius_m, min_minutes)
+            stays = list(stays) + list(more)
+            if not more:
+                # A trailing dwell that extract_stays leaves open is closed here.
+                tail = _as_stay(old_open, radius_m, min_minutes)
+                if tail is not None:
+                    stays.append(tail)
+        for s in stays:
+            if vault.put(STAYS, stay_rid(s), _stay_payload(s)):
+                rep.stays_new += 1
+        drop = [rid for rid, obj in buffered
+                if _key(obj) not in left_keys or float(obj["t"]) < cutoff]
+        if drop:
+            rep.fixes_deleted = vault.delete_many(FIXES, drop)
+        rep.fixes_left = rep.fixes_before - rep.fixes_deleted
+    return rep
+
+
+def _key(fix) -> tuple:
+    return (round(float(fix["t"]), 3), round(float(fix["lat"]), 7), round(float(fix["lon"]), 7))
+
+
+def _stay_payload(s) -> dict:
+    if isinstance(s, dict):
+        return {"t_start": float(s["t_start"]), "t_end": float(s["t_end"]), "lat": float(s["lat"]),
+                "lon": float(s["lon"]), "n": int(s.get("n", 0))}
+    return {k: getattr(s, k) for k in ("t_start", "t_end", "lat", "lon", "n")}
+
+
+def _as_stay(fixes, radius_m: float, min_minutes: float):
+    """The fixes as one stay if they all lie within ``radius_m`` of the first for ``min_minutes``."""
+    from .geo import haversine_m
+
+    first = fixes[0]
+    if float(fixes[-1]["t"]) - float(first["t"]) < min_minutes * 60.0:
+        return None
+    for f in fixes[1:]:
+        if haversine_m(first["lat"], first["lon"], f["lat"], f["lon"]) > radius_m:
+            return None
+    n = len(fixes)
+    return {"t_start": float(first["t"]), "t_end": float(fixes[-1]["t"]),
+            "lat": sum(float(f["lat"]) for f in fixes) / n, "lon": sum(float(f["lon"]) for f in fixes) / n,
+            "n": n}

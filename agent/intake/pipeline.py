@@ -1,0 +1,592 @@
+"""One raw file end to end, in the order the privacy promise needs, and :func:`drain`.
+
+Per file (``docs/intake.md`` explains each step and what a crash after it means)::
+
+    lstat + safety checks
+    -> open O_NOFOLLOW|O_NONBLOCK, fstat the descriptor, read the bytes from it
+    -> content MAC (keyed) -> item id = first 32 hex digits
+    -> ledger  received{item, kind, bytes, complete_at}
+    -> featurise (or: paused / rejected)
+    -> vault: every row and the item marker in ONE transaction (fsync'd), idempotent by item id
+    -> ledger  featurised{item, kind, rows}   or   rejected{item, kind, reason}
+    -> destroy: overwrite through the open descriptor, unlink by name under the
+       inbox descriptor after re-checking (dev, ino), fsync the directory
+    -> ledger  destroyed{item, kind, complete_at, exposure_s}
+
+Terminology
+-----------
+complete_at
+    When a raw file became complete: the later of its mtime (last write) and
+    ctime (last inode change: a rename into the inbox, or a back-dated mtime
+    set with ``utime``, which cannot back-date ctime), capped at the moment the
+    agent judged it complete, so neither a copied old mtime nor a clock in the
+    future can shrink the recorded exposure.
+exposure_s
+    ``destroyed_at - complete_at``: how long raw bytes existed in the inbox.
+deadline
+    ``complete_at + retention.raw_seconds``; files are processed oldest deadline first.
+item id
+    First 32 hex digits of the HMAC-SHA256 of the file's bytes under the
+    content key.  The same bytes give the same id across restarts, so a
+    re-read file never writes a second feature row.  Entries refused unread
+    (links, pipes, devices, oversize files) get a keyed id of their inode identity.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import stat
+import time
+from collections import Counter, defaultdict
+from dataclasses import dataclass, field
+
+from ..errors import RejectedInput
+from ..home import Home
+from .item import classify, ignored
+from .safety import InboxDir, UnsafeEntry, entry_type
+
+log = logging.getLogger("lethe.intake")
+logging.getLogger("lethe").addHandler(logging.NullHandler())  # library: silent unless the agent sets a log
+
+ITEMS_TABLE = "intake_items"   # item id -> {"kind", "t", "rows"}: which contents were already kept
+RECORDED_KINDS = ("audio", "gps", "accel", "mood", "unknown")
+_REFUSED_UNREAD = ("symlink", "fifo", "socket", "device", "hardlink")
+
+
+@dataclass
+class Outcome:
+    """What happened to one inbox entry.  ``shown`` may name the file: never persist it."""
+
+    shown: str
+    item: str
+    kind: str
+    status: str                 # "featurised", "duplicate", "rejected"
+    reason: str | None = None
+    detail: str | None = None
+    bytes: int = 0
+    rows: int = 0               # feature rows newly written
+    n_samples: int = 0
+    complete_at: float = 0.0
+    destroyed_at: float | None = None
+    exposure_s: float | None = None
+    removed: bool = False
+    warnings: list[str] = field(default_factory=list)
+
+    @property
+    def error(self) -> str | None:
+        if self.status != "rejected":
+            return None
+        return f"{self.shown}: rejected ({self.reason}): {self.detail}"
+
+
+@dataclass
+class Candidate:
+    name: str
+    lst: os.stat_result
+    complete_at: float
+
+    @property
+    def deadline_key(self):
+        return (self.complete_at, self.name)
+
+
+def complete_time(st: os.stat_result, judged_at: float) -> float:
+    """``min(max(mtime, ctime), judged_at)``: see ``complete_at`` in the module docstring."""
+    return min(max(st.st_mtime, st.st_ctime), float(judged_at))
+
+
+class Intake:
+    """The per-file pipeline over one home: inbox descriptor, vault, ledger and content key.
+
+    Parameters
+    ----------
+    home : Home or path-like
+    policy : agent.policy.Policy
+    vault, ledger : optional
+        Already-open :class:`agent.vault.Vault` and :class:`agent.ledger.Ledger`;
+        opened from the home when omitted (and then closed by :meth:`close`).
+    now : float, optional
+        A fixed clock for featurising (the readers' "not in the future" check)
+        and the pause check; the demo's backfill passes its simulated time.
+        Exposure is always measured on the real clock.
+    """
+
+    def __init__(self, home, policy, *, vault=None, ledger=None, content_key: bytes | None = None,
+                 now: float | None = None):
+        from ..keystore import Keystore
+
+        self.home = home if isinstance(home, Home) else Home(home)
+        self.policy = policy
+        self.now = None if now is None else float(now)
+        self.raw_seconds = float(policy.retention.raw_seconds)
+        ks = None
+        if content_key is None or ledger is None or vault is None:
+            ks = Keystore(self.home).ensure()
+        self._key = content_key if content_key is not None else ks.content_key()
+        self._own = []
+        if vault is None:
+            from ..vault import Vault
+
+            vault = Vault.open(self.home)
+            self._own.append(vault)
+        if ledger is None:
+            from ..ledger import Ledger
+
+            ledger = Ledger(self.home, signing_key=ks.device_key())
+        self.vault = vault
+        self.ledger = ledger
+        self.inbox = InboxDir(self.home.inbox, policy.intake.max_file_bytes)
+        self.seen_items: set[str] = set()
+
+    def close(self) -> None:
+        self.inbox.close()
+        for v in self._own:
+            v.close()
+        self._own = []
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    # -- identities ----------------------------------------------------------
+    def mac(self, data: bytes) -> str:
+        from ..keystore import content_mac
+
+        return content_mac(self._key, data)
+
+    def name_tag(self, name: str) -> str:
+        """A short keyed hash of a file name for the local log (never the name itself)."""
+        return self.mac(b"lethe/name\0" + os.fsencode(name))[:10]
+
+    def _unread_item(self, name: str, st: os.stat_result) -> str:
+        ident = f"{st.st_dev}:{st.st_ino}:{st.st_mtime_ns}:{st.st_ctime_ns}:".encode()
+        return self.mac(b"lethe/unread\0" + ident + os.fsencode(name))[:32]
+
+    # -- scanning ------------------------------------------------------------
+    def scan(self, judged_at: float | None = None, settle_s: float | None = None):
+        """Entries directly in the inbox, split into ``(ready, settling, skipped)``.
+
+        ``ready`` is sorted oldest deadline first; ``settling`` are regular
+        files modified less than ``settle_s`` ago; ``skipped`` are
+        ``(name, why)`` pairs for subdirectories (never descended, never removed).
+        """
+        judged_at = time.time() if judged_at is None else judged_at
+        settle_s = float(self.policy.retention.settle_seconds if settle_s is None else settle_s)
+        ready, settling, skipped = [], [], []
+        for name in self.inbox.names():
+            if ignored(name):
+                continue
+            lst = self.inbox.lstat(name)
+            if lst is None:
+                continue
+            if stat.S_ISDIR(lst.st_mode):
+                skipped.append((name, "directory"))
+                continue
+            c = Candidate(name, lst, complete_time(lst, judged_at))
+            if stat.S_ISREG(lst.st_mode) and judged_at - max(lst.st_mtime, lst.st_ctime) < settle_s:
+                if judged_at - c.complete_at < self.raw_seconds / 2:
+                    settling.append(c)
+                    continue
+            ready.append(c)
+        ready.sort(key=lambda c: c.deadline_key)
+        return ready, settling, skipped
+
+    # -- one file --------------------------------------------------------------
+    def process(self, name: str, judged_at: float | None = None) -> Outcome | None:
+        """Take one inbox entry through the pipeline.
+
+        Returns ``None`` when there is nothing to do (gone, ignored, a
+        directory, or it changed under us and will be looked at again).
+        """
+        judged_at = time.time() if judged_at is None else float(judged_at)
+        if ignored(name):
+            return None
+        lst = self.inbox.lstat(name)
+        if lst is None or stat.S_ISDIR(lst.st_mode):
+            return None
+        kind = classify(name) or "unknown"
+        shown = self.inbox.display(name)
+        complete_at = complete_time(lst, judged_at)
+        refusal = self.inbox.refusal(name, lst)
+        if refusal is not None and refusal.reason in _REFUSED_UNREAD:
+            return self._refuse_unread(name, lst, kind, complete_at, refusal)
+        try:
+            opened = self.inbox.open(name, lst)
+        except UnsafeEntry as e:
+            if e.reason == "changed":
+                return None  # swapped under us; the next event or sweep looks again
+            if e.reason == "too_large":
+                return self._refuse_oversize(name, lst, kind, complete_at, e)
+            if e.reason in _REFUSED_UNREAD:
+                fresh = self.inbox.lstat(name)
+                if fresh is None:
+                    return None
+                return self._refuse_unread(name, fresh, kind, complete_at, e)
+            return self._refuse_unread(name, lst, kind, complete_at, e)
+        try:
+            try:
+                data = self.inbox.read(opened)
+            except UnsafeEntry as e:
+                return self._finish_unread(name, opened, lst, kind, complete_at, e)
+            item = self.mac(data)[:32]
+            self.seen_items.add(item)
+            self.ledger.append("received", item=item, kind=kind, bytes=len(data), complete_at=complete_at)
+            out = Outcome(shown, item, kind, "rejected", bytes=len(data), complete_at=complete_at)
+            self._keep(name, data, out)
+            del data
+            if out.status == "rejected":
+                self.ledger.append("rejected", item=item, kind=kind, reason=out.reason)
+                log.warning("rejected item=%s kind=%s reason=%s name#=%s", item[:12], kind, out.reason,
+                            self.name_tag(name))
+            else:
+                self.ledger.append("featurised", item=item, kind=kind, rows=out.rows)
+            self._destroy(name, opened, lst, out)
+            opened = None
+            return out
+        finally:
+            if opened is not None:
+                opened.close()
+
+    def _keep(self, name: str, data: bytes, out: Outcome) -> None:
+        """Featurise and commit, or mark ``out`` rejected; never raises for bad content."""
+        from ..pause import is_paused
+
+        if is_paused(self.home, now=None):
+            out.reason, out.detail = "paused", "intake is paused; nothing is kept from this file"
+            return
+        if out.kind == "unknown":
+            out.reason = "unknown_format"
+            out.detail = ("unrecognised file name suffix; expected .wav .flac .ogg .gpx .nmea .gps.csv "
+                          ".accel.csv .mood.csv or .mood.json")
+            return
+        from . import featurise
+
+        try:
+            res = featurise(name, data, self.policy, now=self.now)
+        except RejectedInput as e:
+            out.reason, out.detail = e.reason, e.detail
+            return
+        except Exception as e:  # a reader bug must not stop the agent nor keep the file
+            out.reason, out.detail = "reader_error", f"{type(e).__name__} in the reader"
+            log.error("reader_error item=%s kind=%s error=%s", out.item[:12], out.kind, type(e).__name__)
+            return
+        out.n_samples = int(res.n_samples)
+        out.warnings = list(res.warnings)
+        try:
+            out.rows = self.commit(out.item, res)
+        except Exception as e:
+            out.reason, out.detail = "store_failed", f"the vault refused the features ({type(e).__name__})"
+            log.error("store_failed item=%s kind=%s error=%s", out.item[:12], out.kind, type(e).__name__)
+            return
+        out.status = "featurised" if out.rows else "duplicate"
+
+    def commit(self, item: str, res) -> int:
+        """Write an item's rows in one transaction, idempotent by item id; returns rows newly written."""
+        from .gpsbuffer import fold
+
+        v = self.vault
+        with v.transaction():
+            if (ITEMS_TABLE, item) in v:
+                return 0
+            n = 0
+            for table, rows in res.rows.items():
+                n += v.put_many(table, [(f"{item}{suffix}", obj) for suffix, obj in rows])
+            if "gps_fixes" in res.rows:
+                fold(v, self.policy)
+            v.put(ITEMS_TABLE, item, {"kind": res.kind, "t": time.time(), "rows": n})
+        return n
+
+    # -- refusals --------------------------------------------------------------
+    def _refuse_unread(self, name, lst, kind, complete_at, err: RejectedInput) -> Outcome:
+        item = self._unread_item(name, lst)
+        size = lst.st_size if stat.S_ISREG(lst.st_mode) else 0
+        self.seen_items.add(item)
+        self.ledger.append("received", item=item, kind=kind, bytes=size, complete_at=complete_at)
+        out = Outcome(self.inbox.display(name), item, kind, "rejected", err.reason, err.detail,
+                      bytes=size, complete_at=complete_at)
+        self.ledger.append("rejected", item=item, kind=kind, reason=err.reason)
+        log.warning("rejected item=%s kind=%s reason=%s type=%s name#=%s", item[:12], kind, err.reason,
+                    entry_type(lst), self.name_tag(name))
+        self._destroy(name, None, lst, out)
+        return out
+
+    def _refuse_oversize(self, name, lst, kind, complete_at, err) -> Outcome:
+        # Opened (for the overwrite) but not read; the size check on the descriptor is skipped.
+        try:
+            opened = self.inbox.open(name, lst, check_size=False)
+        except UnsafeEntry as e2:
+            if e2.reason == "changed":
+                return None
+            return self._refuse_unread(name, lst, kind, complete_at, err)
+        return self._finish_unread(name, opened, lst, kind, complete_at, err)
+
+    def _finish_unread(self, name, opened, lst, kind, complete_at, err) -> Outcome:
+        item = self._unread_item(name, lst)
+        self.seen_items.add(item)
+        self.ledger.append("received", item=item, kind=kind, bytes=opened.st.st_size, complete_at=complete_at)
+        out = Outcome(self.inbox.display(name), item, kind, "rejected", err.reason, err.detail,
+                      bytes=opened.st.st_size, complete_at=complete_at)
+        self.ledger.append("rejected", item=item, kind=kind, reason=err.reason)
+        log.warning("rejected item=%s kind=%s reason=%s name#=%s", item[:12], kind, err.reason,
+                    self.name_tag(name))
+        self._destroy(name, opened, lst, out)
+        return out
+
+    def _destroy(self, name, opened, lst, out: Outcome) -> None:
+        out.removed = self.inbox.destroy(name, opened, expect=lst if opened is None else None)
+        out.destroyed_at = time.time()
+        out.exposure_s = round(max(0.0, out.destroyed_at - out.complete_at), 6)
+        self.ledger.append("destroyed", item=out.item, kind=out.kind, complete_at=out.complete_at,
+                           exposure_s=out.exposure_s)
+
+    # -- restart reconciliation -------------------------------------------------
+    def reconcile(self, started_at: float) -> int:
+        """Close items a previous run received but did not record as destroyed.
+
+        Called after the start-up sweep: an item still open in the ledger whose
+        bytes were not among the files just swept was unlinked by a run killed
+        before it could write ``destroyed``.  Its exposure is recorded as an
+        upper bound (this run's start minus ``complete_at``) with ``recovered``.
+        Returns how many items were closed.
+        """
+        n = 0
+        for item, entry in open_items(self.ledger).items():
+            if item in self.seen_items:
+                continue
+            complete_at = float(entry.get("complete_at") or started_at)
+            self.ledger.append("destroyed", item=item, kind=entry.get("kind", "unknown"),
+                               complete_at=complete_at,
+                               exposure_s=round(max(0.0, started_at - complete_at), 6))
+            n += 1
+        return n
+
+
+def open_items(ledger) -> dict[str, dict]:
+    """Items whose latest ``received`` has no ``destroyed`` after it: ``{item: received_entry}``."""
+    opened: dict[str, dict] = {}
+    for e in ledger.entries():
+        ev = e.get("event")
+        item = e.get("item")
+        if item is None:
+            continue
+        if ev == "received":
+            opened[item] = e
+        elif ev == "destroyed":
+            opened.pop(item, None)
+    return opened
+
+
+# -- reports --------------------------------------------------------------------
+def exposure_stats(values) -> dict:
+    """``{"n", "median_s", "p95_s", "max_s"}`` (nearest-rank percentiles; empty: None)."""
+    xs = sorted(float(v) for v in values if v is not None)
+    if not xs:
+        return {"n": 0, "median_s": None, "p95_s": None, "max_s": None}
+
+    def rank(p):
+        # Nearest-rank percentile (common practice, no source).
+        return xs[max(0, math.ceil(p * len(xs)) - 1)]
+
+    return {"n": len(xs), "median_s": round(rank(0.5), 4), "p95_s": round(rank(0.95), 4),
+            "max_s": round(xs[-1], 4)}
+
+
+@dataclass
+class DrainReport:
+    """Counts of one drain by kind, rejections by reason, exposure statistics.
+
+    ``errors`` and ``skipped`` name files: show them to the participant, never persist them.
+    """
+
+    received: dict = field(default_factory=dict)
+    featurised: dict = field(default_factory=dict)
+    duplicate: dict = field(default_factory=dict)
+    rejected: dict = field(default_factory=dict)
+    destroyed: dict = field(default_factory=dict)
+    reasons: dict = field(default_factory=dict)
+    rows: int = 0
+    n_samples: dict = field(default_factory=dict)
+    exposure: dict = field(default_factory=dict)
+    over_limit: int = 0
+    recovered: int = 0
+    errors: list = field(default_factory=list)
+    skipped: list = field(default_factory=list)
+    seconds: float = 0.0
+    raw_seconds: float = 0.0
+
+    @classmethod
+    def from_outcomes(cls, outcomes, raw_seconds: float, **kw) -> "DrainReport":
+        rec, fea, dup, rej, des, why = (Counter() for _ in range(6))
+        samples = Counter()
+        rows = 0
+        for o in outcomes:
+            rec[o.kind] += 1
+            {"featurised": fea, "duplicate": dup, "rejected": rej}[o.status][o.kind] += 1
+            if o.status == "rejected":
+                why[o.reason] += 1
+            if o.destroyed_at is not None:
+                des[o.kind] += 1
+            rows += o.rows
+            samples[o.kind] += o.n_samples
+        exp = [o.exposure_s for o in outcomes]
+        return cls(received=dict(rec), featurised=dict(fea), duplicate=dict(dup), rejected=dict(rej),
+                   destroyed=dict(des), reasons=dict(why), rows=rows, n_samples=dict(samples),
+                   exposure=exposure_stats(exp),
+                   over_limit=sum(1 for x in exp if x is not None and x > raw_seconds),
+                   errors=[o.error for o in outcomes if o.error], raw_seconds=raw_seconds, **kw)
+
+    def total(self, which: str) -> int:
+        return sum(getattr(self, which).values())
+
+    def as_dict(self) -> dict:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+    def text(self) -> str:
+        def by_kind(d):
+            return ", ".join(f"{k} {d[k]}" for k in sorted(d)) or "none"
+
+        e = self.exposure
+        lines = [
+            f"received {self.total('received')} ({by_kind(self.received)})",
+            f"featurised {self.total('featurised')} ({by_kind(self.featurised)}), "
+            f"{self.total('duplicate')} already kept, {self.rows} feature rows written",
+            f"rejected {self.total('rejected')} ({by_kind(self.reasons)})",
+            f"destroyed {self.total('destroyed')} ({by_kind(self.destroyed)})",
+        ]
+        if e.get("n"):
+            lines.append(f"raw exposure: median {e['median_s']:.3f} s, p95 {e['p95_s']:.3f} s, "
+                         f"max {e['max_s']:.3f} s (limit {self.raw_seconds:g} s; "
+                         f"{self.over_limit} over the limit)")
+        if self.recovered:
+            lines.append(f"closed {self.recovered} item(s) left open by an interrupted run")
+        for s in self.skipped:
+            lines.append(f"skipped: {s}")
+        for err in self.errors:
+            lines.append(err)
+        lines.append(f"took {self.seconds:.2f} s")
+        return "\n".join(lines)
+
+
+def drain(home, policy, now: float | None = None, *, settle_s: float | None = None,
+          intake: Intake | None = None, on_outcome=None) -> DrainReport:
+    """Process everything in the inbox, oldest deadline first, until it holds none of our files.
+
+    Files still being written (modified within ``settle_s``) are waited for;
+    files that arrive during the drain are taken too.  Subdirectories are
+    reported, never entered.  Does not take the home lock: :func:`run_agent`
+    and ``lethe run`` do.
+
+    Parameters
+    ----------
+    home : Home or path-like
+    policy : agent.policy.Policy
+    now : float, optional
+        Simulated clock passed to the readers (see :class:`Intake`).
+    settle_s : float, optional
+        Overrides ``policy.retention.settle_seconds``.
+    """
+    t0 = time.time()
+    own = intake is None
+    if own:
+        intake = Intake(home, policy, now=now)
+    outcomes, skipped = [], {}
+    try:
+        while True:
+            ready, settling, dirs = intake.scan(settle_s=settle_s)
+            for name, why in dirs:
+                skipped[name] = f"{intake.inbox.display(name)}: {why}; never entered nor removed"
+            for c in ready:
+                out = _process_safely(intake, c.name, outcomes)
+                if out is not None and on_outcome is not None:
+                    on_outcome(out)
+            if not ready and not settling:
+                break
+            if not ready:
+                wait = min(max(0.0, float(settle_s if settle_s is not None else
+                                          policy.retention.settle_seconds)), 1.0)
+                time.sleep(max(wait / 4, 0.01))  # waiting for a writer to finish: short and bounded
+        recovered = intake.reconcile(t0)
+    finally:
+        if own:
+            intake.close()
+    return DrainReport.from_outcomes(outcomes, float(policy.retention.raw_seconds),
+                                     skipped=sorted(skipped.values()), recovered=recovered,
+                                     seconds=round(time.time() - t0, 3))
+
+
+def _process_safely(intake: Intake, name: str, outcomes: list) -> Outcome | None:
+    try:
+        out = intake.process(name)
+    except (OSError, ValueError) as e:
+        # The agent keeps running; the name is shown on the terminal, not logged.
+        log.error("intake_error name#=%s error=%s", intake.name_tag(name), type(e).__name__)
+        return None
+    if out is not None:
+        outcomes.append(out)
+    return out
+
+
+def intake_counts(home, policy=None, now: float | None = None) -> dict:
+    """Ledger-derived counts for ``lethe status``, plus the inbox's current raw files.
+
+    Returns
+    -------
+    dict
+        ``{"received": {kind: n}, "featurised": {...}, "rejected": {...},
+        "destroyed": {...}, "reasons": {reason: n}, "exposure": {...},
+        "inbox": {"files": n, "oldest_age_s": float | None, "limit_s": float}}``.
+        Reads the ledger without a signing key and lists the inbox without
+        opening any file.
+    """
+    from ..ledger import Ledger
+
+    h = home if isinstance(home, Home) else Home(home)
+    counts = {k: defaultdict(int) for k in ("received", "featurised", "rejected", "destroyed")}
+    reasons: Counter = Counter()
+    exp = []
+    kind_of: dict[str, str] = {}
+    if h.ledger_path.exists():
+        for e in Ledger(h, signing_key=None).entries():
+            ev = e.get("event")
+            if ev in counts:
+                kind = e.get("kind", "unknown")
+                counts[ev][kind] += 1
+                if e.get("item"):
+                    kind_of[e["item"]] = kind
+                if ev == "rejected":
+                    reasons[e.get("reason", "?")] += 1
+                if ev == "destroyed" and e.get("exposure_s") is not None:
+                    exp.append(e["exposure_s"])
+    now = time.time() if now is None else float(now)
+    files, oldest = 0, None
+    try:
+        with os.scandir(h.inbox) as it:
+            for d in it:
+                if ignored(d.name):
+                    continue
+                try:
+                    st = d.stat(follow_symlinks=False)
+                except FileNotFoundError:
+                    continue
+                if stat.S_ISDIR(st.st_mode):
+                    continue
+                files += 1
+                age = now - max(st.st_mtime, st.st_ctime)
+                oldest = age if oldest is None else max(oldest, age)
+    except FileNotFoundError:
+        pass
+    if policy is None:
+        try:
+            policy = h.load_policy()
+        except Exception:
+            policy = None
+    limit = float(policy.retention.raw_seconds) if policy is not None else None
+    out = {k: dict(v) for k, v in counts.items()}
+    out.update(reasons=dict(reasons), exposure=exposure_stats(exp),
+               inbox={"files": files, "oldest_age_s": None if oldest is None else round(max(oldest, 0.0), 3),
+                      "limit_s": limit})
+    return out

@@ -1,0 +1,303 @@
+"""Safe access to inbox entries: look, open, read and destroy without being redirected.
+
+Every operation here works on a *name inside the inbox* relative to a directory
+file descriptor held for the inbox, never on a path string that the file system
+could resolve somewhere else.  The rules (see ``docs/intake.md``, "Safety"):
+
+* an entry is examined with ``lstat`` (a symlink is seen as a symlink);
+* a regular file is opened with ``O_NOFOLLOW | O_NONBLOCK | O_NOCTTY`` and the
+  open descriptor is checked with ``fstat``: still a regular file, one link,
+  the same device and inode that ``lstat`` saw, within the size cap;
+* a FIFO, socket or device node is never opened (opening a FIFO for reading
+  would block; opening a device can have side effects);
+* a symlink is never followed: the link itself (a name in our inbox) is
+  removed, its target is never opened nor touched;
+* a hardlinked file (``st_nlink > 1``) is never read nor overwritten, since the
+  bytes belong to another name as well: only our name is unlinked, so the
+  other name's data survives unchanged;
+* a directory is never descended into nor removed: it is reported;
+* destruction overwrites through the descriptor we hold (not by path), then
+  unlinks by name relative to the inbox descriptor after re-checking that the
+  name still refers to the same device and inode, then fsyncs the directory.
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import stat
+from dataclasses import dataclass
+
+from ..errors import RejectedInput, StateError
+
+# Reason codes for entries refused before any byte is read.  They extend the
+# readers' codes (docs/inbox-formats.md) and are stable: the ledger and the
+# intake report carry them.
+UNSAFE_REASONS = {
+    "symlink": "a symbolic link; never followed, the link itself is removed",
+    "hardlink": "a file with more than one hard link; not read, only the inbox name is removed",
+    "fifo": "a named pipe; never opened, the name is removed",
+    "socket": "a socket; never opened, the name is removed",
+    "device": "a device node; never opened, the name is removed",
+    "too_large": "larger than intake.max_file_bytes; not read, destroyed",
+    "changed": "the entry changed between lstat and open; it is looked at again",
+    "unreadable": "the file could not be opened or read",
+}
+
+_OPEN_FLAGS = os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_NOCTTY", 0) | getattr(os, "O_CLOEXEC", 0)
+_CHUNK = 1 << 20
+
+
+class UnsafeEntry(RejectedInput):
+    """An inbox entry refused for what it *is* (link, pipe, device, size), not its content."""
+
+
+def entry_type(st: os.stat_result) -> str:
+    """``'file'``, ``'dir'``, ``'symlink'``, ``'fifo'``, ``'socket'`` or ``'device'``."""
+    m = st.st_mode
+    if stat.S_ISLNK(m):
+        return "symlink"
+    if stat.S_ISREG(m):
+        return "file"
+    if stat.S_ISDIR(m):
+        return "dir"
+    if stat.S_ISFIFO(m):
+        return "fifo"
+    if stat.S_ISSOCK(m):
+        return "socket"
+    return "device"
+
+
+def same_file(a: os.stat_result, b: os.stat_result) -> bool:
+    return (a.st_dev, a.st_ino) == (b.st_dev, b.st_ino)
+
+
+@dataclass
+class OpenedFile:
+    """A regular inbox file opened safely; ``fd`` stays open until :meth:`InboxDir.destroy`."""
+
+    name: str
+    fd: int
+    st: os.stat_result   # fstat of the open descriptor
+    writable: bool       # False when the file could only be opened read-only
+
+    def close(self) -> None:
+        if self.fd >= 0:
+            try:
+                os.close(self.fd)
+            finally:
+                self.fd = -1
+
+
+class InboxDir:
+    """The inbox, held open as a directory descriptor.
+
+    Parameters
+    ----------
+    path : path-like
+        ``HOME/inbox``.  It must be a real directory, not a symlink to one.
+    max_file_bytes : int
+        ``policy.intake.max_file_bytes``; larger files are not read.
+    """
+
+    def __init__(self, path, max_file_bytes: int):
+        if int(max_file_bytes) < 1:
+            raise ValueError(f"max_file_bytes must be a positive integer, got {max_file_bytes!r}")
+        self.path = os.fspath(path)
+        self.max_file_bytes = int(max_file_bytes)
+        try:
+            st = os.lstat(self.path)
+        except FileNotFoundError:
+            raise StateError(f"{self.path}: the inbox does not exist; run 'lethe init' first") from None
+        if not stat.S_ISDIR(st.st_mode):
+            raise StateError(f"{self.path}: the inbox must be a real directory, "
+                             f"found a {entry_type(st)}; refusing to follow it")
+        self.fd = os.open(self.path, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | os.O_CLOEXEC)
+        self.st = os.fstat(self.fd)
+
+    # -- context manager ---------------------------------------------------
+    def close(self) -> None:
+        if self.fd >= 0:
+            os.close(self.fd)
+            self.fd = -1
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    # -- looking -------------------------------------------------------------
+    def display(self, name: str) -> str:
+        """The entry's path for participant-facing messages (``repr`` escapes newlines)."""
+        shown = os.path.join(self.path, name)
+        return shown if shown.isprintable() else repr(shown)
+
+    def names(self) -> list[str]:
+        """Names directly in the inbox (no descent), including ignored ones."""
+        return os.listdir(self.fd)
+
+    def lstat(self, name: str) -> os.stat_result | None:
+        """``lstat`` of ``name`` in the inbox, or ``None`` if it no longer exists."""
+        _check_name(name)
+        try:
+            return os.stat(name, dir_fd=self.fd, follow_symlinks=False)
+        except FileNotFoundError:
+            return None
+
+    def refusal(self, name: str, st: os.stat_result) -> UnsafeEntry | None:
+        """Why ``name`` must not be read, judged from its ``lstat``; ``None`` if it may be."""
+        t = entry_type(st)
+        shown = self.display(name)
+        if t in ("symlink", "fifo", "socket", "device"):
+            return UnsafeEntry(shown, t, UNSAFE_REASONS[t])
+        if t == "dir":
+            return UnsafeEntry(shown, "directory", "a subdirectory; lethe never descends into nor removes it")
+        if st.st_nlink > 1:
+            return UnsafeEntry(shown, "hardlink", f"{st.st_nlink} hard links; {UNSAFE_REASONS['hardlink']}")
+        if st.st_size > self.max_file_bytes:
+            return UnsafeEntry(shown, "too_large",
+                               f"{st.st_size} bytes exceeds intake.max_file_bytes = {self.max_file_bytes}")
+        return None
+
+    # -- opening and reading ---------------------------------------------------
+    def open(self, name: str, lst: os.stat_result, *, check_size: bool = True) -> OpenedFile:
+        """Open a regular file that ``lstat`` saw as ``lst``; checks the descriptor with ``fstat``.
+
+        Raises
+        ------
+        UnsafeEntry
+            ``changed`` if the name now refers to something else (a swap
+            between ``lstat`` and ``open``), ``symlink`` if it became one,
+            ``hardlink`` or ``too_large`` as seen on the open descriptor,
+            ``unreadable`` on a permission or I/O error.
+        """
+        _check_name(name)
+        shown = self.display(name)
+        if not stat.S_ISREG(lst.st_mode):
+            raise UnsafeEntry(shown, entry_type(lst) if entry_type(lst) != "dir" else "directory",
+                              "not a regular file")
+        writable = True
+        try:
+            # Read-write so destruction can overwrite through this very descriptor.
+            fd = os.open(name, os.O_RDWR | _OPEN_FLAGS, dir_fd=self.fd)
+        except OSError as e:
+            if e.errno == errno.ELOOP:
+                raise UnsafeEntry(shown, "symlink", "became a symbolic link; not followed") from None
+            if e.errno == errno.ENOENT:
+                raise UnsafeEntry(shown, "changed", "vanished before it could be opened") from None
+            if e.errno not in (errno.EACCES, errno.EPERM, errno.EROFS, errno.ETXTBSY):
+                raise UnsafeEntry(shown, "unreadable", f"cannot open: {e.strerror}") from None
+            writable = False
+            try:
+                fd = os.open(name, os.O_RDONLY | _OPEN_FLAGS, dir_fd=self.fd)
+            except OSError as e2:
+                raise UnsafeEntry(shown, "unreadable", f"cannot open: {e2.strerror}") from None
+        opened = OpenedFile(name, fd, os.fstat(fd), writable)
+        problem = None
+        fst = opened.st
+        if not stat.S_ISREG(fst.st_mode):
+            problem = UnsafeEntry(shown, "changed", f"became a {entry_type(fst)} before it was opened")
+        elif not same_file(fst, lst):
+            problem = UnsafeEntry(shown, "changed", "was replaced between lstat and open")
+        elif fst.st_nlink != 1:
+            problem = UnsafeEntry(shown, "hardlink", f"{fst.st_nlink} hard links on the open file; "
+                                                     f"{UNSAFE_REASONS['hardlink']}")
+        elif check_size and fst.st_size > self.max_file_bytes:
+            problem = UnsafeEntry(shown, "too_large",
+                                  f"{fst.st_size} bytes exceeds intake.max_file_bytes = {self.max_file_bytes}")
+        if problem is not None:
+            opened.close()
+            raise problem
+        return opened
+
+    def read(self, opened: OpenedFile) -> bytes:
+        """All bytes of an opened file, read from its descriptor, never more than the cap."""
+        chunks, total = [], 0
+        offset = 0
+        while True:
+            try:
+                b = os.pread(opened.fd, _CHUNK, offset)
+            except OSError as e:
+                raise UnsafeEntry(self.display(opened.name), "unreadable", f"read failed: {e.strerror}") from None
+            if not b:
+                break
+            chunks.append(b)
+            offset += len(b)
+            total += len(b)
+            if total > self.max_file_bytes:
+                raise UnsafeEntry(self.display(opened.name), "too_large",
+                                  f"grew past intake.max_file_bytes = {self.max_file_bytes} while being read")
+        return b"".join(chunks)
+
+    # -- destroying ----------------------------------------------------------
+    def destroy(self, name: str, opened: OpenedFile | None = None,
+                expect: os.stat_result | None = None) -> bool:
+        """Destroy an inbox entry: overwrite through ``opened`` (best effort), unlink, fsync the directory.
+
+        Parameters
+        ----------
+        name : str
+            The entry's name in the inbox.
+        opened : OpenedFile, optional
+            The descriptor the file was read through; its bytes are overwritten
+            with zeros and fsynced when it is a single-link regular file we
+            could open for writing.  It is closed afterwards.
+        expect : os.stat_result, optional
+            The identity (device, inode) the name must still have; defaults to
+            ``opened.st``.  Without either, the entry is not removed.
+
+        Returns
+        -------
+        bool
+            True if the name was unlinked, False if it was already gone or now
+            refers to another file (which is then left alone).
+        """
+        _check_name(name)
+        ident = expect if expect is not None else (opened.st if opened is not None else None)
+        if ident is None:
+            raise ValueError("destroy() needs the file's identity: pass opened= or expect=")
+        try:
+            if opened is not None and opened.writable:
+                fst = os.fstat(opened.fd)
+                # Never overwrite bytes that another name shares (a hardlink made meanwhile).
+                if stat.S_ISREG(fst.st_mode) and fst.st_nlink == 1 and fst.st_size > 0:
+                    _overwrite(opened.fd, fst.st_size)
+            now = self.lstat(name)
+            if now is None or not same_file(now, ident):
+                return False
+            if stat.S_ISDIR(now.st_mode):
+                return False  # never remove a directory
+            os.unlink(name, dir_fd=self.fd)
+            self.fsync()
+            return True
+        finally:
+            if opened is not None:
+                opened.close()
+
+    def fsync(self) -> None:
+        try:
+            os.fsync(self.fd)
+        except OSError:
+            pass  # some file systems cannot fsync a directory; the unlink still happened
+
+
+def _overwrite(fd: int, size: int) -> None:
+    """Zeros over the whole file, then fsync.  Best effort (see docs/intake.md, limits of deletion)."""
+    zeros = b"\0" * min(size, _CHUNK)
+    offset = 0
+    try:
+        while offset < size:
+            n = os.pwrite(fd, zeros[: min(size - offset, len(zeros))], offset)
+            if n <= 0:
+                break
+            offset += n
+        os.fsync(fd)
+    except OSError:
+        pass
+
+
+def _check_name(name: str) -> None:
+    # A name with a separator or a dot-dot could address something outside the inbox.
+    if not name or "/" in name or name in (".", "..") or "\0" in name:
+        raise ValueError(f"{name!r} is not a plain file name inside the inbox")

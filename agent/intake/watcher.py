@@ -1,0 +1,407 @@
+"""``lethe run``: watch the inbox with the platform's native notifications and take files when complete.
+
+Readiness (``docs/intake.md``, "Readiness"): a file is taken
+
+1. on a close-after-write (watchdog's ``FileClosedEvent``, inotify
+   ``IN_CLOSE_WRITE``), unless the close was the agent's own;
+2. when renamed into the inbox (``FileMovedEvent`` whose destination is in the
+   inbox, including a move in from elsewhere on the same file system);
+3. as the portable fallback, when its size, mtime and ctime stay unchanged for
+   ``settle_s`` (``retention.settle_seconds``) after the last change seen;
+4. at the latest ``retention.raw_seconds / 2`` after it was first seen, even if
+   it still changes: a writer that never finishes cannot keep raw data in the
+   inbox past the window.
+
+Names ending ``.part`` or starting with ``.`` are ignored until renamed.
+Non-regular entries (symlinks, FIFOs, sockets, devices) cannot be "in
+progress" and are taken at once.  Subdirectories are reported once and never
+entered.  On start the inbox is swept; files already there are taken oldest
+deadline first.
+
+The main loop blocks on a queue; its only timeouts are the nearest settle or
+retention deadline of a pending file, so an empty inbox costs no CPU.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import queue
+import stat
+import threading
+import time
+from dataclasses import dataclass, field
+
+from .item import ignored
+from .pipeline import DrainReport, Intake, _process_safely
+
+log = logging.getLogger("lethe.intake")
+
+_STOP = ("stop", "")
+
+
+@dataclass
+class Pending:
+    first_seen: float
+    sig: tuple
+    due: float
+    ready: bool = False
+    forced_at: float = field(default=0.0)
+
+
+def _sig(st: os.stat_result) -> tuple:
+    return (st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_ino)
+
+
+class _Handler:
+    """watchdog event handler: turns events on top-level inbox names into ``(what, name)`` messages."""
+
+    def __init__(self, inbox: str, q: queue.Queue):
+        self.inbox = os.path.normpath(os.fspath(inbox))
+        self.q = q
+
+    def _name(self, path) -> str | None:
+        if not path:
+            return None
+        path = os.fsdecode(path)
+        if os.path.dirname(os.path.normpath(path)) != self.inbox:
+            return None
+        return os.path.basename(path)
+
+    def dispatch(self, event) -> None:
+        from watchdog.events import (DirCreatedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
+                                     FileDeletedEvent, FileModifiedEvent, FileMovedEvent)
+
+        if isinstance(event, FileMovedEvent):
+            src, dest = self._name(event.src_path), self._name(event.dest_path)
+            if src:
+                self.q.put(("gone", src))
+            if dest:
+                self.q.put(("moved", dest))
+        elif isinstance(event, FileClosedEvent):
+            name = self._name(event.src_path)
+            if name:
+                self.q.put(("closed", name))
+        elif isinstance(event, (FileCreatedEvent, FileModifiedEvent)):
+            name = self._name(event.src_path)
+            if name:
+                self.q.put(("changed", name))
+        elif isinstance(event, FileDeletedEvent):
+            name = self._name(event.src_path)
+            if name:
+                self.q.put(("gone", name))
+        elif isinstance(event, (DirCreatedEvent, DirMovedEvent)):
+            name = self._name(getattr(event, "dest_path", "") or event.src_path)
+            if name:
+                self.q.put(("dir", name))
+
+
+class InboxWatcher:
+    """The event loop of the agent.
+
+    Parameters
+    ----------
+    intake : agent.intake.pipeline.Intake
+        The per-file pipeline (holds the inbox descriptor, vault and ledger).
+    settle_s : float, optional
+        Overrides ``policy.retention.settle_seconds``.
+    stop_event : threading.Event, optional
+        Set it (from any thread or a signal handler) to stop the loop.
+    clock : callable
+        Returns Unix seconds; tests may pass a fake.
+    """
+
+    def __init__(self, intake: Intake, settle_s: float | None = None, stop_event: threading.Event | None = None,
+                 on_outcome=None):
+        policy = intake.policy
+        self.intake = intake
+        self.settle_s = float(policy.retention.settle_seconds if settle_s is None else settle_s)
+        if self.settle_s < 0:
+            raise ValueError(f"settle_s must be >= 0 seconds, got {settle_s!r}")
+        self.force_s = float(policy.retention.raw_seconds) / 2.0
+        self.stop_event = stop_event or threading.Event()
+        self.q: queue.Queue = queue.Queue()
+        self.pending: dict[str, Pending] = {}
+        self.own_closes: dict[str, int] = {}
+        self.dirs_reported: set[str] = set()
+        self.outcomes: list = []
+        self.skipped: list[str] = []
+        self.on_outcome = on_outcome
+        self.observer = None
+        self.wakeups = 0
+
+    # -- lifecycle -------------------------------------------------------------
+    def start(self) -> None:
+        """Start the observer (before the sweep, so nothing arriving meanwhile is missed)."""
+        from watchdog.events import (DirCreatedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
+                                     FileDeletedEvent, FileModifiedEvent, FileMovedEvent)
+        from watchdog.observers import Observer
+
+        try:
+            observer = Observer(generate_full_events=True)  # inotify: moves in from outside are moves
+        except TypeError:
+            observer = Observer()
+        observer.schedule(_Handler(self.intake.inbox.path, self.q), self.intake.inbox.path, recursive=False,
+                          event_filter=[FileClosedEvent, FileMovedEvent, FileCreatedEvent, FileModifiedEvent,
+                                        FileDeletedEvent, DirCreatedEvent, DirMovedEvent])
+        observer.daemon = True
+        observer.start()
+        self.observer = observer
+        waker = threading.Thread(target=self._wake_on_stop, name="lethe-stop", daemon=True)
+        waker.start()
+
+    def _wake_on_stop(self) -> None:
+        self.stop_event.wait()
+        self.q.put(_STOP)
+
+    def stop(self) -> None:
+        self.stop_event.set()
+        if self.observer is not None:
+            self.observer.stop()
+            self.observer.join(timeout=5)
+            self.observer = None
+
+    def sweep(self) -> None:
+        """Note every entry already in the inbox (called once at start)."""
+        for name in self.intake.inbox.names():
+            self._note(name, "sweep")
+
+    # -- the loop ----------------------------------------------------------------
+    def run(self) -> DrainReport:
+        """Block until stopped, taking files as they become complete; returns the session's report."""
+        t0 = time.time()
+        if self.observer is None:
+            self.start()
+        self.sweep()
+        self._process_ready()
+        self.recovered = self.intake.reconcile(t0)
+        while not self.stop_event.is_set():
+            timeout = self._next_timeout()
+            try:
+                msg = self.q.get(timeout=timeout)
+            except queue.Empty:
+                msg = None
+            self.wakeups += 1
+            if msg == _STOP:
+                break
+            if msg is not None:
+                self._handle(*msg)
+            while True:  # take everything already queued before working
+                try:
+                    msg = self.q.get_nowait()
+                except queue.Empty:
+                    break
+                if msg == _STOP:
+                    self.stop_event.set()
+                    break
+                self._handle(*msg)
+            self._check_pending()
+            self._process_ready()
+        return self.report(t0)
+
+    def report(self, t0: float) -> DrainReport:
+        return DrainReport.from_outcomes(self.outcomes, self.intake.raw_seconds, skipped=list(self.skipped),
+                                         recovered=getattr(self, "recovered", 0),
+                                         seconds=round(time.time() - t0, 3))
+
+    def _next_timeout(self) -> float | None:
+        if not self.pending:
+            return None  # nothing to wait for: block until an event
+        now = time.time()
+        soonest = min(min(p.due, p.first_seen + self.force_s) for p in self.pending.values())
+        return max(0.0, soonest - now)
+
+    # -- events ------------------------------------------------------------------
+    def _handle(self, what: str, name: str) -> None:
+        if what == "gone":
+            p = self.pending.get(name)
+            if p is not None and self.intake.inbox.lstat(name) is None:
+                del self.pending[name]
+            return
+        if what == "closed" and self.own_closes.get(name):
+            # The agent's own descriptor closing after destruction: not a writer finishing.
+            self.own_closes[name] -= 1
+            if not self.own_closes[name]:
+                del self.own_closes[name]
+            what = "changed"
+        self._note(name, what)
+
+    def _note(self, name: str, what: str) -> None:
+        if ignored(name):
+            return
+        lst = self.intake.inbox.lstat(name)
+        if lst is None:
+            self.pending.pop(name, None)
+            return
+        if stat.S_ISDIR(lst.st_mode):
+            self._report_dir(name)
+            return
+        now = time.time()
+        p = self.pending.get(name)
+        if p is None:
+            p = self.pending[name] = Pending(first_seen=now, sig=_sig(lst), due=now + self.settle_s)
+        if not stat.S_ISREG(lst.st_mode) or what in ("closed", "moved"):
+            p.ready = True
+        elif what == "sweep":
+            # Already there at start: complete unless it changed within the settle time.
+            if now - max(lst.st_mtime, lst.st_ctime) >= self.settle_s:
+                p.ready = True
+        else:  # a change: restart the settle clock
+            p.sig = _sig(lst)
+            p.due = now + self.settle_s
+            p.ready = False
+
+    def _report_dir(self, name: str) -> None:
+        if name in self.dirs_reported:
+            return
+        self.dirs_reported.add(name)
+        msg = f"{self.intake.inbox.display(name)}: directory; never entered nor removed"
+        self.skipped.append(msg)
+        log.warning("skipped_directory name#=%s", self.intake.name_tag(name))
+
+    def _check_pending(self) -> None:
+        now = time.time()
+        for name, p in list(self.pending.items()):
+            if p.ready:
+                continue
+            if now >= p.first_seen + self.force_s:
+                p.ready = True  # the retention deadline beats an unfinished writer
+                continue
+            if now < p.due:
+                continue
+            lst = self.intake.inbox.lstat(name)
+            if lst is None:
+                del self.pending[name]
+                continue
+            sig = _sig(lst)
+            if sig == p.sig:
+                p.ready = True
+            else:
+                p.sig, p.due = sig, now + self.settle_s
+
+    def _process_ready(self) -> None:
+        while True:
+            ready = [(n, p) for n, p in self.pending.items() if p.ready]
+            if not ready:
+                return
+            # Oldest deadline first: the file that has existed longest goes next.
+            order = []
+            for name, p in ready:
+                lst = self.intake.inbox.lstat(name)
+                if lst is None:
+                    del self.pending[name]
+                    continue
+                order.append((min(max(lst.st_mtime, lst.st_ctime), p.first_seen), name))
+            if not order:
+                return
+            order.sort()
+            _, name = order[0]
+            del self.pending[name]
+            out = _process_safely(self.intake, name, self.outcomes)
+            if out is not None:
+                self.own_closes[name] = self.own_closes.get(name, 0) + 1
+                if self.on_outcome is not None:
+                    self.on_outcome(out)
+            elif self.intake.inbox.lstat(name) is not None and not ignored(name):
+                # Changed under us: look again after the settle time.
+                now = time.time()
+                lst = self.intake.inbox.lstat(name)
+                if lst is not None and not stat.S_ISDIR(lst.st_mode):
+                    self.pending[name] = Pending(first_seen=now, sig=_sig(lst), due=now + self.settle_s)
+            # Events that arrived while working may make other files ready.
+            while True:
+                try:
+                    msg = self.q.get_nowait()
+                except queue.Empty:
+                    break
+                if msg == _STOP:
+                    self.stop_event.set()
+                    return
+                self._handle(*msg)
+
+
+def setup_logging(home) -> logging.Handler | None:
+    """Rotating ``HOME/logs/agent.log`` for the ``lethe`` loggers (no content is ever logged)."""
+    from logging.handlers import RotatingFileHandler
+
+    from ..home import Home
+
+    h = home if isinstance(home, Home) else Home(home)
+    root = logging.getLogger("lethe")
+    for existing in root.handlers:
+        if isinstance(existing, RotatingFileHandler):
+            return None
+    h.logs.mkdir(parents=True, exist_ok=True, mode=0o700)
+    old = os.umask(0o077)
+    try:
+        handler = RotatingFileHandler(h.logs / "agent.log", maxBytes=1 << 20, backupCount=3, encoding="utf-8")
+    finally:
+        os.umask(old)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s %(message)s"))
+    root.addHandler(handler)
+    root.setLevel(logging.INFO)
+    return handler
+
+
+def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
+              stop_event: threading.Event | None = None, *, now: float | None = None, warm: bool = True,
+              on_ready=None, on_outcome=None) -> DrainReport:
+    """Run the intake agent on a home: hold its lock, sweep, then watch (or drain and return).
+
+    Parameters
+    ----------
+    home : Home or path-like
+    policy : agent.policy.Policy
+    once : bool
+        Drain the inbox (waiting for files still being written) and return.
+    settle_s : float, optional
+        Overrides ``policy.retention.settle_seconds``.
+    stop_event : threading.Event, optional
+        Set to stop a watching agent; it then returns its session report.
+    now : float, optional
+        Simulated clock for the readers (see :class:`~agent.intake.pipeline.Intake`).
+    warm : bool
+        Call :func:`agent.intake.warm_up` before the sweep (fills numba's cache).
+    on_ready : callable, optional
+        Called with the start-up time in seconds once the agent is watching.
+
+    Returns
+    -------
+    DrainReport
+    """
+    from ..home import Home
+    from .pipeline import drain
+
+    t_start = time.time()
+    h = home if isinstance(home, Home) else Home(home)
+    setup_logging(h)
+    with h.lock("agent"):
+        intake = Intake(h, policy, now=now)
+        try:
+            from .. import __version__
+
+            intake.ledger.append("agent_start", version=__version__, mode="once" if once else "watch")
+            if warm:
+                try:
+                    from . import warm_up
+
+                    warm_up(policy)
+                except (ImportError, AttributeError):
+                    pass
+            if once:
+                if on_ready is not None:
+                    on_ready(time.time() - t_start)
+                report = drain(h, policy, now=now, settle_s=settle_s, intake=intake, on_outcome=on_outcome)
+            else:
+                watcher = InboxWatcher(intake, settle_s=settle_s, stop_event=stop_event, on_outcome=on_outcome)
+                watcher.start()
+                if on_ready is not None:
+                    on_ready(time.time() - t_start)
+                try:
+                    report = watcher.run()
+                finally:
+                    watcher.stop()
+            intake.ledger.append("agent_stop", reason="drained" if once else "stopped")
+            return report
+        finally:
+            intake.close()
