@@ -315,6 +315,8 @@ class Vault:
             if self._depth:
                 raise StateError(f"{self.path}: cannot close the vault inside a transaction")
             try:
+                # Do not wait long for another connection's write lock on the way out.
+                self._db.execute("PRAGMA busy_timeout = 200")
                 self._db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
             except sqlite3.Error:
                 pass  # another connection may be reading; SQLite checkpoints later
