@@ -102,13 +102,21 @@ def _enroll(args) -> int:
 
 
 def _open(args) -> int:
+    import sys
+
     from ..study.keys import read_passphrase
     from ..study.open import open_bundles
 
-    results = open_bundles(args.dir, args.bundle, read_passphrase(args.passphrase_file))
-    emit(args, [r.as_dict() for r in results],
-         "\n".join(f"{r.path}: ok, {r.pseudonym} #{r.seq} -> {r.stored}" for r in results))
-    return 0
+    results = open_bundles(args.dir, args.bundle, read_passphrase(args.passphrase_file), strict=False)
+    lines = []
+    for r in results:
+        if r.ok:
+            lines.append(f"{r.path}: ok, {r.pseudonym} #{r.seq} -> {r.stored}")
+        else:
+            print(f"lethe: error: {r.error}", file=sys.stderr)
+    emit(args, [r.as_dict() for r in results], "\n".join(lines) or "no bundle opened")
+    failed = [r.exit_code for r in results if not r.ok]
+    return failed[0] if failed else 0
 
 
 def _merge(args) -> int:

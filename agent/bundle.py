@@ -1,0 +1,370 @@
+"""Bundles: the sealed, signed container in which a payload leaves the device.
+
+Byte layout (all integers big-endian; full specification in ``docs/bundle-format.md``)::
+
+    offset      size  field
+    0           8     magic            89 4C 45 54 48 45 0D 0A   ("\\x89LETHE\\r\\n")
+    8           2     format version   uint16, = 1
+    10          4     H                uint32, header length, 2 .. 65536
+    14          H     header           canonical JSON (UTF-8)
+    14+H        2     E                uint16, HPKE enc length (the suite's Nenc)
+    16+H        E     enc              HPKE encapsulated key
+    16+H+E      4     C                uint32, ciphertext length, 16 .. 64 MiB
+    20+H+E      C     ciphertext       HPKE single-shot seal (mode_base) of the canonical
+                                       JSON payload, info = header bytes, aad = empty
+    20+H+E+C    64    signature        Ed25519 (RFC 8032) by the device key over bytes 0 .. 20+H+E+C
+
+The reader checks, in this order and each with its own message: magic, format
+version (a newer one is refused as such), framing and length, the signature
+against the enrolled device, the authenticated header, the HPKE open (AEAD
+tag), the payload schema, the policy's approval, and the sequence number.
+Nothing is trusted before the signature and the AEAD tag verify, and nothing
+is written when any check fails.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+import struct
+from dataclasses import dataclass
+from pathlib import Path
+
+from .errors import DataError, IntegrityError, StateError
+from .policy import canonical_json
+
+MAGIC = b"\x89LETHE\r\n"
+FORMAT_VERSION = 1
+HEADER_FORMAT = "lethe-bundle"
+MAX_HEADER = 65536
+MAX_CIPHERTEXT = 64 * 1024 * 1024
+SIG_LEN = 64
+SUFFIX = ".lethe"
+
+HEADER_FIELDS = ("format", "version", "suite", "study_id", "recipient", "device_key_id", "seq",
+                 "created", "payload_schema")
+
+
+class FormatVersionError(DataError):
+    """A bundle written by a newer lethe (its own error, so callers can say 'upgrade')."""
+
+
+# ----------------------------------------------------------------------------- header
+def make_header(*, suite: str, study_id: str, recipient: str, device_key_id: str, seq: int,
+                created: str, payload_schema: int = 1) -> dict:
+    return {"format": HEADER_FORMAT, "version": FORMAT_VERSION, "suite": suite, "study_id": study_id,
+            "recipient": recipient, "device_key_id": device_key_id, "seq": int(seq), "created": created,
+            "payload_schema": int(payload_schema)}
+
+
+def check_header(h, source: str) -> dict:
+    """Strict header check (run only on the authenticated header)."""
+    from .study.keys import SUITES
+
+    if not isinstance(h, dict):
+        raise DataError(f"{source}: header is not a JSON object")
+    unknown = sorted(set(h) - set(HEADER_FIELDS))
+    if unknown:
+        raise DataError(f"{source}: header [{unknown[0]}] unknown field; allowed: {', '.join(HEADER_FIELDS)}")
+    missing = [k for k in HEADER_FIELDS if k not in h]
+    if missing:
+        raise DataError(f"{source}: header [{missing[0]}] required field is missing")
+    if h["format"] != HEADER_FORMAT or h["version"] != FORMAT_VERSION:
+        raise DataError(f"{source}: header [format/version] {h['format']!r} v{h['version']!r} does not match "
+                        f"the container (lethe-bundle v{FORMAT_VERSION})")
+    if h["suite"] not in SUITES:
+        raise DataError(f"{source}: header [suite] {h['suite']!r} is not one of {', '.join(SUITES)}")
+    if not (isinstance(h["seq"], int) and not isinstance(h["seq"], bool) and 1 <= h["seq"] < 2**53):
+        raise DataError(f"{source}: header [seq] expected a positive integer, got {h['seq']!r}")
+    if not (isinstance(h["recipient"], str) and re.fullmatch(r"[0-9a-f]{64}", h["recipient"])):
+        raise DataError(f"{source}: header [recipient] expected a 64-hex-digit key fingerprint")
+    if not (isinstance(h["device_key_id"], str) and re.fullmatch(r"[0-9a-f]{16}", h["device_key_id"])):
+        raise DataError(f"{source}: header [device_key_id] expected 16 hex digits")
+    if not (isinstance(h["created"], str) and re.fullmatch(r"\d{4}-(\d{2}-\d{2}|W\d{2})", h["created"])):
+        raise DataError(f"{source}: header [created] expected YYYY-MM-DD or YYYY-Www, got {h['created']!r}")
+    if h["payload_schema"] != 1:
+        raise DataError(f"{source}: header [payload_schema] {h['payload_schema']!r} is not supported "
+                        f"(this lethe reads payload schema 1)")
+    if not isinstance(h["study_id"], str):
+        raise DataError(f"{source}: header [study_id] expected a string")
+    return h
+
+
+# ----------------------------------------------------------------------------- seal and sign
+def seal_bundle(payload: dict, header: dict, recipient_public_key, device_key) -> bytes:
+    """Serialise, seal (HPKE, header as info) and sign (Ed25519) a bundle; returns its bytes."""
+    from .study.keys import enc_length, suite_of
+
+    header_bytes = canonical_json(header)
+    if not 2 <= len(header_bytes) <= MAX_HEADER:
+        raise DataError(f"bundle header of {len(header_bytes)} bytes is out of range")
+    sealed = suite_of(header["suite"]).encrypt(canonical_json(payload), recipient_public_key,
+                                               info=header_bytes)
+    n_enc = enc_length(header["suite"])
+    enc, ct = sealed[:n_enc], sealed[n_enc:]
+    body = b"".join([MAGIC, struct.pack(">HI", FORMAT_VERSION, len(header_bytes)), header_bytes,
+                     struct.pack(">H", len(enc)), enc, struct.pack(">I", len(ct)), ct])
+    return body + device_key.sign(body)
+
+
+@dataclass
+class Parts:
+    """A bundle split along its framing (nothing in it authenticated yet)."""
+
+    version: int
+    header_bytes: bytes
+    enc: bytes
+    ciphertext: bytes
+    signed: bytes
+    signature: bytes
+
+
+def split_bundle(data: bytes, source: str = "<bundle>") -> Parts:
+    """Check magic, version and framing; return the parts (unauthenticated)."""
+    if len(data) < len(MAGIC) or data[: len(MAGIC)] != MAGIC:
+        raise DataError(f"{source}: not a lethe bundle (bad magic bytes)")
+    if len(data) < 10:
+        raise IntegrityError(f"{source}: truncated bundle: {len(data)} bytes, too short for the version field")
+    (version,) = struct.unpack(">H", data[8:10])
+    if version > FORMAT_VERSION:
+        raise FormatVersionError(f"{source}: bundle format version {version} is newer than this lethe reads "
+                                 f"(version {FORMAT_VERSION}); upgrade lethe to open it")
+    if version != FORMAT_VERSION:
+        raise DataError(f"{source}: bundle format version {version} is not supported (this lethe reads {FORMAT_VERSION})")
+    pos = 10
+
+    def take(n, what):
+        nonlocal pos
+        if pos + n > len(data):
+            raise IntegrityError(f"{source}: truncated bundle: {what} needs {n} bytes at offset {pos}, "
+                                 f"the file has {len(data)} bytes")
+        chunk = data[pos: pos + n]
+        pos += n
+        return chunk
+
+    (h_len,) = struct.unpack(">I", take(4, "header length"))
+    if not 2 <= h_len <= MAX_HEADER:
+        raise IntegrityError(f"{source}: header length {h_len} is out of range (2..{MAX_HEADER})")
+    header_bytes = take(h_len, "header")
+    (e_len,) = struct.unpack(">H", take(2, "enc length"))
+    enc = take(e_len, "HPKE enc")
+    (c_len,) = struct.unpack(">I", take(4, "ciphertext length"))
+    if not 16 <= c_len <= MAX_CIPHERTEXT:
+        raise IntegrityError(f"{source}: ciphertext length {c_len} is out of range (16..{MAX_CIPHERTEXT})")
+    ct = take(c_len, "ciphertext")
+    signed_end = pos
+    sig = take(SIG_LEN, "signature")
+    if pos != len(data):
+        raise IntegrityError(f"{source}: {len(data) - pos} unexpected bytes after the signature")
+    return Parts(version, header_bytes, enc, ct, data[:signed_end], sig)
+
+
+# ----------------------------------------------------------------------------- read and verify
+@dataclass
+class OpenedBundle:
+    header: dict
+    payload: dict
+    pseudonym: str
+    sha256: str
+
+
+def _verify_sig(dev, parts: Parts) -> bool:
+    from cryptography.exceptions import InvalidSignature
+
+    try:
+        dev.public_key().verify(parts.signature, parts.signed)
+        return True
+    except InvalidSignature:
+        return False
+
+
+def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: str = "<bundle>") -> OpenedBundle:
+    """Verify and open a bundle.  Raises on the first failed check; writes nothing.
+
+    Parameters
+    ----------
+    data : bytes
+        The bundle file's bytes.
+    registry : agent.study.registry.Registry
+        Enrolled devices and the sequence numbers already seen.
+    study_key : agent.study.keys.StudyKeyPair
+    approved_policies : collection of str
+        Policy fingerprints the study card approves.
+    """
+    from cryptography.exceptions import InvalidTag
+
+    from .payload import validate_payload
+    from .study.keys import enc_length, suite_of
+
+    parts = split_bundle(data, source)
+
+    # Which device?  The header is not trusted yet: it only picks the candidate key.
+    # If it cannot be parsed, or names no enrolled device, every enrolled key is tried,
+    # so a damaged header reads as a signature failure, not as "unknown device".
+    claimed = None
+    try:
+        claimed = json.loads(parts.header_bytes.decode("utf-8")).get("device_key_id")
+    except (UnicodeDecodeError, ValueError, AttributeError):
+        pass
+    candidate = registry.by_key_id(claimed) if isinstance(claimed, str) else None
+    if candidate is not None:
+        device = candidate if _verify_sig(candidate, parts) else None
+    else:
+        device = next((d for d in registry.devices.values() if _verify_sig(d, parts)), None)
+        if device is None and isinstance(claimed, str) and _header_parses(parts):
+            raise StateError(f"{source}: signed by a device that is not enrolled in study "
+                             f"{registry.study_id!r} (header names device key {claimed}); "
+                             f"register its enrolment file first ('lethe study enroll')")
+    if device is None:
+        who = f"enrolled device {candidate.pseudonym!r}" if candidate is not None else "any enrolled device"
+        raise IntegrityError(f"{source}: Ed25519 signature does not verify against {who}: the header, "
+                             f"ciphertext or signature was altered, or it was signed by another key")
+
+    # From here the header bytes are authentic.
+    header = check_header(json.loads(parts.header_bytes.decode("utf-8")), source)
+    if parts.header_bytes != canonical_json(header):
+        raise DataError(f"{source}: header is not in canonical JSON form")
+    if header["device_key_id"] != device.device_key_id:
+        raise IntegrityError(f"{source}: header names device {header['device_key_id']} but was signed by "
+                             f"{device.device_key_id}")
+    if header["study_id"] != registry.study_id:
+        raise StateError(f"{source}: bundle is for study {header['study_id']!r}, this is {registry.study_id!r}")
+    if header["recipient"] != study_key.fingerprint or header["suite"] != study_key.suite:
+        raise StateError(f"{source}: sealed to study key {header['recipient']} ({header['suite']}), "
+                         f"not to this study's key {study_key.fingerprint} ({study_key.suite})")
+    if len(parts.enc) != enc_length(header["suite"]):
+        raise IntegrityError(f"{source}: HPKE enc has {len(parts.enc)} bytes, the {header['suite']} suite "
+                             f"uses {enc_length(header['suite'])}")
+    try:
+        plaintext = suite_of(header["suite"]).decrypt(parts.enc + parts.ciphertext, study_key.private_key(),
+                                                      info=parts.header_bytes)
+    except (InvalidTag, ValueError) as e:
+        raise IntegrityError(f"{source}: HPKE open failed (AEAD tag does not verify): the ciphertext was not "
+                             f"sealed to this study key under this header") from None
+
+    try:
+        payload = json.loads(plaintext.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError) as e:
+        raise DataError(f"{source}: payload is not JSON ({e})") from None
+    validate_payload(payload, source)
+    if payload["study_id"] != header["study_id"] or payload["created"] != header["created"]:
+        raise DataError(f"{source}: payload [study_id/created] disagrees with the header")
+    fp = payload["policy_fingerprint"]
+    if fp not in set(approved_policies):
+        raise StateError(f"{source}: collected under policy {fp}, which the study card does not approve "
+                         f"(approved: {', '.join(sorted(approved_policies))})")
+    digest = hashlib.sha256(data).hexdigest()
+    seen = device.seen.get(str(header["seq"]))
+    if seen is not None:
+        if seen == digest:
+            raise StateError(f"{source}: duplicate: bundle #{header['seq']} of {device.pseudonym} was already opened")
+        raise StateError(f"{source}: replayed sequence number: {device.pseudonym} already sent a different "
+                         f"bundle #{header['seq']}; refusing the second one")
+    return OpenedBundle(header, payload, device.pseudonym, digest)
+
+
+def _header_parses(parts: Parts) -> bool:
+    try:
+        h = json.loads(parts.header_bytes.decode("utf-8"))
+        return isinstance(h, dict) and set(h) == set(HEADER_FIELDS)
+    except (UnicodeDecodeError, ValueError):
+        return False
+
+
+# ----------------------------------------------------------------------------- export
+def bundle_name(seq: int) -> str:
+    return f"bundle-{int(seq):06d}{SUFFIX}"
+
+
+def next_seq(vault) -> int:
+    seqs = [int(r) for r in vault.rids("exports") if str(r).isdigit()]
+    return max(seqs, default=0) + 1
+
+
+def home_card(home):
+    """The study card this home enrolled with.
+
+    Looked up as ``home.json``'s ``"card"`` entry (a path, relative to the home
+    or absolute), else ``HOME/state/card.json``.
+    """
+    from .study.card import load_card
+
+    cfg = home.read_config()
+    for cand in ([cfg["card"]] if cfg.get("card") else []) + ["state/card.json"]:
+        p = Path(cand)
+        p = p if p.is_absolute() else home.root / p
+        if p.exists():
+            return load_card(p)
+    raise StateError(f"{home.root}: no study card in this home (expected state/card.json); "
+                     f"enrol first with 'lethe init --study CARD'")
+
+
+def export_bundle(home, policy=None, now: float | None = None, confirm=lambda preview: True, *,
+                  card=None, vault=None) -> Path | None:
+    """Build, show, seal, sign and write the next bundle into ``HOME/outbox``.
+
+    Parameters
+    ----------
+    home : Home or path-like
+    policy : Policy, optional
+        Defaults to the home's policy.
+    now : float, optional
+        Unix seconds for the bundle date (coarsened per the policy).
+    confirm : callable(str) -> bool
+        Called with the plain-language preview when ``export.confirm_each`` is
+        true; a false answer cancels the export (returns None, writes nothing).
+    card : StudyCard, optional
+        Defaults to :func:`home_card`.
+
+    Returns
+    -------
+    Path of the bundle, or None when the participant declined.
+    """
+    from .disclosure import check_budget
+    from .home import Home, write_private
+    from .keystore import Keystore
+    from .payload import build_payload_and_relabel, preview
+    from .study.card import check_policy_approved
+
+    home = home if isinstance(home, Home) else Home(home)
+    home.require()
+    policy = policy or home.load_policy()
+    card = card or home_card(home)
+    check_policy_approved(card, policy)
+    own_vault = vault is None
+    if own_vault:
+        from .vault import Vault
+
+        vault = Vault.open(home)
+    try:
+        epsilon = check_budget(vault, policy)
+        payload, relabel = build_payload_and_relabel(home, policy, vault, now)
+        if policy.export.confirm_each and not confirm(preview(payload)):
+            return None
+        ks = Keystore(home)
+        device_key = ks.device_key()
+        seq = next_seq(vault)
+        header = make_header(suite=card.suite, study_id=card.study_id, recipient=card.key_fingerprint,
+                             device_key_id=ks.device_key_id(), seq=seq, created=payload["created"])
+        data = seal_bundle(payload, header, card.hpke_public_key(), device_key)
+        digest = hashlib.sha256(data).hexdigest()
+        # Record the export (and spend the budget) before the file exists: a crash in
+        # between leaves a gap in the sequence, never a reused number or an unspent epsilon.
+        with vault.transaction():
+            vault.put("exports", str(seq), {"seq": seq, "created": payload["created"],
+                                            "epsilon": epsilon, "digest": digest})
+            if relabel.changed:
+                relabel.save(vault)
+        path = home.outbox / bundle_name(seq)
+        write_private(path, data)
+        try:
+            from .ledger import Ledger
+
+            Ledger(home, signing_key=device_key).append("exported", bundle_seq=seq, digest=digest)
+        except ImportError:  # pragma: no cover - ledger not installed
+            pass
+        return path
+    finally:
+        if own_vault:
+            vault.close()

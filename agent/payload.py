@@ -1,0 +1,552 @@
+"""The bundle payload: a strict schema, the builder from the home, and the preview.
+
+The payload is everything that leaves the device.  It is built only from the
+policy's export allowlist (``export.allow``, ``include_edge_list``,
+``include_model``, ``include_quiz_summary``) and holds no coordinates, no
+centroids, no timestamps finer than ``export.time_granularity``, no place names
+and no audio.  :func:`validate_payload` refuses any field the schema does not
+know, both before sealing (export) and after opening (researcher).
+
+Schema version 1 is specified field by field in ``docs/bundle-format.md``.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+import re
+import secrets
+from typing import Any, Callable, Iterable, Mapping, Sequence
+
+from .errors import DataError
+
+PAYLOAD_SCHEMA = 1
+
+#: Kinds whose labels are relabelled per device before export.
+RELABELLED = ("place", "sound", "motion")
+RELABEL_TABLE = "relabel"
+
+_HEX64 = re.compile(r"^[0-9a-f]{64}$")
+_NAME = re.compile(r"^[A-Za-z0-9_.:|+-]{1,80}$")
+_NODE = re.compile(r"^(hour|weekday|week|place|sound|motion|mood):[A-Za-z0-9_.+-]{1,40}$")
+_PAIR = re.compile(r"^(hour|weekday|week|place|sound|motion|mood)\|(hour|weekday|week|place|sound|motion|mood)$")
+_DAY = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+_WEEK = re.compile(r"^\d{4}-W\d{2}$")
+
+
+# ----------------------------------------------------------------------------- coarse time
+def coarse_date(now: float | None, granularity: str, tz=None) -> str:
+    """``"2026-12-01"`` (day) or ISO week ``"2026-W49"`` (week) of ``now`` in ``tz`` (UTC default)."""
+    t = _dt.datetime.fromtimestamp(_dt.datetime.now().timestamp() if now is None else float(now),
+                                   tz or _dt.timezone.utc)
+    if granularity == "day":
+        return t.date().isoformat()
+    if granularity == "week":
+        y, w, _ = t.isocalendar()
+        return f"{y:04d}-W{w:02d}"
+    raise DataError(f"time_granularity {granularity!r}: expected 'day' or 'week'")
+
+
+def check_coarse(value, granularity: str, where: str) -> None:
+    rx = _DAY if granularity == "day" else _WEEK
+    if not isinstance(value, str) or not rx.match(value):
+        raise DataError(f"[{where}] {value!r} is not a {granularity} ('YYYY-MM-DD' or 'YYYY-Www')")
+
+
+# ----------------------------------------------------------------------------- relabelling
+class Relabeller:
+    """A per-device secret relabelling of place, sound and motion ids.
+
+    The map is kept in the vault (table ``relabel``, one record per kind) and
+    only grows: a label keeps its code across exports of the same device, and
+    a new label gets a fresh random code (``p`` + 6 hex digits for places,
+    ``s`` for sounds, ``m`` for motion).  Codes mean nothing across devices.
+    """
+
+    def __init__(self, maps: Mapping[str, Mapping[str, str]] | None = None,
+                 token: Callable[[], str] = lambda: secrets.token_hex(3)):
+        self.maps = {k: dict((maps or {}).get(k, {})) for k in RELABELLED}
+        self._token = token
+        self.changed = False
+
+    @classmethod
+    def from_vault(cls, vault) -> "Relabeller":
+        maps = {}
+        for kind in RELABELLED:
+            rec = vault.get(RELABEL_TABLE, kind)
+            maps[kind] = dict(rec.get("map", {})) if rec else {}
+        return cls(maps)
+
+    def save(self, vault) -> None:
+        for kind in RELABELLED:
+            vault.upsert(RELABEL_TABLE, kind, {"map": self.maps[kind]})
+
+    def code(self, kind: str, label) -> str:
+        label = str(label)
+        if kind not in RELABELLED:
+            return label
+        m = self.maps[kind]
+        if label not in m:
+            used = set(m.values())
+            while True:
+                c = f"{kind[0]}{self._token()}"
+                if c not in used:
+                    break
+            m[label] = c
+            self.changed = True
+        return m[label]
+
+
+# ----------------------------------------------------------------------------- builder
+def _num(v) -> float | None:
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        try:
+            import numpy as np
+
+            if isinstance(v, np.generic):
+                v = v.item()
+            else:
+                return None
+        except ImportError:  # pragma: no cover
+            return None
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            return None
+    v = float(v)
+    return v if math.isfinite(v) else None
+
+
+def _numeric_map(d) -> dict:
+    """Only the finite numeric leaves of a flat mapping with name-like keys."""
+    if not isinstance(d, Mapping):
+        return {}
+    out = {}
+    for k, v in d.items():
+        if isinstance(k, str) and _NAME.match(k):
+            n = _num(v)
+            if n is not None:
+                out[k] = n
+    return out
+
+
+def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
+    """The exported part of a ``FitResult.to_dict()``: numbers only, exported type pairs only.
+
+    Anything that is not a finite number at a known position (per-trial lists,
+    strings, nested objects) is left behind on the device.
+    """
+    if not fit:
+        return None
+    params = fit.get("params") or {}
+    theta = {}
+    for k, v in (params.get("theta") or {}).items():
+        a, _, b = str(k).partition("|")
+        n = _num(v)
+        if a in kinds and b in kinds and n is not None:
+            theta[f"{a}|{b}"] = n
+    out_params = {"theta": theta}
+    for k in ("beta", "tau"):
+        n = _num(params.get(k))
+        out_params[k] = n
+    cv = fit.get("cv") or {}
+    folds = [_numeric_map(f) for f in (cv.get("folds") or []) if isinstance(f, Mapping)]
+    baselines = {}
+    for name, b in (fit.get("baselines") or {}).items():
+        if not (isinstance(name, str) and _NAME.match(name)):
+            continue
+        if isinstance(b, Mapping):
+            baselines[name] = _numeric_map(b)
+        elif _num(b) is not None:
+            baselines[name] = {"value": _num(b)}
+    n_trials = fit.get("n_trials")
+    return {"params": out_params, "cv": {"pooled": _numeric_map(cv.get("pooled")), "folds": folds},
+            "baselines": baselines, "n_trials": int(n_trials) if isinstance(n_trials, int) else None}
+
+
+def project_quiz(score: Mapping | None, fit_pooled: Mapping | None = None) -> dict | None:
+    """Quiz summary: trials issued, answered, accuracy, chance; model agreement if the fit has it."""
+    if not score:
+        return None
+    agreement = _num((fit_pooled or {}).get("agreement"))
+    return {"trials": int(score.get("issued", 0)), "answered": int(score.get("answered", 0)),
+            "correct": int(score.get("correct", 0)), "accuracy": _num(score.get("accuracy")),
+            "chance": _num(score.get("chance")), "p_value": _num(score.get("p_value")),
+            "agreement": agreement}
+
+
+def project_ledger_digest(d: Mapping) -> dict:
+    out = {"counts": {str(k): int(v) for k, v in (d.get("counts") or {}).items()},
+           "violations": int(d.get("violations") or 0),
+           "head": {"seq": int(d["head"]["seq"]), "hash": str(d["head"]["hash"])}}
+    for k in ("max_exposure_s", "median_exposure_s", "p95_exposure_s"):
+        if k in d:
+            out[k] = _num(d[k])
+    return out
+
+
+def edge_list_from(edges: Iterable, kinds: Sequence[str], relabel: Relabeller, degree_cap: int) -> dict:
+    """The degree-capped edge list over exported node ids.
+
+    ``edges`` yields ``((kind, label), (kind, label), ...)``; edges touching a
+    kind that is not exported are dropped.
+    """
+    ids: dict[str, int] = {}
+    out = []
+    for e in edges:
+        a, b = e[0], e[1]
+        if a[0] not in kinds or b[0] not in kinds:
+            continue
+        na = f"{a[0]}:{relabel.code(a[0], a[1])}"
+        nb = f"{b[0]}:{relabel.code(b[0], b[1])}"
+        ia = ids.setdefault(na, len(ids))
+        ib = ids.setdefault(nb, len(ids))
+        out.append(sorted((ia, ib)))
+    return {"degree_cap": int(degree_cap), "nodes": list(ids), "edges": sorted(out)}
+
+
+def payload_from_parts(policy, *, episodes: Iterable[Mapping], edges: Iterable | None,
+                       fit: Mapping | None, quiz_score: Mapping | None, ledger_digest: Mapping,
+                       relabel: Relabeller, created: str, software_version: str) -> dict:
+    """Assemble a payload from already-loaded parts (pure; the tests' entry point).
+
+    Parameters
+    ----------
+    policy : Policy
+    episodes : iterable of episode dicts (``docs/architecture.md``)
+    edges : iterable of ``(node_a, node_b, ...)`` capped edges, or None
+    fit : ``FitResult.to_dict()`` or None
+    quiz_score : :func:`agent.quiz.score` output or None
+    ledger_digest : :func:`agent.ledger.digest` output
+    relabel : Relabeller
+    created : str
+        Coarse date (:func:`coarse_date`).
+    """
+    from .disclosure import count_vector, release_counts
+
+    kinds = policy.exported_kinds()
+    withheld: dict[str, str] = {}
+    counts = release_counts(count_vector(list(episodes), kinds), policy)
+
+    edge_list = None
+    if not policy.export.include_edge_list:
+        withheld["edge_list"] = "the policy does not include it (export.include_edge_list = false)"
+    elif policy.privacy.dp:
+        withheld["edge_list"] = ("differential privacy is on and the edge list is a set release that the "
+                                 "count mechanism does not cover")
+    elif edges is None:
+        withheld["edge_list"] = "no graph yet"
+    else:
+        edge_list = edge_list_from(edges, kinds, relabel, policy.graph.degree_cap)
+
+    model = None
+    if not policy.export.include_model:
+        withheld["model"] = "the policy does not include it (export.include_model = false)"
+    else:
+        model = project_fit(fit, kinds)
+        if model is None:
+            withheld["model"] = "no fitted model yet"
+
+    quiz = None
+    if not policy.export.include_quiz_summary:
+        withheld["quiz"] = "the policy does not include it (export.include_quiz_summary = false)"
+    else:
+        quiz = project_quiz(quiz_score, (model or {}).get("cv", {}).get("pooled"))
+        if quiz is None:
+            withheld["quiz"] = "no quiz yet"
+
+    payload = {
+        "schema": PAYLOAD_SCHEMA, "study_id": policy.study.study_id, "created": created,
+        "time_granularity": policy.export.time_granularity,
+        "policy_fingerprint": policy.fingerprint, "software_version": software_version,
+        "kinds": list(kinds), "counts": counts, "edge_list": edge_list, "model": model, "quiz": quiz,
+        "ledger_digest": project_ledger_digest(ledger_digest), "withheld": withheld,
+    }
+    validate_payload(payload)
+    return payload
+
+
+def build_payload(home, policy, vault, now: float | None = None) -> dict:
+    """Build the payload from the home (vault episodes, graph, fit, quiz, ledger).
+
+    The relabelling map grows as new places appear; it is saved to the vault
+    only when a bundle is sealed (:func:`agent.bundle.export_bundle`), so a
+    preview writes nothing.
+    """
+    return build_payload_and_relabel(home, policy, vault, now)[0]
+
+
+def build_payload_and_relabel(home, policy, vault, now: float | None = None):
+    """:func:`build_payload` plus the (possibly grown) :class:`Relabeller` to save on export."""
+    from . import __version__
+    from .home import Home
+    from .ledger import digest, verify_ledger
+
+    home = home if isinstance(home, Home) else Home(home)
+    episodes = [e for _, e in vault.items("episodes")]
+    edges = None
+    if policy.export.include_edge_list and not policy.privacy.dp and episodes:
+        from .graph import CooccurrenceGraph
+
+        edges = CooccurrenceGraph.from_episodes(episodes, policy).edge_list()
+    fit = vault.get("fits", "latest")
+    quiz_score = None
+    if policy.export.include_quiz_summary and vault.count("trials"):
+        from .quiz import score
+
+        quiz_score = score(vault, policy)
+    relabel = Relabeller.from_vault(vault)
+    try:
+        tz = home.timezone()
+    except Exception:  # a home without a policy copy: fall back to UTC dates
+        tz = None
+    created = coarse_date(now, policy.export.time_granularity, tz)
+    payload = payload_from_parts(policy, episodes=episodes, edges=edges, fit=fit, quiz_score=quiz_score,
+                                 ledger_digest=digest(verify_ledger(home, policy=policy)),
+                                 relabel=relabel, created=created, software_version=__version__)
+    return payload, relabel
+
+
+# ----------------------------------------------------------------------------- schema
+def _fail(path: str, msg: str):
+    raise DataError(f"payload [{path}] {msg}")
+
+
+def _is_int(v) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_num(v) -> bool:
+    return (_is_int(v) or isinstance(v, float)) and math.isfinite(v)
+
+
+def _obj(v, path, required: dict, optional: dict | None = None):
+    if not isinstance(v, dict):
+        _fail(path, f"expected an object, got {type(v).__name__}")
+    optional = optional or {}
+    for k in v:
+        if k not in required and k not in optional:
+            _fail(f"{path}.{k}" if path else k, "unknown field: the payload schema does not know it "
+                  f"(allowed here: {', '.join(list(required) + list(optional))})")
+    for k, check in required.items():
+        if k not in v:
+            _fail(f"{path}.{k}" if path else k, "required field is missing")
+        check(v[k], f"{path}.{k}" if path else k)
+    for k, check in optional.items():
+        if k in v:
+            check(v[k], f"{path}.{k}" if path else k)
+
+
+def _int(min_=0):
+    def c(v, p):
+        if not _is_int(v) or v < min_:
+            _fail(p, f"expected an integer >= {min_}, got {v!r}")
+    return c
+
+
+def _numv(v, p):
+    if not _is_num(v):
+        _fail(p, f"expected a finite number, got {v!r}")
+
+
+def _nullable(check):
+    def c(v, p):
+        if v is not None:
+            check(v, p)
+    return c
+
+
+def _str_rx(rx, what):
+    def c(v, p):
+        if not isinstance(v, str) or not rx.match(v):
+            _fail(p, f"expected {what}, got {v!r}")
+    return c
+
+
+def _map(key_rx, key_what, val_check):
+    def c(v, p):
+        if not isinstance(v, dict):
+            _fail(p, f"expected an object, got {type(v).__name__}")
+        for k, x in v.items():
+            if not isinstance(k, str) or not key_rx.match(k):
+                _fail(f"{p}.{k}", f"unexpected key: expected {key_what}")
+            val_check(x, f"{p}.{k}")
+    return c
+
+
+def _list(check, max_len=10**6):
+    def c(v, p):
+        if not isinstance(v, list) or len(v) > max_len:
+            _fail(p, "expected a list")
+        for i, x in enumerate(v):
+            check(x, f"{p}[{i}]")
+    return c
+
+
+def _const(value):
+    def c(v, p):
+        if v != value or type(v) is not type(value):
+            _fail(p, f"expected {value!r}, got {v!r}")
+    return c
+
+
+def _one_of(*choices):
+    def c(v, p):
+        if v not in choices:
+            _fail(p, f"expected one of {choices}, got {v!r}")
+    return c
+
+
+_KIND = _one_of("hour", "weekday", "week", "place", "sound", "motion", "mood")
+_KIND_RX = re.compile(r"^(place|sound|motion|mood)$")
+
+
+def _edge_list(v, p):
+    _obj(v, p, {"degree_cap": _int(1), "nodes": _list(_str_rx(_NODE, "a node id 'kind:label'")),
+                "edges": _list(_list(_int(0), 2))})
+    n = len(v["nodes"])
+    if len(set(v["nodes"])) != n:
+        _fail(f"{p}.nodes", "node ids must be distinct")
+    for i, e in enumerate(v["edges"]):
+        if len(e) != 2 or not e[0] < e[1] < n:
+            _fail(f"{p}.edges[{i}]", f"expected [i, j] with i < j < {n}")
+
+
+def _counts(v, p):
+    _obj(v, p, {
+        "pairs": _map(re.compile(r"^(" + _PAIR.pattern[1:-1] + r"|other)$"), "'kind|kind' or 'other'",
+                      _nullable(_int(0))),
+        "suppressed": _list(_str_rx(_PAIR, "'kind|kind'")),
+        "merged": _list(_str_rx(_PAIR, "'kind|kind'")),
+        "hours": _int(0),
+        "hours_by_kind": _map(_KIND_RX, "a non-time node kind", _int(0)),
+        "small_cell_threshold": _int(0),
+        "small_cell_rule": _one_of("suppress", "merge"),
+        "dp": _nullable(lambda d, q: _obj(d, q, {
+            "mechanism": _const("discrete_laplace"), "library": _const("opendp"), "epsilon": _numv,
+            "scale": _numv, "sensitivity": _int(1), "unit": _one_of("episode", "day")})),
+    })
+
+
+_NUMMAP = _map(_NAME, "a metric name", _numv)
+
+
+def _model(v, p):
+    _obj(v, p, {
+        "params": lambda d, q: _obj(d, q, {"theta": _map(_PAIR, "'kind|kind'", _numv),
+                                           "beta": _nullable(_numv), "tau": _nullable(_numv)}),
+        "cv": lambda d, q: _obj(d, q, {"pooled": _NUMMAP, "folds": _list(_NUMMAP, 100)}),
+        "baselines": _map(_NAME, "a baseline name", _NUMMAP),
+        "n_trials": _nullable(_int(0)),
+    })
+
+
+def _quiz(v, p):
+    _obj(v, p, {"trials": _int(0), "answered": _int(0), "correct": _int(0),
+                "accuracy": _nullable(_numv), "chance": _nullable(_numv), "p_value": _nullable(_numv),
+                "agreement": _nullable(_numv)})
+
+
+def _ledger(v, p):
+    _obj(v, p, {"counts": _map(_NAME, "an event counter name", _int(0)), "violations": _int(0),
+                "head": lambda d, q: _obj(d, q, {"seq": _int(0),
+                                                 "hash": _str_rx(re.compile(r"^[0-9a-f]{1,128}$"), "hex")})},
+         {"max_exposure_s": _nullable(_numv), "median_exposure_s": _nullable(_numv),
+          "p95_exposure_s": _nullable(_numv)})
+
+
+def validate_payload(payload: Any, source: str | None = None) -> dict:
+    """Check a payload against schema version 1; :class:`DataError` names the field.
+
+    The schema version is checked first, so that a newer payload is refused as
+    such rather than as a list of unknown fields.
+    """
+    try:
+        if not isinstance(payload, dict):
+            _fail("", "expected a JSON object")
+        if payload.get("schema") != PAYLOAD_SCHEMA or not _is_int(payload.get("schema")):
+            _fail("schema", f"payload schema {payload.get('schema')!r} is not supported; "
+                            f"this lethe reads schema {PAYLOAD_SCHEMA}")
+        _obj(payload, "", {
+            "schema": _const(PAYLOAD_SCHEMA),
+            "study_id": _str_rx(re.compile(r"^[A-Za-z0-9_.-]{1,64}$"), "a study id"),
+            "created": lambda v, p: None,  # checked against time_granularity below
+            "time_granularity": _one_of("day", "week"),
+            "policy_fingerprint": _str_rx(_HEX64, "64 lower-case hex digits"),
+            "software_version": _str_rx(re.compile(r"^[0-9A-Za-z.+-]{1,40}$"), "a version string"),
+            "kinds": _list(_KIND, 7),
+            "counts": _counts,
+            "edge_list": _nullable(_edge_list),
+            "model": _nullable(_model),
+            "quiz": _nullable(_quiz),
+            "ledger_digest": _ledger,
+            "withheld": _map(re.compile(r"^(edge_list|model|quiz)$"), "edge_list, model or quiz",
+                             lambda v, p: None if isinstance(v, str) and len(v) < 300 else _fail(p, "expected a short reason")),
+        })
+        check_coarse(payload["created"], payload["time_granularity"], "created")
+    except DataError as e:
+        if source:
+            raise DataError(f"{source}: {e}") from None
+        raise
+    return payload
+
+
+# ----------------------------------------------------------------------------- preview
+_KIND_WORDS = {"hour": "hour of day", "weekday": "weekday", "week": "study week", "place": "place",
+               "sound": "kind of soundscape", "motion": "activity level", "mood": "mood"}
+
+
+def preview(payload: Mapping) -> str:
+    """Plain-language description of exactly what the payload holds."""
+    L = []
+    L.append(f"This export would send the study {payload['study_id']!r} the following, sealed so that only "
+             f"the study can read it and signed by this device:")
+    L.append(f"  * Date: {payload['created']} (to the {payload['time_granularity']}, nothing finer).")
+    L.append(f"  * The study policy it was collected under: {payload['policy_fingerprint'][:16]}…, "
+             f"lethe {payload['software_version']}.")
+    c = payload["counts"]
+    shown = {k: v for k, v in c["pairs"].items() if v is not None}
+    L.append(f"  * How many hours two kinds of thing occurred together ({len(c['pairs'])} numbers):")
+    for k, v in shown.items():
+        if k == "other":
+            L.append(f"      all the small pairs together: {v}")
+            continue
+        a, b = k.split("|")
+        L.append(f"      {_KIND_WORDS[a]} with {_KIND_WORDS[b]}: {v}")
+    if c["suppressed"]:
+        L.append(f"    Withheld because below {c['small_cell_threshold']}: "
+                 + ", ".join(k.replace("|", " with ") for k in c["suppressed"]) + ".")
+    if c["merged"] and c["pairs"].get("other") is not None:
+        L.append("    Pooled into 'all the small pairs together': "
+                 + ", ".join(k.replace("|", " with ") for k in c["merged"]) + ".")
+    L.append(f"  * Hours observed: {c['hours']} ("
+             + ", ".join(f"{_KIND_WORDS[k]} known in {v}" for k, v in c["hours_by_kind"].items()) + ").")
+    if c["dp"]:
+        d = c["dp"]
+        L.append(f"    These numbers carry random noise (differential privacy, epsilon {d['epsilon']:g} "
+                 f"per {d['unit']}-level protection, noise scale {d['scale']:g}).")
+    e = payload["edge_list"]
+    if e is not None:
+        relab = sorted({n.split(":")[0] for n in e["nodes"]} & set(RELABELLED))
+        L.append(f"  * A list of {len(e['edges'])} links among {len(e['nodes'])} items (hours, weekdays, weeks, "
+                 f"places, sounds, activity, moods), at most {e['degree_cap']} links per item; "
+                 + (", ".join(relab) + " ids are replaced by random codes that mean nothing outside this "
+                    "device." if relab else "no place, sound or activity ids."))
+    m = payload["model"]
+    if m is not None:
+        L.append(f"  * The memory model fitted on this device: {len(m['params']['theta'])} weights, "
+                 f"its cross-validated scores ({', '.join(sorted(m['cv']['pooled'])) or 'none'}) "
+                 f"and {len(m['baselines'])} comparison baselines.")
+    q = payload["quiz"]
+    if q is not None:
+        acc = "no answers yet" if q["accuracy"] is None else f"{100 * q['accuracy']:.0f}% correct"
+        ch = "" if q["chance"] is None else f" (guessing: {100 * q['chance']:.0f}%)"
+        L.append(f"  * Memory test summary: {q['trials']} questions, {q['answered']} answered, {acc}{ch}.")
+    g = payload["ledger_digest"]
+    mx = g.get("max_exposure_s")
+    L.append(f"  * The audit log's summary: event counts, "
+             + (f"the longest time a raw file existed ({mx:.1f} s), " if mx is not None else "")
+             + f"{g['violations']} retention violation(s), and the log's last entry #{g['head']['seq']}.")
+    for k, why in payload["withheld"].items():
+        L.append(f"  * Not sent: {k.replace('_', ' ')} — {why}.")
+    L.append("Never sent: locations or coordinates, place names, sound recordings or sound features, "
+             "exact times, your answers one by one.")
+    return "\n".join(L)
