@@ -72,30 +72,21 @@ def fold(vault, policy) -> FoldReport:
         cutoff = newest - horizon_s
         fixes = [dict(obj) for _, obj in buffered]
         stays, leftover = extract_stays(fixes, radius_m, min_minutes)
-        left_keys = {_key(f) for f in leftover}
+        left_ids = {id(f) for f in leftover}  # extract_stays returns the open segment's own dicts
         old_open = [f for f in leftover if float(f["t"]) < cutoff]
         if old_open:
             # The horizon cuts an unfinished dwell: close what lies before it.
-            more, _rest = extract_stays(old_open, radius_m, min_minutes)
+            more, _ = extract_stays(old_open, radius_m, min_minutes, flush=True)
             stays = list(stays) + list(more)
-            if not more:
-                # A trailing dwell that extract_stays leaves open is closed here.
-                tail = _as_stay(old_open, radius_m, min_minutes)
-                if tail is not None:
-                    stays.append(tail)
         for s in stays:
             if vault.put(STAYS, stay_rid(s), _stay_payload(s)):
                 rep.stays_new += 1
-        drop = [rid for rid, obj in buffered
-                if _key(obj) not in left_keys or float(obj["t"]) < cutoff]
+        drop = [rid for (rid, _), f in zip(buffered, fixes)
+                if id(f) not in left_ids or float(f["t"]) < cutoff]
         if drop:
             rep.fixes_deleted = vault.delete_many(FIXES, drop)
         rep.fixes_left = rep.fixes_before - rep.fixes_deleted
     return rep
-
-
-def _key(fix) -> tuple:
-    return (round(float(fix["t"]), 3), round(float(fix["lat"]), 7), round(float(fix["lon"]), 7))
 
 
 def _stay_payload(s) -> dict:
@@ -103,19 +94,3 @@ def _stay_payload(s) -> dict:
         return {"t_start": float(s["t_start"]), "t_end": float(s["t_end"]), "lat": float(s["lat"]),
                 "lon": float(s["lon"]), "n": int(s.get("n", 0))}
     return {k: getattr(s, k) for k in ("t_start", "t_end", "lat", "lon", "n")}
-
-
-def _as_stay(fixes, radius_m: float, min_minutes: float):
-    """The fixes as one stay if they all lie within ``radius_m`` of the first for ``min_minutes``."""
-    from .geo import haversine_m
-
-    first = fixes[0]
-    if float(fixes[-1]["t"]) - float(first["t"]) < min_minutes * 60.0:
-        return None
-    for f in fixes[1:]:
-        if haversine_m(first["lat"], first["lon"], f["lat"], f["lon"]) > radius_m:
-            return None
-    n = len(fixes)
-    return {"t_start": float(first["t"]), "t_end": float(fixes[-1]["t"]),
-            "lat": sum(float(f["lat"]) for f in fixes) / n, "lon": sum(float(f["lon"]) for f in fixes) / n,
-            "n": n}

@@ -68,8 +68,18 @@ def entry_type(st: os.stat_result) -> str:
     return "device"
 
 
-def same_file(a: os.stat_result, b: os.stat_result) -> bool:
-    return (a.st_dev, a.st_ino) == (b.st_dev, b.st_ino)
+def same_file(a: os.stat_result, b: os.stat_result, *, strict: bool = False) -> bool:
+    """Same device and inode; ``strict`` also requires the same ctime.
+
+    An inode number is reused as soon as a file is unlinked and nothing holds
+    it open, so a name re-created in between looks "the same" by (dev, ino)
+    alone; its ctime (set by the kernel, not by ``utime``) tells them apart.
+    While we hold a descriptor the inode cannot be reused, so (dev, ino) is
+    enough to recognise the file we opened.
+    """
+    if (a.st_dev, a.st_ino) != (b.st_dev, b.st_ino):
+        return False
+    return not strict or a.st_ctime_ns == b.st_ctime_ns
 
 
 @dataclass
@@ -198,7 +208,7 @@ class InboxDir:
         fst = opened.st
         if not stat.S_ISREG(fst.st_mode):
             problem = UnsafeEntry(shown, "changed", f"became a {entry_type(fst)} before it was opened")
-        elif not same_file(fst, lst):
+        elif not same_file(fst, lst, strict=True):
             problem = UnsafeEntry(shown, "changed", "was replaced between lstat and open")
         elif fst.st_nlink != 1:
             problem = UnsafeEntry(shown, "hardlink", f"{fst.st_nlink} hard links on the open file; "
@@ -244,8 +254,8 @@ class InboxDir:
             with zeros and fsynced when it is a single-link regular file we
             could open for writing.  It is closed afterwards.
         expect : os.stat_result, optional
-            The identity (device, inode) the name must still have; defaults to
-            ``opened.st``.  Without either, the entry is not removed.
+            For an entry that was never opened: the ``lstat`` it must still
+            match (device, inode and ctime).
 
         Returns
         -------
@@ -254,17 +264,18 @@ class InboxDir:
             refers to another file (which is then left alone).
         """
         _check_name(name)
-        ident = expect if expect is not None else (opened.st if opened is not None else None)
-        if ident is None:
+        if opened is None and expect is None:
             raise ValueError("destroy() needs the file's identity: pass opened= or expect=")
         try:
-            if opened is not None and opened.writable:
-                fst = os.fstat(opened.fd)
+            if opened is not None:
+                ident, strict = os.fstat(opened.fd), False  # held open: the inode cannot be reused
                 # Never overwrite bytes that another name shares (a hardlink made meanwhile).
-                if stat.S_ISREG(fst.st_mode) and fst.st_nlink == 1 and fst.st_size > 0:
-                    _overwrite(opened.fd, fst.st_size)
+                if opened.writable and stat.S_ISREG(ident.st_mode) and ident.st_nlink == 1 and ident.st_size > 0:
+                    _overwrite(opened.fd, ident.st_size)
+            else:
+                ident, strict = expect, True
             now = self.lstat(name)
-            if now is None or not same_file(now, ident):
+            if now is None or not same_file(now, ident, strict=strict):
                 return False
             if stat.S_ISDIR(now.st_mode):
                 return False  # never remove a directory
