@@ -1,0 +1,96 @@
+"""Accelerometry window features: ENMO, magnitude SD, dominant frequency, active flag."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from agent.intake import features as F
+from agent.intake.readers.accel import STANDARD_GRAVITY
+
+RATE = 10.0
+
+
+def still(n=600, tilt=(0.0, 0.0, 1.0)):
+    t = 1793800800.0 + np.arange(n) / RATE
+    xyz = np.tile(np.asarray(tilt, dtype=float), (n, 1))
+    return t, xyz
+
+
+def gait(freq=2.0, n=600, amp=0.3, rate=RATE):
+    t = 1793800800.0 + np.arange(n) / rate
+    z = 1.0 + amp * np.sin(2 * np.pi * freq * (t - t[0]))
+    return t, np.column_stack([np.zeros(n), np.zeros(n), z])
+
+
+def test_enmo_of_a_still_device_is_zero():
+    # Common practice, no source: at rest the sensor reads exactly 1 g.
+    t, xyz = still()
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    assert [r[1] for r in rows] == [0.0] * 6
+
+
+def test_enmo_of_a_still_tilted_device_is_zero():
+    # Common practice, no source: orientation does not matter, only |a| = 1 g.
+    t, xyz = still(tilt=(np.sin(0.4), 0.0, np.cos(0.4)))
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    assert max(r[1] for r in rows) == pytest.approx(0.0, abs=1e-12)
+
+
+def test_enmo_sets_negative_values_to_zero():
+    # van Hees et al. 2013: ENMO = max(||a|| - 1 g, 0).
+    xyz = np.array([[0.0, 0.0, 0.5], [0.0, 0.0, 1.5], [0.6, 0.0, 0.8]])
+    assert np.allclose(F.enmo_g(xyz), [0.0, 0.5, 0.0])
+
+
+def test_dominant_frequency_of_a_2hz_gait_signal_is_2hz():
+    # Common practice, no source: walking cadence about 2 steps per second.
+    t, xyz = gait(2.0)
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    assert [r[3] for r in rows] == pytest.approx([2.0] * 6, abs=0.2)
+
+
+def test_dominant_frequency_at_a_higher_rate():
+    t, xyz = gait(1.6, n=3000, rate=50.0)
+    rows, _ = F.accel_windows(t, xyz, 50.0, 10.0)
+    assert np.median([r[3] for r in rows]) == pytest.approx(1.6, abs=0.2)
+
+
+def test_still_window_has_no_dominant_frequency():
+    t, xyz = still()
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    assert {r[3] for r in rows} == {0.0}
+
+
+def test_magnitude_sd_of_a_sine_is_amplitude_over_root_two():
+    # Definition: the SD of A sin(.) over whole periods is A / sqrt(2).
+    t, xyz = gait(2.0, amp=0.3)
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    assert rows[0][2] == pytest.approx(0.3 / np.sqrt(2), rel=0.02)
+
+
+def test_active_flag_uses_the_documented_cut_point():
+    t, xyz = gait(2.0, amp=0.3)
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    assert all(r[4] == 1 for r in rows)            # ENMO about 0.095 g > 0.040 g
+    t, xyz = still()
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    assert all(r[4] == 0 for r in rows)
+
+
+def test_windows_start_at_the_first_sample_and_step_by_window_s():
+    t, xyz = still()
+    rows, skipped = F.accel_windows(t, xyz, RATE, 10.0)
+    assert [r[0] - t[0] for r in rows] == pytest.approx([0, 10, 20, 30, 40, 50])
+    assert skipped == 0
+
+
+def test_a_short_trailing_window_is_skipped_and_counted():
+    t, xyz = still(n=630)    # 63 s: the last 3 s window holds 30 % of its samples
+    rows, skipped = F.accel_windows(t, xyz, RATE, 10.0)
+    assert len(rows) == 6 and skipped == 1
+
+
+def test_standard_gravity_is_the_cgpm_value():
+    # 3rd CGPM (1901): g_n = 9.80665 m/s^2 exactly.
+    assert STANDARD_GRAVITY == 9.80665

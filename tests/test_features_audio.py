@@ -1,0 +1,174 @@
+"""Audio features and levels, checked against standards and against librosa."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from agent.intake import features as F
+
+SR = 16000
+
+
+def tone(freq, amp=1.0, seconds=3.0, sr=SR):
+    t = np.arange(int(seconds * sr)) / sr
+    return (amp * np.sin(2 * np.pi * freq * t)).astype(np.float32)
+
+
+# IEC 61672-1, table of frequency weightings (A column), from memory.
+@pytest.mark.parametrize("freq, expected_db", [(100.0, -19.1), (1000.0, 0.0), (10000.0, -2.5)])
+def test_a_weighting_curve_matches_iec_61672_table(freq, expected_db):
+    assert F.a_weighting_db(freq) == pytest.approx(expected_db, abs=0.1)
+
+
+def test_a_weighting_formula_equals_the_analogue_network_evaluated_by_scipy():
+    # The same IEC 61672-1 poles as a zero-pole-gain network (four zeros at
+    # 0 Hz, double poles at f1 and f4, single at f2 and f3), evaluated by
+    # scipy.signal.freqs_zpk and normalised to 0 dB at 1 kHz.
+    from scipy.signal import freqs_zpk
+
+    w = 2 * np.pi
+    poles = [-w * F.A_F1] * 2 + [-w * F.A_F2, -w * F.A_F3] + [-w * F.A_F4] * 2
+    f = np.array([31.5, 100.0, 500.0, 1000.0, 4000.0, 10000.0, 16000.0])
+    _, h = freqs_zpk([0, 0, 0, 0], poles, 1.0, worN=w * f)
+    _, h1k = freqs_zpk([0, 0, 0, 0], poles, 1.0, worN=[w * 1000.0])
+    ref = 20 * np.log10(np.abs(h) / np.abs(h1k[0]))
+    assert np.allclose(F.a_weighting_db(f), ref, atol=0.01)
+
+
+def test_full_scale_sine_reads_0_dbfs():
+    # AES17: the RMS of a full-scale sine is defined as 0 dBFS.
+    assert F.level_dbfs(tone(1000.0, amp=1.0)) == pytest.approx(0.0, abs=0.01)
+
+
+def test_half_scale_sine_reads_minus_6_02_dbfs():
+    # AES17 convention; 20 log10(0.5) = -6.02 dB.
+    assert F.level_dbfs(tone(1000.0, amp=0.5)) == pytest.approx(-6.02, abs=0.01)
+
+
+def test_a_weighted_level_of_1khz_full_scale_sine_is_0_db():
+    # A(1 kHz) = 0 dB by definition (IEC 61672-1), AES17 full-scale reference.
+    assert F.level_dba(tone(1000.0), SR) == pytest.approx(0.0, abs=0.05)
+
+
+def test_a_weighted_level_of_100hz_sine_is_attenuated_as_the_table_says():
+    # IEC 61672-1 table, from memory: A(100 Hz) = -19.1 dB.
+    assert F.level_dba(tone(100.0), SR) == pytest.approx(-19.1, abs=0.1)
+
+
+def test_a_weighted_level_of_10khz_sine_is_attenuated_as_the_table_says():
+    # IEC 61672-1 table, from memory: A(10 kHz) = -2.5 dB.  At 48 kHz so the
+    # tone lies below the Nyquist frequency (at 16 kHz it would alias to 6 kHz).
+    assert F.level_dba(tone(10000.0, sr=48000), 48000) == pytest.approx(-2.5, abs=0.1)
+
+
+@pytest.mark.parametrize("freq", [1000.0, 2200.0, 3517.0])
+def test_spectral_centroid_of_a_pure_tone_is_its_frequency(freq):
+    # Definition: the magnitude-weighted mean frequency; a tone concentrates
+    # all magnitude around its frequency (Hann leakage is symmetric).
+    v = F.audio_vector(tone(freq, amp=0.5), SR)
+    i = F.AUDIO_FEATURE_NAMES.index("centroid_hz")
+    assert v[i] == pytest.approx(freq, rel=0.01)
+
+
+def test_zero_crossing_rate_of_a_tone_is_twice_its_frequency_over_sr():
+    # Definition: a sine crosses zero twice per period.  Interior frames only:
+    # the edge-padded first and last frames hold a constant stretch.
+    # A phase offset keeps samples off the exact zeros, where float rounding
+    # would decide the sign.
+    n_fft, hop = F.frame_params(SR)
+    t = np.arange(3 * SR) / SR
+    y = (0.5 * np.sin(2 * np.pi * 500.0 * t + 0.3)).astype(np.float32)
+    z = F.zero_crossing_rate(y, n_fft, hop)
+    assert np.median(z[2:-2]) == pytest.approx(2 * 500.0 / SR, rel=0.02)
+
+
+def test_flatness_separates_white_noise_from_a_tone():
+    # Definition (Wiener entropy): near 1 for white noise, near 0 for a tone.
+    rng = np.random.default_rng(0)
+    noise = (0.1 * rng.standard_normal(3 * SR)).astype(np.float32)
+    i = F.AUDIO_FEATURE_NAMES.index("flatness")
+    assert F.audio_vector(noise, SR)[i] > 0.4
+    assert F.audio_vector(tone(1000.0, 0.5), SR)[i] < 0.01
+
+
+@pytest.fixture(scope="module")
+def signal():
+    rng = np.random.default_rng(3)
+    t = np.arange(3 * SR) / SR
+    y = 0.05 * rng.standard_normal(t.size) + 0.2 * np.sin(2 * np.pi * 440 * t) * (t > 1)
+    return y.astype(np.float32)
+
+
+def _librosa_kwargs():
+    n_fft, hop = F.frame_params(SR)
+    return dict(n_fft=n_fft, hop_length=hop)
+
+
+def test_stft_magnitude_matches_librosa(signal):
+    # Reference implementation: librosa.stft (Hann, centred, constant padding).
+    import librosa
+
+    ref = np.abs(librosa.stft(signal, **_librosa_kwargs()))
+    got = F.stft_magnitude(signal, **_librosa_kwargs())
+    assert got.shape == ref.shape
+    assert np.allclose(got, ref, atol=1e-5 * ref.max())
+
+
+def test_mfcc_mean_and_sd_match_librosa(signal):
+    # Reference implementation: librosa.feature.mfcc with the same framing.
+    import librosa
+
+    ref = librosa.feature.mfcc(y=signal, sr=SR, n_mfcc=F.N_MFCC, n_mels=F.N_MELS, **_librosa_kwargs())
+    v = F.audio_vector(signal, SR)
+    assert np.allclose(v[:20], ref.mean(axis=1), atol=1e-3)
+    assert np.allclose(v[20:40], ref.std(axis=1), atol=1e-3)
+
+
+@pytest.mark.parametrize("name, func", [
+    ("centroid_hz", "spectral_centroid"),
+    ("flatness", "spectral_flatness"),
+    ("rolloff_hz", "spectral_rolloff"),
+    ("zcr", "zero_crossing_rate"),
+])
+def test_spectral_summaries_match_librosa(signal, name, func):
+    # Reference implementation: the librosa.feature function of the same name.
+    import librosa
+
+    kw = _librosa_kwargs()
+    if func == "zero_crossing_rate":
+        ref = librosa.feature.zero_crossing_rate(signal, frame_length=kw["n_fft"], hop_length=kw["hop_length"])
+    elif func == "spectral_flatness":
+        ref = librosa.feature.spectral_flatness(y=signal, **kw)
+    else:
+        ref = getattr(librosa.feature, func)(y=signal, sr=SR, **kw)
+    v = F.audio_vector(signal, SR)
+    assert v[F.AUDIO_FEATURE_NAMES.index(name)] == pytest.approx(float(ref.mean()), rel=1e-4)
+
+
+def test_log_mel_bands_are_means_of_groups_of_the_librosa_log_mel(signal):
+    # Reference implementation: librosa.feature.melspectrogram + power_to_db(top_db=80).
+    import librosa
+
+    mel = librosa.feature.melspectrogram(y=signal, sr=SR, n_mels=F.N_MELS, **_librosa_kwargs())
+    db = librosa.power_to_db(mel, ref=1.0, amin=1e-10, top_db=80.0)
+    ref = db.reshape(F.N_MEL_BANDS, -1, db.shape[1]).mean(axis=(1, 2))
+    v = F.audio_vector(signal, SR)
+    i = F.AUDIO_FEATURE_NAMES.index("logmel_band1_db")
+    assert np.allclose(v[i:i + F.N_MEL_BANDS], ref, atol=1e-3)
+
+
+def test_feature_vector_has_one_value_per_name(signal):
+    v = F.audio_vector(signal, SR)
+    assert len(F.AUDIO_FEATURE_NAMES) == 52
+    assert v.shape == (len(F.AUDIO_FEATURE_NAMES),)
+    assert np.isfinite(v).all()
+
+
+def test_frame_parameters_scale_with_sample_rate():
+    assert F.frame_params(16000) == (512, 256)
+    assert F.frame_params(48000) == (2048, 1024)
+
+
+def test_warm_up_runs_every_feature():
+    assert F.warm_up() >= 0.0
