@@ -36,8 +36,9 @@ from typing import Mapping, Sequence
 import numpy as np
 
 # Mean Earth radius R1 = 6,371,008.8 m of the GRS 80 ellipsoid (Moritz 2000,
-# "Geodetic Reference System 1980", J. Geodesy 74).  The spherical haversine
-# distance differs from the WGS 84 geodesic by at most about 0.5 %.
+# "Geodetic Reference System 1980", J. Geodesy 74).  Over short distances the
+# spherical haversine distance differs from the WGS 84 geodesic by -0.45 % to
+# +0.56 % (the ellipsoid's radii of curvature span 6,335 to 6,400 km).
 EARTH_RADIUS_M = 6371008.8
 
 # ENMO cut-points for the non-dominant wrist in adults, in milli-g.
@@ -212,6 +213,7 @@ class PlaceCodebook:
                  for c in clusters]
 
         match: dict[int, str] = {}
+        d = None
         if clusters and act:
             clat = np.array([c[0] for c in cent])[:, None]
             clon = np.array([c[1] for c in cent])[:, None]
@@ -247,7 +249,13 @@ class PlaceCodebook:
             else:
                 pid = self._new_id()
                 cluster_id[ci] = pid
+                # a split: the cluster holds stays of a known place, or lies within the
+                # matching gate of a known place that another cluster kept
                 parents = sorted(votes[ci], key=lambda q: int(q[1:]))
+                if not parents and d is not None:
+                    close = [(float(d[ci, k]), act_ids[k]) for k in range(len(act_ids))
+                             if d[ci, k] <= PLACE_GATE_RADII * self.radius_m and act_ids[k] in matched_places]
+                    parents = [min(close)[1]] if close else []
                 if parents:
                     self.history.append({"event": "split", "from": parents[0],
                                          "into": [parents[0], pid], "t": now})
