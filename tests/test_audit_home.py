@@ -23,14 +23,6 @@ T0 = 1_790_000_000.0  # 2026-09-21 UTC; any fixed instant will do
 KINDS = ("audio", "gps", "accel", "mood")
 
 
-class Clock:
-    def __init__(self, t):
-        self.t = float(t)
-
-    def __call__(self):
-        return self.t
-
-
 def build_home(root, *, policy: str = "default", passphrase: bytes | None = None, items: int = 60,
                days: int = 3, seed: int = 0, late: int = 0, never_destroyed: int = 0,
                rejections: dict | None = None, exports: int = 2) -> Path:
@@ -47,10 +39,9 @@ def build_home(root, *, policy: str = "default", passphrase: bytes | None = None
     pol = load_policy(pol_path)
     limit = pol.retention.raw_seconds
     ks = Keystore(home, passphrase=passphrase, use_keyring=False).ensure()
-    clock = Clock(T0)
-    lg = Ledger(home, signing_key=ks.device_key(), clock=clock)
-    lg.append("agent_start", version="0.1.0")
-    lg.append("policy", fingerprint=pol.fingerprint, name=pol.policy.name, version=pol.policy.version)
+    events = [(T0, 0, "agent_start", dict(version="0.1.0")),
+              (T0 + 0.01, 1, "policy", dict(fingerprint=pol.fingerprint, name=pol.policy.name,
+                                            version=pol.policy.version))]
     rejections = dict(rejections if rejections is not None else {"bad_header": 2, "too_large": 1})
     reasons = [r for r, n in rejections.items() for _ in range(n)]
     n_total = items + len(reasons)
@@ -61,7 +52,7 @@ def build_home(root, *, policy: str = "default", passphrase: bytes | None = None
     never_idx = set(order[len(reasons) + late:len(reasons) + late + never_destroyed].tolist())
     export_times = list(np.linspace(T0 + 86400 * 0.9, T0 + days * 86400 - 3600, exports)) if exports else []
     r_iter = iter(reasons)
-    events = []  # (t, order, event, fields): appended in time order, as the agent would
+    # (t, order, event, fields): appended in time order, as the agent would
     for i, complete_at in enumerate(starts):
         kind = KINDS[i % len(KINDS)]
         item = f"{i:032x}"
@@ -80,11 +71,10 @@ def build_home(root, *, policy: str = "default", passphrase: bytes | None = None
     for j, t in enumerate(export_times):
         events.append((float(t), len(events), "exported", dict(bundle_seq=j + 1, digest=f"{j + 1:064x}")))
     events.sort(key=lambda e: (e[0], e[1]))
-    for t, _, event, fields in events:
-        clock.t = t
-        lg.append(event, **fields)
-    clock.t += 1
-    lg.append("agent_stop", reason="done")
+    events.append((events[-1][0] + 1.0, len(events), "agent_stop", dict(reason="done")))
+    # One batched append (one fsync); the ledger asks the clock once per entry.
+    clock = iter([t for t, *_ in events]).__next__
+    Ledger(home, signing_key=ks.device_key(), clock=clock).append_many([(e, f) for _, _, e, f in events])
     return home.root
 
 

@@ -89,13 +89,24 @@ PLOT_STYLE = {"font.size": 11, "axes.titlesize": 14, "axes.titleweight": "bold",
               "axes.spines.top": False, "axes.spines.right": False}
 
 
+def _styled(plot):
+    """Run a plot function under the report's style without touching global rcParams."""
+    import functools
+
+    @functools.wraps(plot)
+    def wrapper(*args, **kwargs):
+        import matplotlib
+
+        with matplotlib.rc_context(PLOT_STYLE):
+            return plot(*args, **kwargs)
+
+    return wrapper
+
+
 def _figure(w=6.4, h=3.8):
-    import matplotlib
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    # rcParams are read when artists are created, so they are set for this figure only.
-    matplotlib.rcParams.update(PLOT_STYLE)
     fig = Figure(figsize=(w, h), dpi=110)
     FigureCanvasAgg(fig)
     return fig
@@ -113,6 +124,7 @@ def _empty(ax, text):
     ax.set_yticks([])
 
 
+@_styled
 def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> None:
     """Histogram of raw exposure in seconds with the limit as a red line."""
     import numpy as np
@@ -135,11 +147,12 @@ def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> 
     if limit_s is not None:
         ax.axvline(limit_s, color="#c62828", linewidth=2.5, label=f"policy limit {limit_s:g} s")
     if xs.size or limit_s is not None:
-        ax.legend(loc="upper right", fontsize=9)
+        ax.legend(loc="upper right")
     ax.set_title("Raw exposure")
     _save(fig, path)
 
 
+@_styled
 def plot_items_per_day(daily: dict, path: Path) -> None:
     """Grouped bars: raw items received per kind per UTC day."""
     import numpy as np
@@ -158,13 +171,14 @@ def plot_items_per_day(daily: dict, path: Path) -> None:
         ax.set_xticks(x[::step], [d[5:] for d in days][::step])
         ax.set_xlabel("day (UTC, month-day)")
         ax.set_ylabel("raw items received")
-        ax.legend(fontsize=9, ncol=len(kinds))
+        ax.legend(ncol=len(kinds), loc="upper left")
     else:
         _empty(ax, "no raw items recorded")
     ax.set_title("Raw items per kind per day")
     _save(fig, path)
 
 
+@_styled
 def plot_rejections(rejections: dict, path: Path) -> None:
     fig = _figure(6.4, max(2.4, 0.45 * len(rejections) + 1.4))
     ax = fig.add_subplot()
@@ -180,6 +194,7 @@ def plot_rejections(rejections: dict, path: Path) -> None:
     _save(fig, path)
 
 
+@_styled
 def plot_exports(exports: list, path: Path) -> None:
     import datetime as dt
 

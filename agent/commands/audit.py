@@ -32,6 +32,8 @@ def register(sub) -> None:
     rep.add_argument("--home", dest="audit_home", metavar="DIR", help="the home (or a copy) to report on")
     rep.add_argument("--from-bundles", metavar="STUDYDIR",
                      help="build a cohort view from the ledger digests in a study directory's opened bundles")
+    rep.add_argument("--policy", action="append", default=[], metavar="FILE",
+                     help="with --from-bundles: a policy whose limit applies to its fingerprint (repeatable)")
     add_json(rep)
     rep.set_defaults(func=_report)
 
@@ -86,7 +88,7 @@ def _report(args) -> int:
     if args.from_bundles:
         from ..audit.cohort import write_cohort_report
 
-        path = write_cohort_report(Path(args.from_bundles), Path(args.out))
+        path = write_cohort_report(Path(args.from_bundles), Path(args.out), policies=args.policy)
         emit(args, {"report": str(path)}, f"Cohort report written to {path}")
         return 0
     from ..audit.report import write_report
