@@ -1,0 +1,233 @@
+"""The participant's commands: init, status, places, quiz, pause, resume, withdraw, service."""
+
+from __future__ import annotations
+
+import re
+import sys
+
+from ._common import add_json, emit, home_from
+
+
+def register(sub) -> None:
+    p = sub.add_parser("init", help="enrol this laptop in a study (reads the study card, records consent)")
+    p.add_argument("--study", required=True, metavar="CARD", help="the study card JSON from the researcher")
+    p.add_argument("--policy", required=True, metavar="FILE", help="the study policy TOML the card approves")
+    p.add_argument("--consent", metavar="STUDY_ID",
+                   help="agree non-interactively by giving the study id (otherwise you are asked to type it)")
+    p.add_argument("--timezone", metavar="ZONE", help="your IANA time zone (default: the policy's)")
+    p.add_argument("--enrolment-out", metavar="FILE", help="where to write the enrolment file for the researcher")
+    add_json(p)
+    p.set_defaults(func=_init)
+
+    p = sub.add_parser("status", help="what the agent holds, what is waiting, when the next export is due")
+    add_json(p)
+    p.set_defaults(func=_status)
+
+    p = sub.add_parser("places", help="list your places; name, merge or exclude them")
+    add_json(p)
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--name", nargs=2, metavar=("ID", "NAME"), help="give place ID your own name")
+    g.add_argument("--merge", nargs=2, metavar=("ID", "INTO"), help="ID is the same place as INTO")
+    g.add_argument("--unmerge", metavar="ID", help="undo a merge")
+    g.add_argument("--exclude", metavar="ID", help="do not use this place in memory tests")
+    g.add_argument("--include", metavar="ID", help="use this place in memory tests again")
+    p.set_defaults(func=_places)
+
+    p = sub.add_parser("quiz", help="take the memory test in the terminal, or import answers")
+    p.add_argument("--answers", metavar="FILE", help="import answers (JSON or CSV) collected elsewhere")
+    p.add_argument("--issue", type=int, metavar="N", help="only issue N new trials (for another front end)")
+    p.add_argument("--export-trials", metavar="FILE", help="write the pending trials to FILE (JSON)")
+    add_json(p)
+    p.set_defaults(func=_quiz)
+
+    p = sub.add_parser("pause", help="pause: arriving files are still destroyed, nothing is kept")
+    p.add_argument("--for", dest="duration", metavar="DURATION", help="e.g. 30m, 2h, 1d (default: until resumed)")
+    add_json(p)
+    p.set_defaults(func=_pause)
+
+    p = sub.add_parser("resume", help="end a pause")
+    add_json(p)
+    p.set_defaults(func=_resume)
+
+    p = sub.add_parser("withdraw", help="destroy everything and leave a signed withdrawal certificate")
+    p.add_argument("--yes", action="store_true", help="do not ask for confirmation")
+    add_json(p)
+    p.set_defaults(func=_withdraw)
+
+    p = sub.add_parser("service", help="install or remove the background service")
+    ps = p.add_subparsers(dest="service_command", metavar="ACTION", required=True)
+    for name, helptext in (("install", "write and enable a per-user service"),
+                           ("remove", "disable and remove the per-user service")):
+        q = ps.add_parser(name, help=helptext)
+        q.add_argument("--dry-run", action="store_true", help="print the file and commands, change nothing")
+        q.add_argument("--manager", choices=("systemd", "launchd"), help="override the detected service manager")
+        q.set_defaults(func=_service)
+
+
+# ----------------------------------------------------------------------------- handlers
+def _init(args) -> int:
+    from ..participant.enrol import consent_text, enrol
+    from ..policy import load_policy
+    from ..study.card import check_policy_approved, load_card
+
+    card = load_card(args.study)
+    policy = load_policy(args.policy)
+    check_policy_approved(card, policy)
+    consent = args.consent
+    if consent is None:
+        if not sys.stdin.isatty():
+            from ..errors import UsageError
+
+            raise UsageError("consent must be given: run in a terminal, or pass --consent STUDY_ID")
+        print(f"Study {card.study_id}\nContact: {card.contact}\n")
+        print(consent_text(card, policy))
+        print()
+        consent = input(f"To agree, type the study id ({card.study_id}): ")
+    res = enrol(getattr(args, "home", None), args.study, args.policy, consent=consent,
+                timezone=args.timezone, enrolment_out=args.enrolment_out)
+    emit(args, res, f"Enrolled in {res['study_id']} as {res['pseudonym']} (device key {res['device_key_id']}).\n"
+                    f"Home: {res['home']}\nSend this enrolment file to the study team: {res['enrolment']}\n"
+                    f"Next: 'lethe service install' to run in the background, 'lethe status' to check.")
+    return 0
+
+
+def _status(args) -> int:
+    from ..participant.status import collect_status, status_text
+
+    st = collect_status(home_from(args))
+    emit(args, st, status_text(st))
+    return 0
+
+
+def _places(args) -> int:
+    from .. import places
+    from ..vault import Vault
+
+    home = home_from(args).require()
+    with Vault.open(home) as v:
+        if args.name:
+            places.set_name(v, args.name[0], args.name[1])
+        elif args.merge:
+            places.merge(v, args.merge[0], args.merge[1])
+        elif args.unmerge:
+            places.unmerge(v, args.unmerge)
+        elif args.exclude:
+            places.set_excluded(v, args.exclude, True)
+        elif args.include:
+            places.set_excluded(v, args.include, False)
+        rows = places.list_places(v)
+    emit(args, rows, places.places_text(rows))
+    return 0
+
+
+def _quiz(args) -> int:
+    import json
+
+    from .. import quiz
+    from ..vault import Vault
+
+    home = home_from(args).require()
+    policy = home.load_policy()
+    with Vault.open(home) as v:
+        if args.answers:
+            n = quiz.import_answers(v, args.answers)
+            s = quiz.score(v, policy)
+            emit(args, {"imported": n, "score": s}, f"Imported {n} answer(s). " + quiz.score_text(s))
+            return 0
+        if args.issue or args.export_trials:
+            if args.issue:
+                quiz.issue_trials(v, policy, n=args.issue)
+            pending = quiz.pending_trials(v)
+            public = [{k: t[k] for k in ("trial_id", "cue_text", "options")} for t in pending]
+            if args.export_trials:
+                from ..home import write_private
+
+                write_private(__import__("pathlib").Path(args.export_trials),
+                              json.dumps({"trials": public}, indent=2).encode())
+            emit(args, {"pending": public}, f"{len(pending)} trial(s) waiting for an answer.")
+            return 0
+        if args.json:
+            emit(args, quiz.score(v, policy))
+            return 0
+        quiz.run_session(v, policy)
+    return 0
+
+
+_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([smhd])\s*$")
+
+
+def parse_duration(text: str) -> float:
+    """``"90s"``, ``"30m"``, ``"2h"``, ``"1.5d"`` -> seconds."""
+    from ..errors import UsageError
+
+    m = _DURATION.match(text or "")
+    if not m:
+        raise UsageError(f"duration {text!r}: expected a number and a unit s, m, h or d (e.g. 30m, 2h)")
+    return float(m.group(1)) * {"s": 1, "m": 60, "h": 3600, "d": 86400}[m.group(2)]
+
+
+def _ledger(home):
+    from ..keystore import Keystore
+    from ..ledger import Ledger
+
+    return Ledger(home, signing_key=Keystore(home).device_key())
+
+
+def _pause(args) -> int:
+    import time
+
+    from ..pause import set_paused
+
+    home = home_from(args).require()
+    until = time.time() + parse_duration(args.duration) if args.duration else None
+    st = set_paused(home, until=until, ledger=_ledger(home))
+    when = (time.strftime("%Y-%m-%d %H:%M", time.localtime(until)) if until else "you run 'lethe resume'")
+    emit(args, st, f"Paused until {when}. Arriving raw files are still destroyed within the retention "
+                   f"window; nothing is kept from them.")
+    return 0
+
+
+def _resume(args) -> int:
+    from ..pause import clear_pause
+
+    home = home_from(args).require()
+    st = clear_pause(home, ledger=_ledger(home))
+    emit(args, st, "Resumed: arriving files are featurised again.")
+    return 0
+
+
+def _withdraw(args) -> int:
+    from ..participant.withdraw import withdraw
+
+    home = home_from(args).require()
+    cfg = home.read_config()
+    if not args.yes:
+        if not sys.stdin.isatty():
+            from ..errors import UsageError
+
+            raise UsageError("withdrawal destroys everything; confirm in a terminal or pass --yes")
+        print("This destroys everything lethe holds on this laptop: codes, episodes, answers, place "
+              "names, keys and the ledger. Only a signed withdrawal certificate remains.")
+        reply = input(f"Type the study id ({cfg.get('study_id')}) to withdraw: ")
+        if reply.strip() != cfg.get("study_id"):
+            print("Not withdrawn.")
+            return 1
+    res = withdraw(home)
+    emit(args, res, f"Withdrawn. Everything was destroyed; send the certificate to the study team: "
+                    f"{res['certificate']}")
+    return 0
+
+
+def _service(args) -> int:
+    from ..participant import service
+
+    home = home_from(args)
+    if args.service_command == "install":
+        plan = service.install(home, dry_run=args.dry_run, manager=args.manager)
+    else:
+        plan = service.remove(home, dry_run=args.dry_run, manager=args.manager)
+    if args.dry_run or plan.manager == "none":
+        print(plan.describe())
+    else:
+        print(f"{'Installed and enabled' if args.service_command == 'install' else 'Removed'}: {plan.path}")
+    return 0

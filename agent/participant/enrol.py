@@ -1,0 +1,120 @@
+"""Enrolment: study card + approved policy + consent -> a home, device keys, a pseudonym.
+
+``enrol`` is the whole of ``lethe init``:
+
+1. read the study card the researcher issued and the policy to enrol under;
+2. refuse a policy the card does not approve (fingerprints compared), and a
+   policy bound to a different study key (``study.key_fingerprint``);
+3. require consent: the participant types (or, non-interactively, passes) the
+   study id shown on the card after reading the consent text;
+4. create the home (0700), the device signing key and the vault keys, and a
+   random pseudonym (``secrets``; it carries no information about the person);
+5. copy the policy verbatim into the home, record the card, the consent and the
+   enrolment time in ``state/home.json`` and the policy fingerprint in the ledger;
+6. write the signed enrolment file the participant sends to the researcher.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import secrets
+import shutil
+import time
+from pathlib import Path
+
+from ..errors import DataError, StateError
+from ..home import Home, write_private
+
+PSEUDONYM_ALPHABET = "abcdefghjkmnpqrstuvwxyz23456789"  # no look-alikes (0/o, 1/l/i)
+
+
+def new_pseudonym(nbytes: int = 10) -> str:
+    """A random participant pseudonym such as ``p-7kq2-mx9a-tw3e``."""
+    chars = "".join(secrets.choice(PSEUDONYM_ALPHABET) for _ in range(12))
+    return f"p-{chars[:4]}-{chars[4:8]}-{chars[8:]}"
+
+
+def consent_text(card, policy) -> str:
+    return (getattr(card, "consent_text", None) or policy.study.consent_text).strip()
+
+
+def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | None = None,
+          now: float | None = None, enrolment_out=None, passphrase=None) -> dict:
+    """Enrol this device in the study described by ``card_path``.
+
+    Parameters
+    ----------
+    home_dir : path-like or None
+        The new home (default: ``LETHE_HOME`` or the per-user data directory).
+    card_path : path-like
+        The study card JSON issued by the researcher.
+    policy_path : path-like
+        The study policy TOML; its fingerprint must be approved by the card.
+    consent : str
+        What the participant typed after reading the consent text; must equal
+        the study id.
+    timezone : str, optional
+        The participant's IANA time zone (default: the policy's).
+    now : float, optional
+        Enrolment time, Unix seconds; the study weeks count from it.
+    enrolment_out : path-like, optional
+        Where to write the enrolment file (default: ``HOME/enrolment.json``).
+
+    Returns
+    -------
+    dict with ``pseudonym``, ``device_key_id``, ``enrolment``, ``home``.
+    """
+    from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+    from ..keystore import Keystore, device_key_id
+    from ..ledger import Ledger
+    from ..policy import load_policy
+    from ..study.card import check_policy_approved, load_card, write_enrolment
+
+    home = Home(home_dir)
+    if home.exists():
+        raise StateError(f"{home.root}: already enrolled (pseudonym {home.read_config().get('pseudonym')}); "
+                         f"'lethe withdraw' ends an enrolment")
+    card = load_card(card_path)
+    policy = load_policy(policy_path)
+    check_policy_approved(card, policy)
+    if policy.study.study_id != card.study_id:
+        raise StateError(f"{policy_path}: policy is for study {policy.study.study_id!r} but the card "
+                         f"{card_path} is for {card.study_id!r}")
+    bound = policy.study.key_fingerprint
+    if bound and bound != card.key_fingerprint:
+        raise StateError(f"{policy_path}: [study.key_fingerprint] {bound} does not match the study key "
+                         f"on the card ({card.key_fingerprint})")
+    if (consent or "").strip() != card.study_id:
+        raise DataError(f"consent not given: type the study id {card.study_id!r} exactly to agree "
+                        f"(got {consent!r})")
+    tz = timezone or policy.study.default_timezone
+    try:
+        ZoneInfo(tz)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise DataError(f"time zone {tz!r} is not an IANA zone name such as 'Europe/Lisbon'") from None
+
+    now = time.time() if now is None else float(now)
+    home.create()
+    ks = Keystore(home, passphrase=passphrase).ensure()
+    shutil.copyfile(policy_path, home.policy_path)
+    home.policy_path.chmod(0o600)
+    write_private(home.root / "study-card.json", Path(card_path).read_bytes())
+    pseudonym = new_pseudonym()
+    text = consent_text(card, policy)
+    out = Path(enrolment_out) if enrolment_out else home.root / "enrolment.json"
+    write_enrolment(home, card, policy, pseudonym, out, device_private_key=ks.device_key())
+    home.write_config({
+        "format": "lethe-home", "version": 1,
+        "study_id": card.study_id, "pseudonym": pseudonym, "timezone": tz,
+        "enrolled_at": now, "policy_fingerprint": policy.fingerprint,
+        "card_key_fingerprint": card.key_fingerprint,
+        "consent": {"study_id": card.study_id, "text_sha256": hashlib.sha256(text.encode()).hexdigest(),
+                    "at": now},
+        "enrolment_file": str(out),
+    })
+    Ledger(home, signing_key=ks.device_key()).append(
+        "policy", fingerprint=policy.fingerprint, name=policy.policy.name, version=policy.policy.version)
+    kid = device_key_id(ks.device_public())
+    return {"pseudonym": pseudonym, "device_key_id": kid, "enrolment": str(out), "home": str(home.root),
+            "study_id": card.study_id, "policy_fingerprint": policy.fingerprint, "timezone": tz}

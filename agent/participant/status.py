@@ -1,0 +1,146 @@
+"""``lethe status``: what the agent holds, what is waiting, what will leave and when.
+
+Reads only what it needs: the ledger (no key), the inbox listing (no file is
+opened), and the vault's table counts and summaries.  Shows no content: counts,
+ages, fingerprints, dates.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import time
+
+from ..home import Home
+
+
+def _agent_running(home: Home) -> bool | None:
+    """Whether another process holds the agent lock (None when unknown)."""
+    import fcntl
+
+    if not home.lock_path.exists():
+        return False
+    try:
+        fd = os.open(home.lock_path, os.O_RDONLY | os.O_NOFOLLOW)
+    except OSError:
+        return None
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+    except OSError:
+        return True
+    finally:
+        os.close(fd)
+    return False
+
+
+def collect_status(home, now: float | None = None, passphrase=None) -> dict:
+    from ..intake.pipeline import intake_counts
+    from ..pause import read_pause, is_paused
+
+    home = home if isinstance(home, Home) else Home(home)
+    home.require()
+    now = time.time() if now is None else float(now)
+    policy = home.load_policy()
+    cfg = home.read_config()
+    pause = read_pause(home)
+    st = {
+        "home": str(home.root),
+        "study_id": cfg.get("study_id"), "pseudonym": cfg.get("pseudonym"),
+        "timezone": cfg.get("timezone"),
+        "enrolled": _date(cfg.get("enrolled_at")),
+        "agent": {"running": _agent_running(home), "paused": is_paused(home, now),
+                  "paused_until": pause.get("until") if pause.get("paused") else None},
+        "policy": {"name": policy.policy.name, "version": policy.policy.version,
+                   "fingerprint": policy.fingerprint, "raw_retention_s": policy.retention.raw_seconds},
+        "intake": intake_counts(home, policy, now=now),
+        "disk_bytes": home.disk_usage(),
+    }
+    if home.vault_path.exists():
+        from ..vault import Vault
+
+        with Vault.open(home, passphrase=passphrase) as v:
+            st["vault"] = _vault_part(v, policy, now)
+    return st
+
+
+def _vault_part(v, policy, now: float) -> dict:
+    from ..quiz import score
+
+    places = {e.get("place") for _, e in v.items("episodes") if e.get("place")}
+    out = {"places": len(places), "named_places": v.count("place_names"),
+           "episodes": v.count("episodes"), "quiz": score(v, policy)}
+    try:
+        from ..codebook import codebook_quality
+
+        out["codebook"] = codebook_quality(v)
+    except ImportError:  # pragma: no cover - codebook always ships
+        out["codebook"] = None
+    exports = sorted((rec for _, rec in v.items("exports")), key=lambda r: r.get("seq", 0))
+    last = exports[-1] if exports else None
+    out["exports"] = {"count": len(exports), "last": last.get("created") if last else None,
+                      "epsilon_spent": round(sum(float(r.get("epsilon") or 0) for r in exports), 6)}
+    cadence = policy.export.cadence_days
+    if last and cadence > 0:
+        try:
+            last_day = _dt.date.fromisoformat(str(last.get("created"))[:10])
+            out["exports"]["next_due"] = (last_day + _dt.timedelta(days=cadence)).isoformat()
+        except ValueError:
+            out["exports"]["next_due"] = None
+    else:
+        out["exports"]["next_due"] = "now" if cadence > 0 else None
+    fits = v.get("fits", "latest")
+    out["model_fitted"] = fits is not None
+    return out
+
+
+def _date(t) -> str | None:
+    if t is None:
+        return None
+    return _dt.datetime.fromtimestamp(float(t), _dt.timezone.utc).date().isoformat()
+
+
+def _n(d: dict, kind: str) -> int:
+    return int(d.get(kind, 0))
+
+
+def status_text(st: dict) -> str:
+    a = st["agent"]
+    state = "paused" if a["paused"] else ("running" if a["running"] else "not running")
+    if a["paused"] and a.get("paused_until"):
+        until = _dt.datetime.fromtimestamp(a["paused_until"], _dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+        state += f" until {until}"
+    p = st["policy"]
+    lines = [
+        f"lethe for study {st['study_id']} as {st['pseudonym']} (enrolled {st['enrolled']}, {st['timezone']})",
+        f"agent: {state}",
+        f"policy: {p['name']} {p['version']}, fingerprint {p['fingerprint'][:16]}...",
+        "",
+        "raw items        received  featurised  rejected  destroyed",
+    ]
+    ic = st["intake"]
+    for kind in ("audio", "gps", "accel", "mood", "unknown"):
+        row = [ic.get(k, {}).get(kind, 0) for k in ("received", "featurised", "rejected", "destroyed")]
+        if any(row) or kind != "unknown":
+            lines.append(f"  {kind:12s} {row[0]:10d} {row[1]:11d} {row[2]:9d} {row[3]:10d}")
+    inbox = ic["inbox"]
+    if inbox["files"]:
+        lines.append(f"inbox: {inbox['files']} raw file(s) waiting; the oldest is {inbox['oldest_age_s']:.1f} s old "
+                     f"(limit {inbox['limit_s']:g} s)")
+    else:
+        lines.append(f"inbox: empty (raw files may exist at most {inbox['limit_s']:g} s)")
+    if ic.get("reasons"):
+        lines.append("rejections: " + ", ".join(f"{r} {n}" for r, n in sorted(ic["reasons"].items())))
+    v = st.get("vault")
+    if v:
+        q = v["quiz"]
+        lines += [
+            "",
+            f"places: {v['places']} ({v['named_places']} with your names); episodes: {v['episodes']} hours",
+            f"memory test: {q['issued']} issued, {q['answered']} answered, {q['skipped']} skipped, "
+            f"{q['pending']} waiting",
+        ]
+        e = v["exports"]
+        lines.append(f"exports: {e['count']} sent, last {e['last'] or 'never'}, next due {e.get('next_due') or '-'}"
+                     + (f", privacy budget spent {e['epsilon_spent']:g}" if e["epsilon_spent"] else ""))
+    lines.append(f"disk used by the home: {st['disk_bytes'] / 1e6:.1f} MB")
+    return "\n".join(lines)
