@@ -503,7 +503,14 @@ def preview(payload: Mapping) -> str:
     L.append(f"  * The study policy it was collected under: {payload['policy_fingerprint'][:16]}…, "
              f"lethe {payload['software_version']}.")
     c = payload["counts"]
-    shown = {k: v for k, v in c["pairs"].items() if v is not None}
+    # Follow the policy's kind order, not the dict order (the sealed form has sorted keys).
+    rank = {k: i for i, k in enumerate(payload["kinds"])}
+
+    def pair_rank(key):
+        a, _, b = key.partition("|")
+        return (rank.get(a, 99), rank.get(b, 99)) if b else (100, 100)
+
+    shown = {k: c["pairs"][k] for k in sorted(c["pairs"], key=pair_rank) if c["pairs"][k] is not None}
     L.append(f"  * How many hours two kinds of thing occurred together ({len(c['pairs'])} numbers):")
     for k, v in shown.items():
         if k == "other":
@@ -513,12 +520,13 @@ def preview(payload: Mapping) -> str:
         L.append(f"      {_KIND_WORDS[a]} with {_KIND_WORDS[b]}: {v}")
     if c["suppressed"]:
         L.append(f"    Withheld because below {c['small_cell_threshold']}: "
-                 + ", ".join(k.replace("|", " with ") for k in c["suppressed"]) + ".")
+                 + ", ".join(k.replace("|", " with ") for k in sorted(c["suppressed"], key=pair_rank)) + ".")
     if c["merged"] and c["pairs"].get("other") is not None:
         L.append("    Pooled into 'all the small pairs together': "
-                 + ", ".join(k.replace("|", " with ") for k in c["merged"]) + ".")
+                 + ", ".join(k.replace("|", " with ") for k in sorted(c["merged"], key=pair_rank)) + ".")
     L.append(f"  * Hours observed: {c['hours']} ("
-             + ", ".join(f"{_KIND_WORDS[k]} known in {v}" for k, v in c["hours_by_kind"].items()) + ").")
+             + ", ".join(f"{_KIND_WORDS[k]} known in {c['hours_by_kind'][k]}"
+                         for k in sorted(c["hours_by_kind"], key=lambda k: rank.get(k, 99))) + ").")
     if c["dp"]:
         d = c["dp"]
         L.append(f"    These numbers carry random noise (differential privacy, epsilon {d['epsilon']:g} "
@@ -545,7 +553,7 @@ def preview(payload: Mapping) -> str:
     L.append(f"  * The audit log's summary: event counts, "
              + (f"the longest time a raw file existed ({mx:.1f} s), " if mx is not None else "")
              + f"{g['violations']} retention violation(s), and the log's last entry #{g['head']['seq']}.")
-    for k, why in payload["withheld"].items():
+    for k, why in sorted(payload["withheld"].items()):
         L.append(f"  * Not sent: {k.replace('_', ' ')} — {why}.")
     L.append("Never sent: locations or coordinates, place names, sound recordings or sound features, "
              "exact times, your answers one by one.")

@@ -1,0 +1,94 @@
+"""Small shared fixtures for the bundle and study tests (no home, no vault)."""
+
+from __future__ import annotations
+
+import json
+
+from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+
+from agent.bundle import make_header, seal_bundle
+from agent.payload import Relabeller, coarse_date, payload_from_parts
+from agent.policy import bundled_policy_path, load_policy
+from agent.study.card import device_key_id, load_card, make_enrolment, write_card
+from agent.study.keys import load_study_key, study_keygen
+from agent.study.registry import enroll
+
+NOW = 1764720000.0  # 2025-12-03T00:00Z, a fixed instant for the fixtures
+PASS = b"correct horse battery"
+FAST_N = 2**10  # tests only
+
+
+def episodes(n=60):
+    """Deterministic fictional episodes in the architecture's episode shape."""
+    places = ["P1", "P2", "P3"]
+    out = []
+    for i in range(n):
+        out.append({"key": f"k{i}", "utc": 1764547200.0 + 3600 * i, "date": "2025-12-01",
+                    "hour": i % 24, "weekday": (i // 24) % 7, "week": 1 + i // 168,
+                    "place": places[i % 3] if i % 5 else None, "sound": f"S{i % 2}",
+                    "motion": "sedentary" if i % 4 else "active",
+                    "moods": ["calm"] if i % 6 == 0 else (["tired", "calm"] if i % 7 == 0 else []),
+                    "coverage": {}})
+    return out
+
+
+LEDGER = {"counts": {"audio.received": 10, "audio.destroyed": 10}, "max_exposure_s": 1.5,
+          "median_exposure_s": 0.7, "p95_exposure_s": 1.2, "violations": 0,
+          "head": {"seq": 42, "hash": "ab" * 32}}
+
+FIT = {"params": {"theta": {"hour|place": 1.2, "place|sound": 0.3, "mood|place": 0.1}, "beta": 2.0, "tau": 0.5},
+       "cv": {"folds": [{"loglik": -10.0, "accuracy": 0.5}], "pooled": {"loglik": -50.0, "accuracy": 0.45,
+                                                                        "agreement": 0.6}},
+       "baselines": {"chance": {"accuracy": 0.25}, "frequency": {"accuracy": 0.4}}, "n_trials": 20}
+
+QUIZ = {"issued": 20, "answered": 18, "skipped": 2, "pending": 0, "correct": 9, "chance": 0.25,
+        "accuracy": 0.5, "p_value": 0.01}
+
+
+def make_payload(policy=None, *, edges=None):
+    policy = policy or load_policy(bundled_policy_path("default"))
+    from agent.graph import CooccurrenceGraph
+
+    eps = episodes()
+    if edges is None:
+        edges = CooccurrenceGraph.from_episodes(eps, policy).edge_list()
+    return payload_from_parts(policy, episodes=eps, edges=edges, fit=FIT, quiz_score=QUIZ,
+                              ledger_digest=LEDGER, relabel=Relabeller(),
+                              created=coarse_date(NOW, policy.export.time_granularity),
+                              software_version="0.1.0")
+
+
+class Study:
+    """A study directory with one enrolled device."""
+
+    def __init__(self, tmp_path, pseudonym="pX7QmN2a", suite="default"):
+        self.dir = tmp_path / "study"
+        self.policy = load_policy(bundled_policy_path("default"))
+        self.pair = study_keygen(self.dir, "harbour-days-2027", PASS, suite=suite, scrypt_n=FAST_N)
+        self.card_path = write_card(self.dir, [bundled_policy_path("default")], "desk", tmp_path / "card.json")
+        self.card = load_card(self.card_path)
+        self.device = Ed25519PrivateKey.generate()
+        self.pseudonym = pseudonym
+        f = tmp_path / f"enrol-{pseudonym}.json"
+        f.write_text(json.dumps(make_enrolment(self.card, self.policy, pseudonym, self.device)))
+        enroll(self.dir, f)
+        self.tmp = tmp_path
+
+    def key(self):
+        return load_study_key(self.dir, PASS)
+
+    def seal(self, payload=None, seq=1, device=None, recipient_key=None, header_overrides=None):
+        device = device or self.device
+        pub = device.public_key().public_bytes_raw()
+        header = make_header(suite=self.card.suite, study_id=self.card.study_id,
+                             recipient=self.card.key_fingerprint, device_key_id=device_key_id(pub),
+                             seq=seq, created="")
+        payload = payload if payload is not None else make_payload(self.policy)
+        header["created"] = payload["created"]
+        header.update(header_overrides or {})
+        return seal_bundle(payload, header, recipient_key or self.card.hpke_public_key(), device)
+
+    def write(self, data, name="b.lethe"):
+        p = self.tmp / name
+        p.write_bytes(data)
+        return p
