@@ -13,11 +13,8 @@ rejected, with the most frequent drop reason as its code.
 from __future__ import annotations
 
 import math
-import re
 from collections import Counter
 from datetime import datetime, timezone
-
-import numpy as np
 
 from ..geo import haversine_m
 from ..item import ItemResult
@@ -268,8 +265,10 @@ def _nmea_date(value: str) -> float:
     if len(value) != 6:
         raise ValueError("date field must be ddmmyy")
     d, mo, y = int(value[0:2]), int(value[2:4]), int(value[4:6])
-    # Two-digit years: this study's recorders are all from this century.
-    return datetime(2000 + y, mo, d, tzinfo=timezone.utc).timestamp()
+    # Two-digit years pivot at 1980, the GPS epoch; years before 2000 are then
+    # refused by the plausibility check rather than mistaken for this century.
+    year = 1900 + y if y >= 80 else 2000 + y
+    return datetime(year, mo, d, tzinfo=timezone.utc).timestamp()
 
 
 def parse_nmea(path, data: bytes) -> tuple[list[dict], Counter]:

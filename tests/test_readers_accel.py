@@ -1,0 +1,93 @@
+"""Accelerometry reader: unit line, header, vectorised parse, rate and gap checks."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from agent.errors import RejectedInput
+from agent.intake import featurise
+from agent.intake.readers.accel import STANDARD_GRAVITY, read_accel
+
+T0 = 1793793600.0
+NOW = T0 + 3600.0
+NAME = "burst_20261104T120000Z.accel.csv"
+
+
+def accel(n=600, rate=10.0, unit="g", scale=1.0, unit_line=None, header="time,x,y,z", t=None,
+          z=1.0):
+    t = T0 + np.arange(n) / rate if t is None else t
+    rows = "\n".join(f"{a:.3f},{0.01 * scale:.5f},{-0.02 * scale:.5f},{z * scale:.5f}" for a in t)
+    first = unit_line if unit_line is not None else f"# unit={unit} rate_hz={rate:g}"
+    return f"{first}\n{header}\n{rows}\n".encode()
+
+
+def reason(data, policy, name=NAME):
+    with pytest.raises(RejectedInput) as e:
+        featurise(name, data, policy, now=NOW)
+    return e.value.reason
+
+
+def test_g_file_gives_six_windows(default_policy):
+    r = featurise(NAME, accel(), default_policy, now=NOW)
+    (sfx, row), = r.rows["accel_features"]
+    assert r.kind == "accel" and sfx == "" and r.n_samples == 600
+    assert row["t0"] == T0 and row["window_s"] == 10.0 and len(row["windows"]) == 6
+    assert row["active_fraction"] == 0.0
+
+
+def test_m_per_s2_is_converted_with_standard_gravity(default_policy):
+    # 3rd CGPM (1901): 1 g = 9.80665 m/s^2.
+    a = read_accel(NAME, accel(unit="g"), default_policy, now=NOW)
+    b = read_accel(NAME, accel(unit="m/s^2", scale=STANDARD_GRAVITY), default_policy, now=NOW)
+    assert np.allclose(a.xyz_g, b.xyz_g, atol=1e-5)
+
+
+def test_unit_line_without_rate_is_accepted(default_policy):
+    r = read_accel(NAME, accel(unit_line="# unit=g"), default_policy, now=NOW)
+    assert r.rate_hz == pytest.approx(10.0)
+
+
+def test_rate_within_tolerance_is_accepted(default_policy):
+    # 10.5 Hz is within 10 Hz +- 10 %.
+    data = accel(rate=10.5, unit_line="# unit=g")
+    # Times carry milliseconds, so the measured rate is 10.5 Hz to within 1 %.
+    assert read_accel(NAME, data, default_policy, now=NOW).rate_hz == pytest.approx(10.5, rel=0.01)
+
+
+def test_declared_rate_outside_the_policy_is_bad_rate(default_policy):
+    assert reason(accel(unit_line="# unit=g rate_hz=50"), default_policy) == "bad_rate"
+
+
+def test_gap_is_reported_as_a_warning(default_policy):
+    t = T0 + np.concatenate([np.arange(300), np.arange(350, 650)]) / 10.0
+    r = featurise(NAME, accel(t=t), default_policy, now=NOW)
+    assert r.dropped["gap"] == 1
+    assert any("gap" in w for w in r.warnings)
+
+
+def test_times_going_backwards_are_a_bad_timestamp(default_policy):
+    t = T0 + np.arange(600) / 10.0
+    t[300] = t[298]
+    assert reason(accel(t=t), default_policy) == "bad_timestamp"
+
+
+def test_non_numeric_value_is_bad_value_without_echoing_it(default_policy):
+    data = accel().replace(b"\n1793793600.100,", b"\nsecret,")
+    with pytest.raises(RejectedInput) as e:
+        featurise(NAME, data, default_policy, now=NOW)
+    assert e.value.reason == "bad_value" and "secret" not in str(e.value)
+
+
+def test_nan_value_is_bad_value(default_policy):
+    data = accel().replace(b"0.01000", b"nan", 1)
+    assert reason(data, default_policy) == "bad_value"
+
+
+def test_single_sample_is_too_short(default_policy):
+    assert reason(accel(n=1), default_policy) == "too_short"
+
+
+def test_gravity_free_values_labelled_g_are_bad_unit(default_policy):
+    # A median magnitude of 0.02 g cannot be a sensor that senses gravity.
+    assert reason(accel(z=0.0), default_policy) == "bad_unit"
