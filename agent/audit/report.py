@@ -25,6 +25,8 @@ from pathlib import Path
 from ..home import Home
 from ..policy_summary import CAUTIONS, summarise
 
+MaxNLocator = None  # matplotlib.ticker.MaxNLocator, imported with the first figure
+
 KIND_COLOURS = {"audio": "#1f77b4", "gps": "#2ca02c", "accel": "#ff7f0e", "mood": "#9467bd",
                 "unknown": "#7f7f7f"}
 
@@ -104,6 +106,8 @@ def _styled(plot):
 
 
 def _figure(w=6.4, h=3.8):
+    global MaxNLocator
+    from matplotlib.ticker import MaxNLocator
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -142,6 +146,7 @@ def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> 
                        label=f"95th percentile {stats['p95']:.2f} s")
         ax.set_xlabel("seconds from file complete to destroyed")
         ax.set_ylabel("raw files")
+        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     else:
         _empty(ax, "no destroyed raw files recorded")
     if limit_s is not None:
@@ -171,6 +176,7 @@ def plot_items_per_day(daily: dict, path: Path) -> None:
         ax.set_xticks(x[::step], [d[5:] for d in days][::step])
         ax.set_xlabel("day (UTC, month-day)")
         ax.set_ylabel("raw items received")
+        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
         ax.legend(ncol=len(kinds), loc="upper left")
     else:
         _empty(ax, "no raw items recorded")
@@ -188,6 +194,7 @@ def plot_rejections(rejections: dict, path: Path) -> None:
         for i, (_, v) in enumerate(items):
             ax.text(v, i, f" {v}", va="center", fontsize=9)
         ax.set_xlabel("rejected raw files")
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     else:
         _empty(ax, "no rejected raw files")
     ax.set_title("Rejections by reason")
@@ -205,6 +212,7 @@ def plot_exports(exports: list, path: Path) -> None:
         ax.step(ts, range(1, len(ts) + 1), where="post", color="#4c78a8")
         ax.plot(ts, range(1, len(ts) + 1), "o", color="#4c78a8")
         ax.set_ylabel("exports so far")
+        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
         ax.set_ylim(0, len(ts) + 0.5)
         fig.autofmt_xdate()
     else:
@@ -275,7 +283,7 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
     pathlib.Path
         ``out_dir / "index.html"``.
     """
-    from .verify import verify_home
+    from .verify import verify_home, violation_words
 
     home = home if isinstance(home, Home) else Home(home)
     out = Path(out_dir)
@@ -299,7 +307,12 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
     body = [f"<h1>Retention compliance report</h1>",
             f'<p class="sub">Device ledger of a lethe home, checked {esc(_now_utc(r.verified_at))}.'
             f" Policy: {esc(result.policy_name or 'none found')}.</p>",
-            f'<div class="verdict {"ok" if result.ok else "bad"}">{esc(result.verdict())}</div>']
+            f'<div class="verdict {"ok" if result.ok else "bad"}">{esc(result.verdict())}</div>',
+            "<p>This report reads the device's own record of what happened to every raw file (the ledger). "
+            "Each entry is signed with the device's key and linked to the one before, so a removed, edited "
+            "or reordered entry shows. It checks that every raw file that arrived was destroyed, and no later "
+            f"than the policy allows ({esc('not checked' if r.limit_s is None else f'{r.limit_s:g} seconds')} "
+            "after it had finished arriving). It needs no password and opens no personal data.</p>"]
 
     key_rows = [
         ["Ledger entries", f"{r.entries}"],
@@ -318,7 +331,7 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
     if r.first_t is not None:
         key_rows.insert(1, ["Period (UTC)", esc(f"{_now_utc(r.first_t)} to {_now_utc(r.last_t)}")])
     body.append("<h2>Key figures</h2>")
-    body.append(table(["", "value"], key_rows))
+    body.append(table(["figure", "value"], key_rows))
 
     body.append("<h2>Integrity checks</h2>")
     body.append("<p>Each ledger entry is hash-chained to the one before and signed with the device key; "
@@ -336,7 +349,7 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
                        for x in result.kind_rows()] or [["(none)", 0, 0, 0, 0]], num_cols=(1, 2, 3, 4)))
     if r.violations:
         body.append(f"<h3>Retention violations ({len(r.violations)})</h3><ul>" + "".join(
-            f"<li>{esc(v['message'])}</li>" for v in r.violations) + "</ul>")
+            f"<li>{esc(violation_words(v))}</li>" for v in r.violations) + "</ul>")
     for f in result.policy_findings:
         body.append(f'<p class="fail">Policy: {esc(f["message"])}</p>')
 

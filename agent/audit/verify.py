@@ -35,6 +35,31 @@ CHECKS = (
 )
 
 
+def approx_duration(s: float) -> str:
+    """``42.0 s``, ``about 14 minutes``, ``about 5.2 hours``, ``about 4.6 days``."""
+    if s < 120:
+        return f"{s:.1f} s"
+    if s < 7200:
+        return f"about {s / 60:.0f} minutes"
+    if s < 172800:
+        return f"about {s / 3600:.1f} hours"
+    return f"about {s / 86400:.1f} days"
+
+
+def violation_words(v: dict) -> str:
+    """One retention violation in plain words, with long durations in hours or days."""
+    item = str(v.get("item", "?"))[:12] + "..."
+    where = f"entry {v.get('seq')}: {v.get('kind')} item {item}"
+    if v.get("check") == "late":
+        exp = max(v.get("exposure_s") or 0.0, v.get("recorded_exposure_s") or 0.0)
+        return f"{where} destroyed {exp:.1f} s after it was complete (limit {v['limit_s']:g} s)"
+    if v.get("check") == "not_destroyed":
+        age = v.get("age_s") or 0.0
+        words = approx_duration(age)
+        return f"{where} was received but no destruction is recorded {words} after it was complete (limit {v['limit_s']:g} s)"
+    return f"{where}: {v.get('message', v.get('check'))}"
+
+
 @dataclass
 class VerifyResult:
     """A ledger report together with the policy it was judged against.
@@ -139,7 +164,7 @@ class VerifyResult:
             lines.append("")
         if r.violations:
             lines.append(f"Retention violations ({len(r.violations)})")
-            lines += [f"  {v['message']}" for v in r.violations]
+            lines += [f"  {violation_words(v)}" for v in r.violations]
             lines.append("")
         for f in self.policy_findings:
             lines.append(f"Policy: {f['message']}")
