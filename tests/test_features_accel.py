@@ -72,7 +72,7 @@ def test_magnitude_sd_of_a_sine_is_amplitude_over_root_two():
 def test_active_flag_uses_the_documented_cut_point():
     t, xyz = gait(2.0, amp=0.3)
     rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
-    assert all(r[4] == 1 for r in rows)            # ENMO about 0.095 g > 0.040 g
+    assert all(r[4] == 1 for r in rows)            # ENMO = 0.3/pi = 0.095 g >= 0.0448 g
     t, xyz = still()
     rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
     assert all(r[4] == 0 for r in rows)
@@ -94,3 +94,22 @@ def test_a_short_trailing_window_is_skipped_and_counted():
 def test_standard_gravity_is_the_cgpm_value():
     # 3rd CGPM (1901): g_n = 9.80665 m/s^2 exactly.
     assert STANDARD_GRAVITY == 9.80665
+
+
+def test_active_flag_switches_at_the_cut_point():
+    # A constant 1 g + c magnitude has ENMO c (up to rounding).
+    t = 1793800800.0 + np.arange(200) / RATE
+    for c, want in ((F.ACTIVE_ENMO_G + 1e-6, 1), (F.ACTIVE_ENMO_G - 1e-4, 0)):
+        xyz = np.column_stack([np.zeros(200), np.zeros(200), np.full(200, 1.0 + c)])
+        rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+        assert {r[4] for r in rows} == {want}
+
+
+def test_active_fraction_is_the_share_of_active_windows(default_policy):
+    from agent.intake.readers.accel import AccelRecord
+
+    t, xyz = gait(2.0, n=600)
+    xyz[:300] = [0.0, 0.0, 1.0]                      # first 30 s still, last 30 s walking
+    rec = AccelRecord(path="b.accel.csv", t=t, xyz_g=xyz, rate_hz=RATE)
+    payload = F.accel_features(rec, default_policy).rows["accel_features"][0][1]
+    assert payload["active_fraction"] == 0.5

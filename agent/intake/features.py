@@ -44,10 +44,11 @@ AUDIO_FEATURE_NAMES: tuple[str, ...] = (
 A_F1, A_F2, A_F3, A_F4 = 20.6, 107.7, 737.9, 12194.0
 A_1000_DB = 2.00
 
-# ENMO at or above 40 mg marks a window active: the inactivity/light boundary
-# used with wrist ENMO (common practice; thresholds of this size are reported
-# by Hildebrand et al. 2014, from memory).
-ACTIVE_ENMO_G = 0.040
+# A window is active when its mean ENMO reaches the sedentary/light boundary of
+# 44.8 mg for the non-dominant wrist in adults (Hildebrand et al. 2017, Scand J
+# Med Sci Sports 27(12):1814-1823, as quoted in agent/codebook.py), so the
+# active flag and the codebook's "sedentary" band agree.
+ACTIVE_ENMO_G = 0.0448
 # Welch segment of 5 s with 50 % overlap: 0.2 Hz resolution, three segments in
 # a 10 s window.
 WELCH_SEGMENT_S = 5.0
