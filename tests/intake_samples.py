@@ -33,6 +33,8 @@ def make_home(root, policy_name: str = "default", **retention):
 
         text = re.sub(rf"(?m)^{k} = .*$", f"{k} = {v}", text)
     h.policy_path.write_text(text)
+    if not h.exists():
+        h.write_config({})  # marks the home as initialised for the CLI
     return h
 
 
@@ -76,9 +78,9 @@ def mood_csv_bytes(policy, t0: float = T0, n: int = 2) -> bytes:
 def valid_set(policy, t0: float = T0) -> dict[str, bytes]:
     """One valid file of each kind, keyed by name."""
     return {
-        f"snd_{stamp(t0)}.wav": wav_bytes(),
-        f"burst_{stamp(t0)}.accel.csv": accel_bytes(t0),
-        f"loc_{stamp(t0)}.gps.csv": gps_csv_bytes(t0),
+        f"snd_{stamp(t0)}.wav": wav_bytes(seed=int(t0) % 100003),
+        f"burst_{stamp(t0)}.accel.csv": accel_bytes(t0, seed=int(t0) % 100003),
+        f"loc_{stamp(t0)}.gps.csv": gps_csv_bytes(t0, seed=int(t0) % 100003),
         f"prompt_{stamp(t0)}.mood.csv": mood_csv_bytes(policy, t0),
     }
 

@@ -112,8 +112,9 @@ class InboxWatcher:
     """
 
     def __init__(self, intake: Intake, settle_s: float | None = None, stop_event: threading.Event | None = None,
-                 on_outcome=None):
+                 on_outcome=None, after_sweep=None):
         policy = intake.policy
+        self.after_sweep = after_sweep
         self.intake = intake
         self.settle_s = float(policy.retention.settle_seconds if settle_s is None else settle_s)
         if self.settle_s < 0:
@@ -175,6 +176,8 @@ class InboxWatcher:
         self.sweep()
         self._process_ready()
         self.recovered = self.intake.reconcile(t0)
+        if self.after_sweep is not None:
+            self.after_sweep()
         while not self.stop_event.is_set():
             timeout = self._next_timeout()
             try:
@@ -361,9 +364,12 @@ def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
     now : float, optional
         Simulated clock for the readers (see :class:`~agent.intake.pipeline.Intake`).
     warm : bool
-        Call :func:`agent.intake.warm_up` before the sweep (fills numba's cache).
+        Watching: call :func:`agent.intake.warm_up` right after the start-up
+        sweep (loads or fills numba's cache before the next file arrives).
+        ``once`` never warms up separately.
     on_ready : callable, optional
-        Called with the start-up time in seconds once the agent is watching.
+        Called with the start-up time in seconds once the agent is ready:
+        watching after sweep and warm-up, or (``once``) about to drain.
 
     Returns
     -------
@@ -381,22 +387,28 @@ def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
             from .. import __version__
 
             intake.ledger.append("agent_start", version=__version__, mode="once" if once else "watch")
-            if warm:
-                try:
-                    from . import warm_up
 
-                    warm_up(policy)
-                except (ImportError, AttributeError):
-                    pass
+            def warm_and_ready():
+                # After the start-up sweep, so files already waiting are not held up by it.
+                if warm:
+                    try:
+                        from . import warm_up
+
+                        warm_up(policy)
+                    except (ImportError, AttributeError):
+                        pass
+                if on_ready is not None:
+                    on_ready(time.time() - t_start)
+
             if once:
+                # A drain warms what it needs on its first file; a separate warm-up would only delay it.
                 if on_ready is not None:
                     on_ready(time.time() - t_start)
                 report = drain(h, policy, now=now, settle_s=settle_s, intake=intake, on_outcome=on_outcome)
             else:
-                watcher = InboxWatcher(intake, settle_s=settle_s, stop_event=stop_event, on_outcome=on_outcome)
+                watcher = InboxWatcher(intake, settle_s=settle_s, stop_event=stop_event, on_outcome=on_outcome,
+                                       after_sweep=warm_and_ready)
                 watcher.start()
-                if on_ready is not None:
-                    on_ready(time.time() - t_start)
                 try:
                     report = watcher.run()
                 finally:
