@@ -1,0 +1,51 @@
+"""``lethe export``: show exactly what would leave, then seal and sign it into the outbox."""
+
+from __future__ import annotations
+
+from ._common import add_json, emit, home_from
+
+
+def register(sub) -> None:
+    p = sub.add_parser("export", help="preview, seal and sign the next bundle for the study")
+    p.add_argument("--preview", action="store_true",
+                   help="only show what the bundle would hold (plain words, or the payload with --json); writes nothing")
+    p.add_argument("--yes", action="store_true",
+                   help="confirm without asking (when the policy asks for confirmation of each export)")
+    add_json(p)
+    p.set_defaults(func=_export)
+
+
+def _ask(text: str) -> bool:
+    import sys
+
+    from ..errors import UsageError
+
+    if not sys.stdin.isatty():
+        raise UsageError("the policy asks you to confirm each export (export.confirm_each); "
+                         "run in a terminal, or pass --yes after checking 'lethe export --preview'")
+    sys.stdout.write(text + "\n\nSend this to the study? [y/N] ")
+    sys.stdout.flush()
+    return sys.stdin.readline().strip().lower() in ("y", "yes")
+
+
+def _export(args) -> int:
+    from ..bundle import export_bundle
+    from ..payload import build_payload, preview
+    from ..vault import Vault
+
+    home = home_from(args).require()
+    policy = home.load_policy()
+    if args.preview:
+        with Vault.open(home) as vault:
+            payload = build_payload(home, policy, vault)
+        emit(args, payload, preview(payload))
+        return 0
+    confirm = (lambda text: True) if args.yes else _ask
+    path = export_bundle(home, policy, confirm=confirm)
+    if path is None:
+        emit(args, {"sent": False}, "Nothing was exported.")
+        return 0
+    emit(args, {"sent": True, "bundle": str(path), "bytes": path.stat().st_size},
+         f"Sealed and signed {path.name} ({path.stat().st_size} bytes) in {path.parent}; "
+         f"copy it to the study as agreed.")
+    return 0
