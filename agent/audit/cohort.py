@@ -32,6 +32,9 @@ from pathlib import Path
 from ..errors import DataError
 from .report import cautions_html, esc, fmt_s, page, table, _figure, _save, _styled, _empty
 
+CHECK_SHORT = {"violations": "no violations", "max_exposure": "within limit", "head": "head monotone",
+               "approved": "approved", "enrolled_policy": "enrolled policy"}
+
 CHECK_WORDS = {
     "violations": "no retention violation reported by the device",
     "max_exposure": "largest exposure within the policy limit",
@@ -162,7 +165,9 @@ def plot_cohort_exposure(parts: list[Participant], limits: dict, path: Path) -> 
             ax.axhline(lim, color="#c62828", linewidth=2.5, label=f"policy limit {lim:g} s")
         ax.set_xticks(x, [p.pseudonym for p in parts], rotation=30 if len(parts) > 6 else 0)
         ax.set_ylabel("seconds")
-        ax.legend(loc="upper left", ncol=2)
+        top = max(mx + [v for v in limits.values() if v is not None] + [1.0])
+        ax.set_ylim(0, top * 1.4)
+        ax.legend(loc="upper left", ncol=4, fontsize=9)
     else:
         _empty(ax, "no participants")
     ax.set_title("Raw exposure per participant (latest digest)")
@@ -183,6 +188,8 @@ def plot_cohort_items(parts: list[Participant], path: Path) -> None:
             ax.bar(x + (i - 1) * w, [p.latest[2]["counts"].get(ev, 0) for p in parts], w, label=ev, color=colour)
         ax.set_xticks(x, [p.pseudonym for p in parts], rotation=30 if len(parts) > 6 else 0)
         ax.set_ylabel("raw items (ledger entries)")
+        top = max([p.latest[2]["counts"].get("received", 0) for p in parts] + [1])
+        ax.set_ylim(0, top * 1.3)
         ax.legend(loc="upper left", ncol=3)
     else:
         _empty(ax, "no participants")
@@ -245,21 +252,29 @@ def write_cohort_report(study_dir, out_dir, policies=None) -> Path:
                      '<span class="pass">pass</span>' if p.ok else '<span class="fail">FAIL</span>'])
     body.append(table(["participant", "bundles", "last bundle", "policy", "received", "destroyed", "rejected",
                        "median", "p95", "max", "limit", "violations", "result"], rows,
-                      num_cols=(1, 4, 5, 6, 7, 8, 9, 10, 11)))
-    body.append("<h2>Checks per participant</h2>")
-    crow = []
-    for p in parts:
-        for k, (res, msg) in p.checks.items():
-            mark = ('<span class="pass">pass</span>' if res else '<span class="fail">FAIL</span>' if res is False
-                    else "not checked")
-            crow.append([esc(p.pseudonym), esc(CHECK_WORDS[k]), mark, esc(msg)])
-    body.append(table(["participant", "check", "result", "detail"], crow))
+                      num_cols=(1, 2, 4, 5, 6, 7, 8, 9, 10, 11), cls="wide"))
     body.append('<div class="grid">')
     for name, cap in (("cohort_exposure.png", "Exposure from each participant's latest digest; the red line is "
                                               "the policy limit."),
                       ("cohort_items.png", "Raw items received, destroyed and rejected, per participant.")):
         body.append(f'<figure><img src="{name}" alt="{esc(cap)}"><figcaption>{esc(cap)}</figcaption></figure>')
     body.append("</div>")
+    body.append("<h2>Checks per participant</h2>")
+    used = [k for k in CHECK_WORDS if any(k in p.checks for p in parts)]
+    body.append("<ul>" + "".join(f"<li><b>{esc(CHECK_SHORT[k])}</b>: {esc(CHECK_WORDS[k])}</li>" for k in used)
+                + "</ul>")
+
+    def mark(res):
+        return ('<span class="pass">pass</span>' if res else '<span class="fail">FAIL</span>' if res is False
+                else "not checked")
+
+    body.append(table(["participant"] + [CHECK_SHORT[k] for k in used],
+                      [[esc(p.pseudonym)] + [mark(p.checks[k][0]) if k in p.checks else "–" for k in used]
+                       for p in parts], cls="wide"))
+    fails = [(p.pseudonym, k, msg) for p in parts for k, (res, msg) in p.checks.items() if res is not True]
+    if fails:
+        body.append("<h3>Failed or unchecked, in detail</h3><ul>" + "".join(
+            f"<li>{esc(ps)}, {esc(CHECK_WORDS[k])}: {esc(msg)}</li>" for ps, k, msg in fails) + "</ul>")
     body.append("<h2>What a digest can and cannot show</h2><ul>"
                 "<li>A digest is a summary the device computed from its own ledger; it is authenticated with "
                 "the bundle's signature but holds no per-item detail. A full check needs the device ledger "

@@ -43,7 +43,9 @@ h3 { font-size: 17px; margin-bottom: 4px; }
 table { border-collapse: collapse; margin: 8px 0 16px 0; }
 th, td { border: 1px solid #d0d7de; padding: 5px 10px; text-align: left; vertical-align: top; }
 th { background: #f3f5f7; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+table.wide { font-size: 14px; }
+table.wide th, table.wide td { padding: 4px 7px; }
 .pass { color: #1b5e20; font-weight: bold; }
 .fail { color: #b71c1c; font-weight: bold; }
 code, .fp { font-family: "DejaVu Sans Mono", "Liberation Mono", monospace; font-size: 14px;
@@ -72,8 +74,8 @@ def fmt_s(x) -> str:
     return "–" if x is None else f"{x:.2f} s"
 
 
-def table(header: list[str], rows: list[list], num_cols=()) -> str:
-    out = ["<table>", "<tr>" + "".join(f"<th>{esc(h)}</th>" for h in header) + "</tr>"]
+def table(header: list[str], rows: list[list], num_cols=(), cls: str = "") -> str:
+    out = [f'<table class="{cls}">' if cls else "<table>", "<tr>" + "".join(f"<th>{esc(h)}</th>" for h in header) + "</tr>"]
     for row in rows:
         cells = []
         for i, c in enumerate(row):

@@ -89,10 +89,15 @@ def _report(args) -> int:
         from ..audit.cohort import write_cohort_report
 
         path = write_cohort_report(Path(args.from_bundles), Path(args.out), policies=args.policy)
-        emit(args, {"report": str(path)}, f"Cohort report written to {path}")
-        return 0
-    from ..audit.report import write_report
+        what = "Cohort report"
+    else:
+        from ..audit.report import write_report
 
-    path = write_report(_home(args), Path(args.out))
-    emit(args, {"report": str(path)}, f"Report written to {path}")
+        path = write_report(_home(args), Path(args.out))
+        what = "Report"
+    import json
+
+    figures = json.loads((path.parent / "report.json").read_text("utf-8"))
+    verdict = figures.get("verdict") or ("PASSED" if figures.get("ok") else "FAILED")
+    emit(args, {"report": str(path), "ok": figures.get("ok")}, f"{what} written to {path}\n{verdict}")
     return 0
