@@ -331,13 +331,14 @@ def setup_logging(home) -> logging.Handler | None:
 
     h = home if isinstance(home, Home) else Home(home)
     root = logging.getLogger("lethe")
+    target = os.path.abspath(h.logs / "agent.log")
     for existing in root.handlers:
-        if isinstance(existing, RotatingFileHandler):
-            return None
+        if isinstance(existing, RotatingFileHandler) and existing.baseFilename == target:
+            return None  # already logging to this home
     h.logs.mkdir(parents=True, exist_ok=True, mode=0o700)
     old = os.umask(0o077)
     try:
-        handler = RotatingFileHandler(h.logs / "agent.log", maxBytes=1 << 20, backupCount=3, encoding="utf-8")
+        handler = RotatingFileHandler(target, maxBytes=1 << 20, backupCount=3, encoding="utf-8")
     finally:
         os.umask(old)
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s %(message)s"))
@@ -376,44 +377,54 @@ def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
     DrainReport
     """
     from ..home import Home
-    from .pipeline import drain
 
     t_start = time.time()
     h = home if isinstance(home, Home) else Home(home)
-    setup_logging(h)
-    with h.lock("agent"):
-        intake = Intake(h, policy, now=now)
-        try:
-            from .. import __version__
+    handler = setup_logging(h)
+    try:
+        with h.lock("agent"):
+            return _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_outcome, t_start)
+    finally:
+        if handler is not None:
+            logging.getLogger("lethe").removeHandler(handler)
+            handler.close()
 
-            intake.ledger.append("agent_start", version=__version__, mode="once" if once else "watch")
 
-            def warm_and_ready():
-                # After the start-up sweep, so files already waiting are not held up by it.
-                if warm:
-                    try:
-                        from . import warm_up
+def _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_outcome, t_start):
+    from .pipeline import drain
 
-                        warm_up(policy)
-                    except (ImportError, AttributeError):
-                        pass
-                if on_ready is not None:
-                    on_ready(time.time() - t_start)
+    intake = Intake(h, policy, now=now)
+    try:
+        from .. import __version__
 
-            if once:
-                # A drain warms what it needs on its first file; a separate warm-up would only delay it.
-                if on_ready is not None:
-                    on_ready(time.time() - t_start)
-                report = drain(h, policy, now=now, settle_s=settle_s, intake=intake, on_outcome=on_outcome)
-            else:
-                watcher = InboxWatcher(intake, settle_s=settle_s, stop_event=stop_event, on_outcome=on_outcome,
-                                       after_sweep=warm_and_ready)
-                watcher.start()
+        intake.ledger.append("agent_start", version=__version__, mode="once" if once else "watch")
+
+        def warm_and_ready():
+            # After the start-up sweep, so files already waiting are not held up by it.
+            if warm:
                 try:
-                    report = watcher.run()
-                finally:
-                    watcher.stop()
-            intake.ledger.append("agent_stop", reason="drained" if once else "stopped")
-            return report
-        finally:
-            intake.close()
+                    from . import warm_up
+
+                    warm_up(policy)
+                except (ImportError, AttributeError):
+                    pass
+            if on_ready is not None:
+                on_ready(time.time() - t_start)
+
+        if once:
+            # A drain warms what it needs on its first file; a separate warm-up would only delay it.
+            if on_ready is not None:
+                on_ready(time.time() - t_start)
+            report = drain(h, policy, now=now, settle_s=settle_s, intake=intake, on_outcome=on_outcome)
+        else:
+            watcher = InboxWatcher(intake, settle_s=settle_s, stop_event=stop_event, on_outcome=on_outcome,
+                                   after_sweep=warm_and_ready)
+            watcher.start()
+            try:
+                report = watcher.run()
+            finally:
+                watcher.stop()
+        intake.ledger.append("agent_stop", reason="drained" if once else "stopped")
+        return report
+    finally:
+        intake.close()
