@@ -286,17 +286,19 @@ def home_card(home):
     """The study card this home enrolled with.
 
     Looked up as ``home.json``'s ``"card"`` entry (a path, relative to the home
-    or absolute), else ``HOME/state/card.json``.
+    or absolute), else ``HOME/study-card.json`` (where ``lethe init`` keeps it),
+    else ``HOME/state/card.json``.
     """
     from .study.card import load_card
 
     cfg = home.read_config()
-    for cand in ([cfg["card"]] if cfg.get("card") else []) + ["state/card.json"]:
+    card_cfg = cfg.get("card") if isinstance(cfg.get("card"), str) else None
+    for cand in ([card_cfg] if card_cfg else []) + ["study-card.json", "state/card.json"]:
         p = Path(cand)
         p = p if p.is_absolute() else home.root / p
         if p.exists():
             return load_card(p)
-    raise StateError(f"{home.root}: no study card in this home (expected state/card.json); "
+    raise StateError(f"{home.root}: no study card in this home (expected study-card.json); "
                      f"enrol first with 'lethe init --study CARD'")
 
 

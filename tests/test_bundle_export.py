@@ -36,7 +36,7 @@ def make_world(tmp_path, policy_text=None, pseudonym="pX7QmN2a"):
     card_path = write_card(study, [src], "desk", tmp_path / "card.json")
     home = Home(tmp_path / "home").create()
     shutil.copy(src, home.policy_path)
-    shutil.copy(card_path, home.state / "card.json")
+    shutil.copy(card_path, home.root / "study-card.json")
     home.write_config({"pseudonym": pseudonym, "timezone": "UTC"})
     ks = Keystore(home).ensure()
     Ledger(home, signing_key=ks.device_key()).append("policy", fingerprint=policy.fingerprint)

@@ -214,3 +214,29 @@ def test_withdrawal_unknown_pseudonym(study, tmp_path):
     cert = make_withdrawal_certificate("harbour-days-2027", "nobody-here", key, {"seq": 1, "hash": "ab"}, {})
     with pytest.raises(StateError, match="not enrolled"):
         verify_withdrawal(cert, Registry.load(d))
+
+
+def test_verify_withdrawal_cli_records_it(study, tmp_path, capsys):
+    from agent.cli import main
+    from agent.study.withdrawal import write_withdrawal_certificate
+
+    d, key = _enrolled(study, tmp_path)
+    cert = make_withdrawal_certificate("harbour-days-2027", "pX7QmN2a", key, {"seq": 7, "hash": "cd" * 32},
+                                       {"episodes": 3})
+    f = write_withdrawal_certificate(tmp_path / "w.json", cert)
+    assert main(["study", "verify-withdrawal", "--dir", str(d), str(f)]) == 0
+    assert "valid withdrawal of pX7QmN2a" in capsys.readouterr().out
+    assert Registry.load(d).device("pX7QmN2a").withdrawn == cert["time"]
+
+
+def test_verify_withdrawal_cli_tampered_exit_code(study, tmp_path):
+    from agent.cli import main
+    from agent.errors import EXIT_INTEGRITY
+    from agent.study.withdrawal import write_withdrawal_certificate
+
+    d, key = _enrolled(study, tmp_path)
+    cert = make_withdrawal_certificate("harbour-days-2027", "pX7QmN2a", key, {"seq": 7, "hash": "cd" * 32}, {})
+    cert["ledger_head"]["seq"] = 8
+    f = write_withdrawal_certificate(tmp_path / "w.json", cert)
+    assert main(["study", "verify-withdrawal", "--dir", str(d), str(f)]) == EXIT_INTEGRITY
+    assert Registry.load(d).device("pX7QmN2a").withdrawn is None

@@ -56,7 +56,7 @@ def register(sub) -> None:
     add_json(rp)
     rp.set_defaults(func=_report)
 
-    vw = with_dir(ps.add_parser("verify-withdrawal", help="check a withdrawal certificate"))
+    vw = with_dir(ps.add_parser("verify-withdrawal", help="check a withdrawal certificate and record the withdrawal"))
     vw.add_argument("file")
     add_json(vw)
     vw.set_defaults(func=_verify_withdrawal)
@@ -137,11 +137,9 @@ def _report(args) -> int:
 
 
 def _verify_withdrawal(args) -> int:
-    from ..study.registry import Registry
-    from ..study.withdrawal import load_withdrawal, verify_withdrawal
+    from ..study.withdrawal import register_withdrawal
 
-    cert = load_withdrawal(args.file)
-    check = verify_withdrawal(cert, Registry.load(args.dir), source=args.file)
+    check = register_withdrawal(args.dir, args.file)
     emit(args, {"ok": True, **check.as_dict()},
          f"{args.file}: valid withdrawal of {check.pseudonym} (device {check.device_key_id}) at {check.time}; "
          f"ledger head #{check.ledger_head['seq']}; destroyed "

@@ -42,7 +42,7 @@ def _plot_accuracy(quiz, metrics, path: Path) -> bool:
     if not rows:
         return False
     plt = _fig()
-    fig, ax = plt.subplots(figsize=(7, 0.6 * len(rows) + 1.8))
+    fig, ax = plt.subplots(figsize=(9, 0.6 * len(rows) + 1.8))
     base = {}
     for m in _latest(metrics):
         if m["source"].startswith("baseline:") and m["metric"] == "accuracy":
@@ -64,7 +64,7 @@ def _plot_accuracy(quiz, metrics, path: Path) -> bool:
     ax.set_yticks(range(len(rows)), [r["pseudonym"] for r in rows])
     ax.set_xlim(0, 1)
     ax.set_xlabel("memory-test accuracy (fraction correct)")
-    ax.legend(loc="lower right", fontsize=8)
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8)
     ax.set_title("Accuracy per participant against chance and baselines")
     fig.tight_layout()
     fig.savefig(path, dpi=100)

@@ -170,3 +170,18 @@ def verify_withdrawal(cert: dict, registry, source="<memory>") -> WithdrawalChec
 
 def load_withdrawal(path) -> dict:
     return _read_json(path, "withdrawal certificate")
+
+
+def register_withdrawal(study_dir, cert_path) -> WithdrawalCheck:
+    """Verify a certificate file, keep a copy in ``STUDYDIR/withdrawals/`` and mark the device withdrawn."""
+    from .registry import Registry, locked
+
+    cert = load_withdrawal(cert_path)
+    with locked(study_dir):
+        reg = Registry.load(study_dir)
+        check = verify_withdrawal(cert, reg, source=str(cert_path))
+        write_private(Path(study_dir) / "withdrawals" / f"{check.pseudonym}.json",
+                      (json.dumps(cert, indent=2, sort_keys=True) + "\n").encode())
+        reg.devices[check.pseudonym].withdrawn = check.time
+        reg.save()
+    return check
