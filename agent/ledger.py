@@ -467,6 +467,11 @@ class LedgerReport:
     def to_dict(self) -> dict:
         return asdict(self)
 
+    @property
+    def exposure_stats(self) -> dict:
+        """Alias of ``exposure``: ``{"n", "median", "p95", "max"}`` in seconds."""
+        return self.exposure
+
     def messages(self, check: str | None = None) -> list[str]:
         return [p["message"] for p in self.problems if check is None or p["check"] == check]
 
