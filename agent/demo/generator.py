@@ -397,11 +397,15 @@ def _atomic_bytes(path: Path, data: bytes) -> None:
 
 
 def _atomic_audio(path: Path, x: np.ndarray, sr: int) -> None:
+    import io
+
     import soundfile as sf
 
-    part = path.with_name(path.name + ".part")
-    sf.write(str(part), x, sr, format="WAV", subtype="PCM_16")
-    os.replace(part, path)
+    # Encode in memory, then one write: far fewer system calls than letting
+    # libsndfile seek and patch the header on disk.
+    buf = io.BytesIO()
+    sf.write(buf, x, sr, format="WAV", subtype="PCM_16")
+    _atomic_bytes(path, buf.getvalue())
 
 
 def write_days(timeline: Timeline, inbox, policy, seed: int, days: Iterable[int] | None = None) -> list[Path]:
@@ -488,7 +492,7 @@ def _gps_noise(r, n, indoor):
     """HDOP, accuracy (m) and horizontal error distance (m) for n fixes."""
     hdop = np.clip(r.lognormal(np.where(indoor, np.log(1.8), np.log(1.1)), 0.3, n), 0.6, 9.5)
     acc = hdop * GPS_UERE_M
-    dist = np.clip(r.rayleigh(acc / 1.6), 2.0, 45.0)
+    dist = np.minimum(3.0 + r.rayleigh(0.9 * acc), 45.0)  # a floor: multipath never vanishes
     return hdop, acc, dist
 
 
@@ -680,31 +684,29 @@ def accel_signal(modes: np.ndarray, t: np.ndarray, r: np.random.Generator, rate_
 
 
 def _burst_modes(tl: Timeline, t: np.ndarray, r) -> np.ndarray:
+    """Movement state per sample: the travel mode, or a state drawn once per visit."""
     sc, ir = tl.scenario, tl.scenario.irregularity
     idx = tl.segment_index(t)
-    modes = np.empty(t.size, dtype=object)
-    state_of_visit: dict[int, str] = {}
-    for j, i in enumerate(idx):
+    modes = np.full(t.size, "still", dtype="<U7")
+    for i in np.unique(idx):
         if i < 0:
-            modes[j] = "still"
             continue
+        sel = idx == i
         s = tl.segments[i]
         if s["kind"] == "travel":
-            modes[j] = s["mode"]
+            modes[sel] = s["mode"]
             continue
-        if i not in state_of_visit:
-            local = datetime.fromtimestamp(t[j], sc.tz)
-            minute = local.hour * 60 + local.minute
-            night = (minute >= ir["night_start_min"] or minute < ir["night_end_min"]) and s["place_id"] == sc.home_id
-            if night or tl.is_sick(t[j]):
-                state_of_visit[i] = "still"
-            else:
-                mo = sc.places[s["place_id"]].motion
-                keys = sorted(mo)
-                p = np.array([mo[k] for k in keys])
-                state_of_visit[i] = keys[int(r.choice(len(keys), p=p / p.sum()))]
-        modes[j] = state_of_visit[i]
-    return modes.astype(str)
+        t_first = float(t[sel][0])
+        local = datetime.fromtimestamp(t_first, sc.tz)
+        minute = local.hour * 60 + local.minute
+        night = (minute >= ir["night_start_min"] or minute < ir["night_end_min"]) and s["place_id"] == sc.home_id
+        if night or tl.is_sick(t_first):
+            continue
+        mo = sc.places[s["place_id"]].motion
+        keys = sorted(mo)
+        p = np.array([mo[k] for k in keys])
+        modes[sel] = keys[int(r.choice(len(keys), p=p / p.sum()))]
+    return modes
 
 
 def _write_accel(tl, day, t0, t1, inbox, sch, seed):
@@ -759,7 +761,6 @@ def _write_mood(tl, day, t0, t1, inbox, sch, seed):
     edges = np.linspace(a, b, n + 1)
     slot = (b - a) / n
     prompts = edges[:-1] + r.uniform(0.1, 0.9, n) * slot  # one random time in each slot
-    as_json = r.random() < md["json_probability"]
     emotions = list(sch.emotions)
     out = []
     for pt in prompts:
@@ -770,7 +771,7 @@ def _write_mood(tl, day, t0, t1, inbox, sch, seed):
             continue
         ratings = mood_ratings(tl, rt, emotions, sch.mood_scale_min, sch.mood_scale_max, r)
         tt = _iso_local(rt, sc.tz) if r.random() < 0.7 else _iso_z(rt)
-        if as_json:
+        if r.random() < md["json_probability"]:  # the app's other export format
             path = inbox / f"mood_{stamp_utc(rt)}.mood.json"
             data = json.dumps({"reports": [{"time": tt, "ratings": ratings}]}, indent=1).encode("utf-8")
         else:
