@@ -118,7 +118,7 @@ def participant_enrols(ctx: DemoContext) -> None:
 def collect_days(ctx: DemoContext) -> None:
     from ..demo.generator import Scenario, simulate_days, write_day, write_truth
     from ..home import Home
-    from ..intake.pipeline import drain
+    from ..intake.pipeline import drain, intake_counts
 
     home = Home(ctx.home_dir)
     policy = home.load_policy()
@@ -127,24 +127,28 @@ def collect_days(ctx: DemoContext) -> None:
     timeline = simulate_days(scenario, _study_start(ctx), ctx.days, ctx.seed)
     write_truth(timeline, ctx.workdir / "truth.json")
     totals: dict = {}
-    exposures = []
+    reasons: dict = {}
     for day in range(ctx.days):
         write_day(timeline, day, home.inbox, policy, ctx.seed)
         rep = drain(home, policy)
-        for k, v in rep.counts().items():
-            totals[k] = totals.get(k, 0) + v
-        exposures += list(rep.exposures)
+        for stage in ("received", "featurised", "rejected", "destroyed"):
+            for kind, n in getattr(rep, stage).items():
+                totals[f"{kind}.{stage}"] = totals.get(f"{kind}.{stage}", 0) + n
+        for why, n in rep.reasons.items():
+            reasons[why] = reasons.get(why, 0) + n
     left = [p.name for p in home.inbox.iterdir()]
     ctx.facts["intake"] = totals
     ctx.say("Per kind, received / featurised / rejected / destroyed:")
     for kind in ("audio", "gps", "accel", "mood"):
         ctx.say(f"  {kind:6s} {totals.get(f'{kind}.received', 0):5d} / {totals.get(f'{kind}.featurised', 0):5d}"
                 f" / {totals.get(f'{kind}.rejected', 0):3d} / {totals.get(f'{kind}.destroyed', 0):5d}")
-    if exposures:
-        import numpy as np
-
-        ctx.say(f"Raw exposure (file complete to destroyed): median {np.median(exposures):.2f} s, "
-                f"max {max(exposures):.2f} s; the policy allows {policy.retention.raw_seconds:g} s.")
+    if reasons:
+        ctx.say("Rejected, by reason: " + ", ".join(f"{r} {n}" for r, n in sorted(reasons.items())))
+    exp = intake_counts(home, policy)["exposure"]
+    if exp.get("n"):
+        ctx.say(f"Raw exposure (file complete to destroyed): median {exp['median_s']:.2f} s, "
+                f"p95 {exp['p95_s']:.2f} s, max {exp['max_s']:.2f} s; the policy allows "
+                f"{policy.retention.raw_seconds:g} s.")
     ctx.say(f"Files left in the inbox: {len(left)}.")
 
 
@@ -226,11 +230,18 @@ def participant_quiz(ctx: DemoContext) -> None:
     home = Home(ctx.home_dir)
     policy = home.load_policy()
     ctx.stage("Participant: the memory test (answers simulated)")
+    from ..errors import StateError
+
     truth = load_truth(ctx.workdir / "truth.json")
     with Vault.open(home) as vault:
         trials = []
         while True:
-            batch = issue_trials(vault, policy, now=_now(ctx), n=60)
+            try:
+                batch = issue_trials(vault, policy, now=_now(ctx), n=60)
+            except StateError as e:
+                ctx.say(f"No memory test yet: {e}. (Try more --days.)")
+                ctx.facts["quiz"] = None
+                return
             trials += batch
             if len(batch) < 60 or len(trials) >= 240:
                 break
@@ -254,6 +265,9 @@ def fit_model(ctx: DemoContext) -> None:
     home = Home(ctx.home_dir)
     policy = home.load_policy()
     ctx.stage("Agent: fitting the memory model on the device")
+    if not (ctx.facts.get("quiz") or {}).get("answered"):
+        ctx.say("Skipped: there are no memory-test answers to fit yet.")
+        return
     fit = fit_from_home(home, policy, seed=ctx.seed)
     ctx.facts["fit"] = fit.summary() if hasattr(fit, "summary") else None
     ctx.say(fit.table())
