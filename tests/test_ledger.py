@@ -404,3 +404,56 @@ def test_other_signing_key_detected_by_verifier(home, clock):
     Ledger(home, Ed25519PrivateKey.generate(), clock=clock).append("agent_start")
     r = verify_ledger(home, policy=30)
     assert r.messages("signature")[0].startswith("no entry's signature verifies with device key")
+
+
+# -- crash safety ------------------------------------------------------------------------
+
+def test_repair_at_every_cut_inside_the_last_line(home, keys, tmp_path):
+    lg = Ledger(home, keys.device_key())
+    lg.append("agent_start")
+    lg.append_many([("received", dict(item=item(1), kind="mood", bytes=10, complete_at=T0)),
+                    ("rejected", dict(item=item(1), kind="mood", reason="bad_rating"))])
+    data = home.ledger_path.read_bytes()
+    last_start = data.rstrip(b"\n").rfind(b"\n") + 1
+    anchor = home.ledger_head_path.read_bytes()
+    for cut in range(last_start + 1, len(data) - 1, 11):  # len - 1 (only the newline lost) is tested above
+        home.ledger_path.write_bytes(data[:cut])
+        home.ledger_head_path.write_bytes(anchor)
+        Ledger(home, keys.device_key()).append("resumed")
+        events = [e["event"] for e in Ledger(home).entries()]
+        assert events == ["agent_start", "received", "repaired", "resumed"], cut
+        r = verify_ledger(home, policy=1e9, now=T0)
+        assert r.ok, (cut, r.problems)
+        assert r.repairs[0]["dropped_bytes"] == cut - last_start
+
+
+def _append_forever(root):
+    from agent.home import Home
+
+    home = Home(root)
+    lg = Ledger(home, Keystore(home).device_key())
+    i = 0
+    while True:
+        lg.append_many([("received", dict(item=item(i), kind="accel", bytes=100, complete_at=T0)),
+                        ("destroyed", dict(item=item(i), kind="accel", complete_at=T0, exposure_s=0.1))])
+        i += 1
+
+
+@pytest.mark.slow
+def test_sigkill_during_appends_leaves_a_verifiable_ledger(home, keys):
+    import signal
+    import time
+
+    ctx = multiprocessing.get_context("fork")
+    for round_ in range(4):
+        p = ctx.Process(target=_append_forever, args=(str(home.root),))
+        p.start()
+        time.sleep(0.15 + 0.05 * round_)
+        os.kill(p.pid, signal.SIGKILL)
+        p.join(10)
+        r = verify_ledger(home, policy=1e9, now=T0)
+        # a kill can tear the last line, and nothing else
+        assert {x["check"] for x in r.problems} <= {"truncation"}, r.problems
+        Ledger(home, keys.device_key()).append("agent_start")  # the restarted agent
+        after = verify_ledger(home, policy=1e9, now=T0)
+        assert after.ok, after.problems
