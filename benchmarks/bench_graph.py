@@ -1,0 +1,153 @@
+"""Benchmark: co-occurrence graph construction and spectrum diagnostics.
+
+Two workloads, both synthetic and seeded:
+
+* a year of hourly episodes (8,760 episodes, about 500 nodes: 52 weeks,
+  24 hours, 7 weekdays, 390 places, 20 sound classes, 3 motion classes,
+  11 moods);
+* the 14-day demo shape (336 episodes, about 60 nodes).
+
+For each we time :meth:`CooccurrenceGraph.from_episodes` (counts + arrival-rule
+degree cap) and :func:`spectrum_report` (three dense ``eigh``), measure peak
+Python heap with :mod:`tracemalloc` in a separate run (tracing slows the code,
+so it is not timed), and compare with a networkx reference that builds the same
+counts and the same capped graph edge by edge and takes the spectra with
+``numpy.linalg.eigvalsh`` on ``nx.to_numpy_array``.  Target: under 1 s for the
+year (construction + spectrum) on 2 cores.
+
+Run: ``python benchmarks/bench_graph.py [--repeat N]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import itertools
+import resource
+import time
+import tracemalloc
+from datetime import datetime, timedelta, timezone
+
+import numpy as np
+
+from agent.graph import CooccurrenceGraph, episode_nodes
+from agent.policy import DEFAULT_EMOTIONS
+from agent.spectrum import spectrum_report
+
+
+def synthetic_episodes(days: int, n_places: int, n_sounds: int, seed: int = 0) -> list[dict]:
+    """Hourly episodes: a home/work routine plus Zipf-distributed other places."""
+    rng = np.random.default_rng(seed)
+    start = datetime(2026, 1, 5, tzinfo=timezone.utc)  # a Monday
+    ranks = np.arange(1, n_places + 1, dtype=float)
+    zipf = 1.0 / ranks
+    zipf /= zipf.sum()
+    out = []
+    for h in range(days * 24):
+        t = start + timedelta(hours=h)
+        hour, wd = t.hour, t.weekday()
+        if hour < 8 or hour >= 22:
+            place = "P1"
+        elif wd < 5 and 9 <= hour < 17:
+            place = "P2"
+        else:
+            place = f"P{1 + rng.choice(n_places, p=zipf)}"
+        if h < n_places:  # every place appears at least once
+            place = f"P{h + 1}"
+        k = int(place[1:])
+        sound = f"S{1 + (k * 7) % n_sounds}" if rng.random() > 0.1 else f"S{1 + rng.integers(n_sounds)}"
+        motion = ("sedentary", "light", "mvpa")[0 if k <= 2 else int(rng.integers(3))]
+        moods = sorted(rng.choice(DEFAULT_EMOTIONS, size=int(rng.integers(0, 4)), replace=False).tolist())
+        out.append({"key": t.isoformat(timespec="minutes"), "utc": t.timestamp(), "date": t.date().isoformat(),
+                    "hour": hour, "weekday": wd, "week": h // (24 * 7) + 1, "place": place, "sound": sound,
+                    "motion": motion, "moods": moods})
+    return out
+
+
+def networkx_reference(episodes, cap: int):
+    """Counts and the arrival-rule cap edge by edge on networkx graphs, spectra by eigvalsh."""
+    import networkx as nx
+
+    from agent.graph import _label_key
+    from agent.policy import NODE_KINDS
+
+    rank = {k: i for i, k in enumerate(NODE_KINDS)}
+    G = nx.Graph()
+    per = [episode_nodes(e) for e in sorted(episodes, key=lambda e: e["utc"])]
+    for ns in per:
+        G.add_nodes_from(ns)
+        for a, b in itertools.combinations(ns, 2):
+            if G.has_edge(a, b):
+                G[a][b]["weight"] += 1
+            else:
+                G.add_edge(a, b, weight=1)
+    order = sorted(G.nodes, key=lambda n: (rank[n[0]], _label_key(n[1])))
+    index = {n: i for i, n in enumerate(order)}
+    H = nx.Graph()
+    H.add_nodes_from(order)
+    for ns in per:
+        for a, b in itertools.combinations(sorted(ns, key=index.__getitem__), 2):
+            if not H.has_edge(a, b) and H.degree(a) < cap and H.degree(b) < cap:
+                H.add_edge(a, b)
+    spectra = []
+    for graph, weight in ((G, "weight"), (G, None), (H, None)):
+        spectra.append(np.linalg.eigvalsh(nx.to_numpy_array(graph, nodelist=order, weight=weight)))
+    return G, H, spectra
+
+
+def _best(fn, repeat):
+    times = []
+    out = None
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        out = fn()
+        times.append(time.perf_counter() - t0)
+    return min(times), out
+
+
+def _peak(fn) -> float:
+    tracemalloc.start()
+    fn()
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    return peak / 2**20
+
+
+def bench(name, episodes, cap, repeat):
+    t_build, g = _best(lambda: CooccurrenceGraph.from_episodes(episodes, degree_cap=cap), repeat)
+    t_spec, rep = _best(lambda: spectrum_report(g), repeat)
+    t_ref, (G, H, spectra) = _best(lambda: networkx_reference(episodes, cap), max(1, repeat // 2))
+    assert g.n_edges == H.number_of_edges() and g.counts.nnz // 2 == G.number_of_edges()
+    assert np.allclose(np.sort(rep["capped"]["eigenvalues"]), spectra[2])
+    mem_build = _peak(lambda: CooccurrenceGraph.from_episodes(episodes, degree_cap=cap))
+    mem_spec = _peak(lambda: spectrum_report(g))
+    ours = t_build + t_spec
+    print(f"{name}: {len(episodes)} episodes, {g.n_nodes} nodes, {G.number_of_edges()} co-occurring pairs, "
+          f"{g.n_edges} capped edges (cap {cap})")
+    print(f"  construction {t_build * 1e3:8.1f} ms   spectrum (3 x eigh) {t_spec * 1e3:8.1f} ms   "
+          f"total {ours * 1e3:8.1f} ms")
+    print(f"  peak traced heap: construction {mem_build:6.1f} MiB, spectrum {mem_spec:6.1f} MiB")
+    print(f"  networkx reference (build + cap + eigvalsh) {t_ref * 1e3:8.1f} ms   ratio {t_ref / ours:5.1f}x")
+    for k in ("counts", "binary", "capped"):
+        r = rep[k]
+        print(f"  {k:7s} lambda1 {r['lambda1']:10.2f}  lambda1/|lambda2| {r['ratio']:6.2f}  "
+              f"flatness {r['flatness']:.3f}")
+    return {"build_s": t_build, "spectrum_s": t_spec, "ref_s": t_ref, "mem_build_mib": mem_build,
+            "mem_spectrum_mib": mem_spec}
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--repeat", type=int, default=3, help="timing repeats (best of)")
+    args = ap.parse_args(argv)
+    year = synthetic_episodes(365, n_places=390, n_sounds=20)
+    demo = synthetic_episodes(14, n_places=10, n_sounds=5)
+    r = bench("year", year, 5, args.repeat)
+    bench("14-day demo shape", demo, 5, args.repeat)
+    total = r["build_s"] + r["spectrum_s"]
+    print(f"target: year under 1 s -> {'met' if total < 1.0 else 'MISSED'} ({total:.3f} s)")
+    print(f"max RSS of this process: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MiB")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
