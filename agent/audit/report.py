@@ -25,8 +25,6 @@ from pathlib import Path
 from ..home import Home
 from ..policy_summary import CAUTIONS, summarise
 
-MaxNLocator = None  # matplotlib.ticker.MaxNLocator, imported with the first figure
-
 KIND_COLOURS = {"audio": "#1f77b4", "gps": "#2ca02c", "accel": "#ff7f0e", "mood": "#9467bd",
                 "unknown": "#7f7f7f"}
 
@@ -108,8 +106,6 @@ def _styled(plot):
 
 
 def _figure(w=6.4, h=3.8):
-    global MaxNLocator
-    from matplotlib.ticker import MaxNLocator
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -122,6 +118,12 @@ def _save(fig, path: Path) -> None:
     fig.tight_layout()
     # Fixed metadata so the same ledger gives the same bytes.
     fig.savefig(path, format="png", metadata={"Software": None})
+
+
+def _integer_ticks(axis) -> None:
+    from matplotlib.ticker import MaxNLocator
+
+    axis.set_major_locator(MaxNLocator(integer=True))
 
 
 def _empty(ax, text):
@@ -140,7 +142,17 @@ def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> 
     xs = np.asarray(list(exposures), float)
     if xs.size:
         hi = max(float(xs.max()), float(limit_s or 0)) * 1.05 or 1.0
+        over = 0
+        if limit_s and hi > 3 * limit_s:
+            # A few very late items would squash the histogram; fold them into the last bin.
+            hi = 3 * limit_s
+            over = int((xs > hi).sum())
+            xs = np.minimum(xs, hi * 0.999)
         ax.hist(xs, bins=np.linspace(0, hi, 41), color="#4c78a8", edgecolor="white")
+        if over:
+            ax.annotate(f"{over} later than {hi:g} s", xy=(hi, 0), xytext=(0.97, 0.55),
+                        textcoords="axes fraction", ha="right", color="#c62828",
+                        arrowprops={"arrowstyle": "->", "color": "#c62828"})
         if stats and stats.get("median") is not None:
             ax.axvline(stats["median"], color="#222", linestyle=":", linewidth=1.5,
                        label=f"median {stats['median']:.2f} s")
@@ -148,7 +160,7 @@ def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> 
                        label=f"95th percentile {stats['p95']:.2f} s")
         ax.set_xlabel("seconds from file complete to destroyed")
         ax.set_ylabel("raw files")
-        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+        _integer_ticks(ax.yaxis)
     else:
         _empty(ax, "no destroyed raw files recorded")
     if limit_s is not None:
@@ -178,7 +190,7 @@ def plot_items_per_day(daily: dict, path: Path) -> None:
         ax.set_xticks(x[::step], [d[5:] for d in days][::step])
         ax.set_xlabel("day (UTC, month-day)")
         ax.set_ylabel("raw items received")
-        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+        _integer_ticks(ax.yaxis)
         ax.legend(ncol=len(kinds), loc="upper left")
     else:
         _empty(ax, "no raw items recorded")
@@ -196,7 +208,7 @@ def plot_rejections(rejections: dict, path: Path) -> None:
         for i, (_, v) in enumerate(items):
             ax.text(v, i, f" {v}", va="center", fontsize=9)
         ax.set_xlabel("rejected raw files")
-        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+        _integer_ticks(ax.xaxis)
     else:
         _empty(ax, "no rejected raw files")
     ax.set_title("Rejections by reason")
@@ -214,7 +226,7 @@ def plot_exports(exports: list, path: Path) -> None:
         ax.step(ts, range(1, len(ts) + 1), where="post", color="#4c78a8")
         ax.plot(ts, range(1, len(ts) + 1), "o", color="#4c78a8")
         ax.set_ylabel("exports so far")
-        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+        _integer_ticks(ax.yaxis)
         ax.set_ylim(0, len(ts) + 0.5)
         fig.autofmt_xdate()
     else:
