@@ -152,3 +152,19 @@ def test_bundle_signature_is_plain_ed25519_over_prefix(tmp_path):
     study = Study(tmp_path)
     data = study.seal()
     study.device.public_key().verify(data[-64:], data[:-64])
+
+
+def test_pq_public_key_layout_matches_xwing_vector():
+    # cryptography_vectors HPKE/hpke-pq-test-vectors.json, KEM 0x647a (MLKEM768-X25519).
+    # The 32-byte private seed expands with SHAKE256 to 96 bytes: the ML-KEM-768 seed (64)
+    # then the X25519 scalar (32) -- that expansion rule is from memory; the vector's pkRm
+    # confirms it, and with it our public-key layout (ML-KEM key || X25519 key, 1216 bytes).
+    import hashlib
+
+    from agent.study.keys import _public_from_private, public_key_object
+
+    data = json.loads((VECTORS / "HPKE" / "hpke-pq-test-vectors.json").read_text())
+    v = next(x for x in data if x["kem_id"] == 0x647A)
+    expanded = hashlib.shake_256(bytes.fromhex(v["skRm"])).digest(96)
+    assert _public_from_private("pq", expanded).hex() == v["pkRm"]
+    public_key_object("pq", bytes.fromhex(v["pkRm"]))  # our loader accepts the standard encoding
