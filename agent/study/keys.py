@@ -9,7 +9,7 @@ Two suites are offered (``docs/bundle-format.md``, section "Suites"):
     The hybrid ML-KEM-768 + X25519 KEM of ``cryptography`` (for data that
     must resist a later quantum attack), HKDF-SHA256, AES-128-GCM.
     Public key: the 1184-byte ML-KEM-768 encapsulation key followed by the
-    32 X25519 bytes (1216 bytes, our own layout).
+    32 X25519 bytes (1216 bytes, the standard encoding of HPKE KEM 0x647A).
 
 ``STUDYDIR/keys/study.key`` (0600) is a JSON document ("lethe-study-key" v1)
 whose private bytes are sealed with AES-256-GCM under a key derived from the
