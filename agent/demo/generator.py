@@ -524,6 +524,9 @@ def _write_gps(tl, day, t0, t1, inbox, sch, seed):
         if r.random() < GPS_OUTLIER_PROBABILITY:
             j = int(r.integers(0, ts.size))
             dist[j] = r.uniform(2000, 5000)
+            if r.random() < 0.5:  # half the time the receiver knows its geometry was bad
+                hdop[j] = r.uniform(12.0, 25.0)
+                acc[j] = hdop[j] * GPS_UERE_M
         lat, lon = destination(lat0, lon0, bearing, dist)
         # speed and course over ground from the true track (1 s ahead)
         e2, n2 = tl.true_positions_m(ts + 1.0, _rng(seed, _S_GPS, day, h, 1))
@@ -671,9 +674,10 @@ def accel_signal(modes: np.ndarray, t: np.ndarray, r: np.random.Generator, rate_
         elif m == "cycle":
             f = r.uniform(1.1, 1.5)
             ph = r.uniform(0, 2 * np.pi)
-            v = 0.06 * np.sin(2 * np.pi * f * tt + ph) + 0.03 * np.sin(4 * np.pi * f * tt)
-            fw = 0.08 * np.sin(2 * np.pi * f * tt + ph + 1.0)
-            e = 0.035 * r.standard_normal((n, 3))
+            # a phone in a trouser pocket follows the thigh: one swing per pedal turn
+            v = 0.14 * np.sin(2 * np.pi * f * tt + ph) + 0.04 * np.sin(4 * np.pi * f * tt)
+            fw = 0.12 * np.sin(2 * np.pi * f * tt + ph + 1.0)
+            e = 0.04 * r.standard_normal((n, 3))
         else:  # vehicle
             v = 0.0 * tt
             fw = 0.05 * np.sin(2 * np.pi * r.uniform(0.02, 0.06) * tt + r.uniform(0, 6))
