@@ -21,7 +21,8 @@ Files (all 0600 in a 0700 directory, written atomically)::
 
     HOME/keys/vault.key       {"v":1,"name":"vault","store":"file"|"keyring","wrap":"none"|"scrypt-aesgcm",...}
     HOME/keys/content.key     same layout
-    HOME/keys/device.ed25519  PKCS8 PEM, encrypted with the passphrase when one is given
+    HOME/keys/device.ed25519  PKCS8 PEM; with a passphrase encrypted under hex(scrypt KEK)
+    HOME/keys/device.ed25519.kdf  {"v":1,"kdf":{"n","r","p","salt"}} (only with a passphrase)
     HOME/keys/device.pub      64 hex digits: the raw Ed25519 public key, then a newline
 
 The OS keyring (the optional ``keyring`` package) holds the vault and content
@@ -65,6 +66,7 @@ VAULT_KEY_FILE = "vault.key"
 CONTENT_KEY_FILE = "content.key"
 DEVICE_KEY_FILE = "device.ed25519"
 DEVICE_PUB_FILE = "device.pub"
+DEVICE_KDF_FILE = "device.ed25519.kdf"
 
 
 class PassphraseError(StateError):
@@ -222,8 +224,16 @@ class Keystore:
         priv = self.keys_dir / DEVICE_KEY_FILE
         if not priv.exists():
             key = Ed25519PrivateKey.generate()
-            enc = (serialization.BestAvailableEncryption(self._passphrase) if self._passphrase
-                   else serialization.NoEncryption())
+            if self._passphrase:
+                # cryptography encrypts PKCS8 with PBKDF2 at 2048 rounds, far
+                # cheaper to guess than scrypt; so the PEM password is the
+                # scrypt KEK (hex) and the KDF parameters sit beside the PEM.
+                kdf = {"n": SCRYPT_N, "r": SCRYPT_R, "p": SCRYPT_P, "salt": os.urandom(SALT_BYTES).hex()}
+                write_private(self.keys_dir / DEVICE_KDF_FILE,
+                              json.dumps({"v": KEYFILE_VERSION, "kdf": kdf}, sort_keys=True).encode() + b"\n")
+                enc = serialization.BestAvailableEncryption(self._pem_password(kdf))
+            else:
+                enc = serialization.NoEncryption()
             write_private(priv, key.private_bytes(serialization.Encoding.PEM,
                                                   serialization.PrivateFormat.PKCS8, enc))
             self._write_public(key.public_key())
@@ -264,6 +274,10 @@ class Keystore:
     # -- passphrase wrap -----------------------------------------------------
     def _kek(self, salt: bytes, n: int, r: int, p: int) -> bytes:
         return derive_kek(self._passphrase, salt, n=n, r=r, p=p)
+
+    def _pem_password(self, kdf: dict) -> bytes:
+        kek = self._kek(bytes.fromhex(kdf["salt"]), int(kdf["n"]), int(kdf["r"]), int(kdf["p"]))
+        return kek.hex().encode("ascii")
 
     def _wrap(self, secret: bytes, label: str) -> dict:
         salt, nonce = os.urandom(SALT_BYTES), os.urandom(12)
@@ -336,8 +350,18 @@ class Keystore:
         encrypted = b"ENCRYPTED PRIVATE KEY" in pem
         if encrypted and not self._passphrase:
             raise PassphraseError(f"{path}: the device key is protected by a passphrase; none was given")
+        password = None
+        if encrypted:
+            kdf_path = self.keys_dir / DEVICE_KDF_FILE
+            try:
+                kdf = json.loads(kdf_path.read_text("utf-8"))["kdf"]
+                password = self._pem_password(kdf)
+            except FileNotFoundError:
+                raise StateError(f"{kdf_path}: missing; the encrypted device key cannot be opened") from None
+            except (ValueError, KeyError, TypeError):
+                raise IntegrityError(f"{kdf_path}: damaged key-derivation parameters") from None
         try:
-            key = serialization.load_pem_private_key(pem, password=self._passphrase if encrypted else None)
+            key = serialization.load_pem_private_key(pem, password=password)
         except ValueError:
             if encrypted:
                 raise PassphraseError(f"{path}: wrong passphrase (or the key file was altered)") from None
@@ -372,7 +396,7 @@ class Keystore:
                         kr.delete_password(doc["service"], doc["account"])
             except Exception:
                 pass  # a damaged or absent file is removed below all the same
-        for name in (VAULT_KEY_FILE, CONTENT_KEY_FILE, DEVICE_KEY_FILE, DEVICE_PUB_FILE):
+        for name in (VAULT_KEY_FILE, CONTENT_KEY_FILE, DEVICE_KEY_FILE, DEVICE_KDF_FILE, DEVICE_PUB_FILE):
             path = self.keys_dir / name
             if path.exists() or path.is_symlink():
                 overwrite_and_unlink(path)

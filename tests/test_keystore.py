@@ -163,6 +163,26 @@ def test_device_key_pem_is_encrypted_with_passphrase(home, fast_scrypt):
         serialization.load_pem_private_key(pem, password=None)
 
 
+def test_device_pem_password_is_the_scrypt_kek_not_the_passphrase(home, fast_scrypt):
+    # PKCS8 PEM encryption in cryptography uses PBKDF2 with few rounds, so the
+    # PEM password must be the scrypt KEK: the passphrase itself must not open it.
+    ks = Keystore(home, b"right").ensure()
+    pem = (home.keys / "device.ed25519").read_bytes()
+    with pytest.raises(ValueError):
+        serialization.load_pem_private_key(pem, password=b"right")
+    kdf = json.loads((home.keys / "device.ed25519.kdf").read_text())["kdf"]
+    kek = derive_kek(b"right", bytes.fromhex(kdf["salt"]), n=kdf["n"], r=kdf["r"], p=kdf["p"])
+    key = serialization.load_pem_private_key(pem, password=kek.hex().encode())
+    assert device_key_id(key.public_key()) == ks.device_key_id()
+
+
+def test_missing_device_kdf_file_is_named(home, fast_scrypt):
+    Keystore(home, b"right").ensure()
+    (home.keys / "device.ed25519.kdf").unlink()
+    with pytest.raises(StateError, match="device.ed25519.kdf: missing"):
+        Keystore(home, b"right").device_key()
+
+
 def test_public_key_readable_without_passphrase(home, fast_scrypt):
     ks = Keystore(home, b"secret").ensure()
     assert device_key_id(read_device_public(home.keys)) == ks.device_key_id()
@@ -233,6 +253,12 @@ def test_keyring_entry_removed_on_destroy(home, fake_keyring):
     assert fake_keyring
     Keystore(home).destroy()
     assert fake_keyring == {}
+
+
+def test_destroy_with_passphrase_removes_the_kdf_file(home, fast_scrypt):
+    ks = Keystore(home, b"pw").ensure()
+    assert ks.destroy() == 5
+    assert list(home.keys.iterdir()) == []
 
 
 def test_keyring_absent_falls_back_to_file(home, monkeypatch):
