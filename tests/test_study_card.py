@@ -240,3 +240,61 @@ def test_verify_withdrawal_cli_tampered_exit_code(study, tmp_path):
     f = write_withdrawal_certificate(tmp_path / "w.json", cert)
     assert main(["study", "verify-withdrawal", "--dir", str(d), str(f)]) == EXIT_INTEGRITY
     assert Registry.load(d).device("pX7QmN2a").withdrawn is None
+
+
+def test_passphrase_from_file_drops_newline(tmp_path, monkeypatch):
+    from agent.study.keys import read_passphrase
+
+    monkeypatch.setenv("LETHE_STUDY_PASSPHRASE", "from the environment")
+    f = tmp_path / "p"
+    f.write_bytes(b"from the file\n")
+    assert read_passphrase(str(f)) == b"from the file"  # the file wins over the environment
+
+
+def test_passphrase_from_environment(monkeypatch):
+    from agent.study.keys import read_passphrase
+
+    monkeypatch.setenv("LETHE_STUDY_PASSPHRASE", "from the environment")
+    assert read_passphrase(None) == b"from the environment"
+
+
+def test_passphrase_never_prompted_without_terminal(monkeypatch):
+    import io
+
+    from agent.errors import UsageError
+    from agent.study.keys import read_passphrase
+
+    monkeypatch.delenv("LETHE_STUDY_PASSPHRASE", raising=False)
+    monkeypatch.setattr("sys.stdin", io.StringIO(""))
+    with pytest.raises(UsageError, match="no passphrase"):
+        read_passphrase(None)
+
+
+def test_short_passphrase_refused(tmp_path):
+    from agent.errors import UsageError
+
+    with pytest.raises(UsageError, match="at least 8 bytes"):
+        study_keygen(tmp_path / "s", "x-study", b"short", scrypt_n=FAST_N)
+
+
+def test_keygen_cli_pq_with_card(tmp_path, monkeypatch, capsys):
+    from agent.cli import main
+
+    monkeypatch.setenv("LETHE_STUDY_PASSPHRASE", PASS.decode())
+    d = tmp_path / "s"
+    monkeypatch.setattr("agent.study.keys.SCRYPT_N", FAST_N)
+    rc = main(["study", "keygen", "--study-id", "harbour-days-2027", "--dir", str(d), "--suite", "pq",
+               "--policy", str(bundled_policy_path("default")), "--json"])
+    assert rc == 0
+    out = json.loads(capsys.readouterr().out)
+    card = load_card(out["card"])
+    assert card.suite == "pq" and len(card.public_key) == 1216 and card.key_fingerprint == out["key_fingerprint"]
+
+
+def test_default_scrypt_cost_is_recorded(tmp_path):
+    from agent.study.keys import SCRYPT_N
+
+    study_keygen(tmp_path / "s", "x-study", PASS)
+    doc = json.loads((tmp_path / "s" / "keys" / "study.key").read_text())
+    assert doc["kdf"] == {**doc["kdf"], "name": "scrypt", "n": SCRYPT_N, "r": 8, "p": 1}
+    assert SCRYPT_N == 2**18

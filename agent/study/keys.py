@@ -183,10 +183,11 @@ def _kek(passphrase: bytes, salt: bytes, n: int, r: int, p: int) -> bytes:
     return Scrypt(salt=salt, length=32, n=n, r=r, p=p).derive(passphrase)
 
 
-def encrypt_private_key(pair: StudyKeyPair, passphrase: bytes, *, scrypt_n: int = SCRYPT_N) -> dict:
+def encrypt_private_key(pair: StudyKeyPair, passphrase: bytes, *, scrypt_n: int | None = None) -> dict:
     """The "lethe-study-key" v1 document for ``pair`` (private bytes sealed)."""
     from cryptography.hazmat.primitives.ciphers.aead import AESGCM
 
+    scrypt_n = SCRYPT_N if scrypt_n is None else scrypt_n
     if not isinstance(passphrase, (bytes, bytearray)) or len(passphrase) < 8:
         raise UsageError("the study key passphrase must be at least 8 bytes long")
     if scrypt_n < 2 or scrypt_n & (scrypt_n - 1):
@@ -269,7 +270,7 @@ def pub_path(study_dir) -> Path:
 
 
 def study_keygen(study_dir, study_id: str, passphrase: bytes | str, suite: str = "default", *,
-                 scrypt_n: int = SCRYPT_N, overwrite: bool = False) -> StudyKeyPair:
+                 scrypt_n: int | None = None, overwrite: bool = False) -> StudyKeyPair:
     """Create the study key pair in ``STUDYDIR/keys/`` (study.key 0600, study.pub).
 
     Parameters
@@ -281,8 +282,8 @@ def study_keygen(study_dir, study_id: str, passphrase: bytes | str, suite: str =
     passphrase : bytes or str
         Protects the private key; at least 8 bytes.
     suite : {"default", "pq"}
-    scrypt_n : int
-        scrypt cost parameter (power of two); lower only in tests.
+    scrypt_n : int, optional
+        scrypt cost parameter (power of two); default :data:`SCRYPT_N`.  Lower only in tests.
     overwrite : bool
         Refuse to replace an existing key unless True (a lost study key makes
         every bundle sealed to it unreadable).
@@ -294,7 +295,7 @@ def study_keygen(study_dir, study_id: str, passphrase: bytes | str, suite: str =
         raise StateError(f"{key_path(study_dir)}: a study key already exists; refusing to replace it "
                          f"(bundles sealed to it would become unreadable)")
     pair = StudyKeyPair.generate(study_id, suite)
-    doc = encrypt_private_key(pair, passphrase, scrypt_n=scrypt_n)
+    doc = encrypt_private_key(pair, passphrase, scrypt_n=SCRYPT_N if scrypt_n is None else scrypt_n)
     study_dir.mkdir(parents=True, exist_ok=True, mode=DIR_MODE)
     write_private(key_path(study_dir), (json.dumps(doc, indent=2, sort_keys=True) + "\n").encode())
     pub = {"format": PUB_FORMAT, "version": KEY_VERSION, "study_id": study_id, "suite": suite,
