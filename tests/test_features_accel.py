@@ -113,3 +113,15 @@ def test_active_fraction_is_the_share_of_active_windows(default_policy):
     rec = AccelRecord(path="b.accel.csv", t=t, xyz_g=xyz, rate_hz=RATE)
     payload = F.accel_features(rec, default_policy).rows["accel_features"][0][1]
     assert payload["active_fraction"] == 0.5
+
+
+@pytest.mark.parametrize("n, nperseg", [(100, 50), (100, 100), (97, 33), (600, 64)])
+def test_welch_psd_matches_scipy(n, nperseg):
+    # Reference implementation: scipy.signal.welch (Hann, 50 % overlap,
+    # constant detrend, density scaling, mean average).
+    from scipy.signal import welch
+
+    x = np.random.default_rng(n).standard_normal((3, n))
+    f_ref, p_ref = welch(x, fs=10.0, nperseg=nperseg, noverlap=nperseg // 2, axis=-1)
+    f, p = F.welch_psd(x, 10.0, nperseg)
+    assert np.allclose(f, f_ref) and np.allclose(p, p_ref)

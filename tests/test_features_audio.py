@@ -172,3 +172,35 @@ def test_frame_parameters_scale_with_sample_rate():
 
 def test_warm_up_runs_every_feature():
     assert F.warm_up() >= 0.0
+
+
+@pytest.mark.parametrize("sr", [8000, 16000, 22050, 48000])
+def test_mel_filterbank_matches_librosa(sr):
+    # Reference implementation: librosa.filters.mel (Slaney scale and norm).
+    import librosa
+
+    n_fft, _ = F.frame_params(sr)
+    ref = librosa.filters.mel(sr=sr, n_fft=n_fft, n_mels=F.N_MELS)
+    assert np.allclose(F.mel_filterbank(sr, n_fft), ref, atol=1e-7)
+
+
+def test_slaney_mel_scale_puts_1khz_at_15_mels():
+    # Slaney's Auditory Toolbox scale: linear to 1 kHz at 200/3 Hz per mel.
+    assert F.hz_to_mel(1000.0) == pytest.approx(15.0)
+    assert F.mel_to_hz(F.hz_to_mel([200.0, 4000.0])) == pytest.approx([200.0, 4000.0])
+
+
+def test_featurise_does_not_import_librosa_or_numba():
+    # Start-up matters for a background agent: the hot path is numpy/scipy.fft.
+    import subprocess
+    import sys
+
+    code = ("import io, sys, numpy as np, soundfile as sf\n"
+            "from agent.policy import load_policy, bundled_policy_path\n"
+            "from agent.intake import featurise\n"
+            "b = io.BytesIO(); t = np.arange(132300) / 44100\n"
+            "sf.write(b, (0.2 * np.sin(2 * np.pi * 440 * t)).astype('float32'), 44100, format='WAV')\n"
+            "featurise('snd_20261104T120000Z.wav', b.getvalue(), load_policy(bundled_policy_path()))\n"
+            "print('librosa' in sys.modules, 'numba' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.split() == ["False", "False"]

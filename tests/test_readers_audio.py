@@ -121,3 +121,14 @@ def test_rejection_names_the_file_and_carries_no_content(default_policy):
     e = rejected(NAME, encode(tone(seconds=5.0), 16000), default_policy)
     assert NAME in str(e) and "wrong_length" in str(e)
     assert "Error opening" not in e.detail
+
+
+def test_resampler_equals_librosa_soxr_hq():
+    # Reference implementation: librosa.resample(res_type="soxr_hq").
+    import librosa
+
+    from agent.intake.readers.audio import RES_TYPE, resample
+
+    y = np.random.default_rng(0).standard_normal(44100).astype(np.float32) * 0.1
+    ref = librosa.resample(y, orig_sr=44100, target_sr=16000, res_type=RES_TYPE)
+    assert np.allclose(resample(y, 44100, 16000), ref, atol=1e-6)

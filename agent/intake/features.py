@@ -111,11 +111,57 @@ def frame_params(sr: int) -> tuple[int, int]:
     return n_fft, n_fft // 2
 
 
-@lru_cache(maxsize=8)
-def _mel_basis(sr: int, n_fft: int) -> np.ndarray:
-    import librosa
+def hz_to_mel(f_hz):
+    """Slaney's mel scale (the Auditory Toolbox; librosa's default, ``htk=False``).
 
-    return librosa.filters.mel(sr=sr, n_fft=n_fft, n_mels=N_MELS).astype(np.float32)
+    Linear below 1 kHz (3 mels per 200 Hz), logarithmic above (27 mels per
+    factor of 6.4), so that 1 kHz is 15 mels.
+    """
+    f = np.asarray(f_hz, dtype=np.float64)
+    lin = f / (200.0 / 3.0)
+    logstep = np.log(6.4) / 27.0
+    with np.errstate(divide="ignore"):
+        log = 15.0 + np.log(np.maximum(f, 1e-300) / 1000.0) / logstep
+    return np.where(f >= 1000.0, log, lin)
+
+
+def mel_to_hz(mels):
+    """Inverse of :func:`hz_to_mel`."""
+    m = np.asarray(mels, dtype=np.float64)
+    logstep = np.log(6.4) / 27.0
+    return np.where(m >= 15.0, 1000.0 * np.exp(logstep * (m - 15.0)), m * (200.0 / 3.0))
+
+
+def mel_filterbank(sr: int, n_fft: int, n_mels: int = N_MELS) -> np.ndarray:
+    """Triangular mel filters on the ``rfft`` grid, Slaney area normalisation.
+
+    The same matrix as ``librosa.filters.mel(sr=sr, n_fft=n_fft, n_mels=n_mels)``
+    (tested against it), built here so intake never imports librosa's signal
+    stack and numba at start-up.
+    """
+    fft_f = np.fft.rfftfreq(n_fft, 1.0 / sr)
+    mel_f = mel_to_hz(np.linspace(hz_to_mel(0.0), hz_to_mel(sr / 2.0), n_mels + 2))
+    fdiff = np.diff(mel_f)
+    ramps = mel_f[:, None] - fft_f[None, :]
+    lower = -ramps[:-2] / fdiff[:-1, None]
+    upper = ramps[2:] / fdiff[1:, None]
+    w = np.maximum(0.0, np.minimum(lower, upper))
+    w *= (2.0 / (mel_f[2:] - mel_f[:-2]))[:, None]
+    return w.astype(np.float32)
+
+
+@lru_cache(maxsize=8)
+def _mel_basis(sr: int, n_fft: int):
+    """The mel filterbank as a sparse matrix.
+
+    Each FFT bin feeds at most two triangular filters, so a sparse product is
+    ~20x less arithmetic than a dense one, and it avoids waking a multi-threaded
+    BLAS for a small product: on a busy 2-core laptop that wake-up cost more
+    than the product itself (measured, see docs/features.md).
+    """
+    import scipy.sparse
+
+    return scipy.sparse.csr_matrix(mel_filterbank(sr, n_fft))
 
 
 @lru_cache(maxsize=8)
@@ -227,15 +273,37 @@ def enmo_g(xyz_g: np.ndarray) -> np.ndarray:
     return np.maximum(mag - 1.0, 0.0)
 
 
-def dominant_hz(mag: np.ndarray, rate_hz: float) -> np.ndarray:
-    """Dominant frequency of each row of ``mag`` (windows × samples) by Welch."""
-    from scipy.signal import welch
+def welch_psd(x: np.ndarray, fs: float, nperseg: int) -> tuple[np.ndarray, np.ndarray]:
+    """Welch's PSD estimate along the last axis, as ``scipy.signal.welch`` computes it.
 
-    mag = np.atleast_2d(mag)
+    Periodic Hann window, 50 % overlap, constant detrend, one-sided density
+    scaling, mean over segments; written in numpy because scipy's general
+    machinery costs more than the transform for windows of a hundred samples.
+    """
+    from numpy.lib.stride_tricks import sliding_window_view
+
+    step = nperseg - nperseg // 2
+    seg = sliding_window_view(x, nperseg, axis=-1)[..., ::step, :]
+    seg = seg - seg.mean(axis=-1, keepdims=True)
+    win = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(nperseg) / nperseg)
+    spec = np.abs(np.fft.rfft(seg * win, axis=-1)) ** 2 / (fs * np.sum(win * win))
+    if nperseg % 2:
+        spec[..., 1:] *= 2.0
+    else:
+        spec[..., 1:-1] *= 2.0
+    return np.fft.rfftfreq(nperseg, 1.0 / fs), spec.mean(axis=-2)
+
+
+def dominant_hz(mag: np.ndarray, rate_hz: float) -> np.ndarray:
+    """Dominant frequency of each row of ``mag`` (windows x samples) by Welch.
+
+    The DC bin is excluded; a window whose magnitude SD is below
+    :data:`STILL_SD_G` has no dominant frequency and gets 0.
+    """
+    mag = np.atleast_2d(np.asarray(mag, dtype=np.float64))
     n = mag.shape[-1]
     nperseg = min(n, max(4, int(round(WELCH_SEGMENT_S * rate_hz))))
-    f, pxx = welch(mag, fs=rate_hz, nperseg=nperseg, noverlap=nperseg // 2,
-                   detrend="constant", axis=-1)
+    f, pxx = welch_psd(mag, rate_hz, nperseg)
     dom = f[1:][np.argmax(pxx[:, 1:], axis=-1)] if len(f) > 1 else np.zeros(mag.shape[0])
     still = mag.std(axis=-1) < STILL_SD_G
     return np.where(still, 0.0, dom)

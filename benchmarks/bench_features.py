@@ -1,0 +1,183 @@
+"""Throughput of featurise() alone: audio snippets/s and accelerometry samples/s.
+
+Each figure is printed beside a reference measured in the same run on the same
+inputs, so the ratio is meaningful on any machine:
+
+* audio: ``librosa.load(path, sr=16000)`` from a file plus the same features
+  through librosa's own functions (each computes its own STFT);
+* accelerometry: ``np.loadtxt`` of the same CSV (parsing only, no checks or
+  features).
+
+Usage::
+
+    python benchmarks/bench_features.py [--n-audio 200] [--json]
+
+Targets (issue 3, whole pipeline): >= 100 audio snippets/s and >= 2 million
+accelerometry samples/s.  No personal data: every input is synthetic.
+"""
+
+from __future__ import annotations
+
+import argparse
+import io
+import json
+import os
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+T0 = 1793793600.0  # 2026-11-04T12:00:00Z
+
+
+def _stamp(t):
+    return time.strftime("%Y%m%dT%H%M%SZ", time.gmtime(t))
+
+
+def audio_inputs(n, sr, channels, seconds=3.0, seed=0):
+    import soundfile as sf
+
+    rng = np.random.default_rng(seed)
+    out = []
+    tt = np.arange(int(seconds * sr)) / sr
+    for i in range(n):
+        f = rng.uniform(100, 3000)
+        y = 0.2 * np.sin(2 * np.pi * f * tt) + 0.05 * rng.standard_normal(tt.size)
+        y = np.column_stack([y] * channels) if channels > 1 else y
+        buf = io.BytesIO()
+        sf.write(buf, y.astype(np.float32), sr, format="WAV", subtype="PCM_16")
+        out.append((f"snd_{_stamp(T0 + 600 * i)}.wav", buf.getvalue()))
+    return out
+
+
+def accel_input(n, rate=10.0, seed=0):
+    rng = np.random.default_rng(seed)
+    t = T0 + np.arange(n) / rate
+    xyz = rng.normal(0.0, 0.05, (n, 3))
+    xyz[:, 2] += 1.0
+    body = "\n".join(f"{a:.3f},{x:.4f},{y:.4f},{z:.4f}" for a, (x, y, z) in zip(t, xyz))
+    return f"# unit=g rate_hz={rate:g}\ntime,x,y,z\n{body}\n".encode()
+
+
+def librosa_reference(path, sr):
+    import librosa
+
+    y, _ = librosa.load(path, sr=sr, mono=True)
+    kw = dict(n_fft=512, hop_length=256)
+    m = librosa.feature.mfcc(y=y, sr=sr, n_mfcc=20, n_mels=40, **kw)
+    librosa.feature.melspectrogram(y=y, sr=sr, n_mels=40, **kw)
+    librosa.feature.spectral_centroid(y=y, sr=sr, **kw)
+    librosa.feature.spectral_flatness(y=y, **kw)
+    librosa.feature.spectral_rolloff(y=y, sr=sr, **kw)
+    librosa.feature.zero_crossing_rate(y, frame_length=512, hop_length=256)
+    return m.mean(axis=1)
+
+
+def best_rate(fn, units, repeat=3):
+    """Units per second, best of ``repeat`` runs (the least disturbed by other load)."""
+    best = 0.0
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        best = max(best, units / (time.perf_counter() - t))
+    return best
+
+
+def bench_audio(policy, n, sr_in, channels):
+    import librosa  # noqa: F401  (import outside the timed region)
+
+    from agent.intake import featurise
+
+    items = audio_inputs(n, sr_in, channels)
+    featurise(items[0][0], items[0][1], policy)  # warm: caches, lazy imports
+    ours = best_rate(lambda: [featurise(nm, d, policy) for nm, d in items], n)
+    with tempfile.TemporaryDirectory() as tmp:
+        paths = []
+        for nm, d in items:
+            p = os.path.join(tmp, nm)
+            with open(p, "wb") as fh:
+                fh.write(d)
+            paths.append(p)
+        librosa_reference(paths[0], policy.intake.audio_sr)
+        ref = best_rate(lambda: [librosa_reference(p, policy.intake.audio_sr) for p in paths], n)
+    return {"input": f"{sr_in} Hz x{channels}", "snippets_per_s": ours, "reference_per_s": ref,
+            "ratio": ours / ref}
+
+
+def bench_resamplers(sr_in=44100, sr_out=16000, n=50):
+    import librosa
+
+    y = np.random.default_rng(0).standard_normal(int(3 * sr_in)).astype(np.float32)
+    out = {}
+    for rt in ("soxr_hq", "soxr_vhq", "polyphase", "kaiser_fast"):
+        try:
+            librosa.resample(y, orig_sr=sr_in, target_sr=sr_out, res_type=rt)
+        except Exception as e:  # a resampler whose backend is not installed
+            out[rt] = f"unavailable ({type(e).__name__})"
+            continue
+        out[rt] = best_rate(lambda: [librosa.resample(y, orig_sr=sr_in, target_sr=sr_out, res_type=rt)
+                                     for _ in range(n)], n)
+    return out
+
+
+def bench_accel(policy, n_rows, repeat_files):
+    from agent.intake import featurise
+
+    data = accel_input(n_rows)
+    name = f"burst_{_stamp(T0)}.accel.csv"
+    featurise(name, data, policy, now=T0 + 10 * 86400)
+    now = T0 + 10 * 86400 + n_rows / 10.0
+    ours = best_rate(lambda: [featurise(name, data, policy, now=now) for _ in range(repeat_files)],
+                     n_rows * repeat_files)
+    body = data.split(b"\n", 2)[2]
+    ref = best_rate(lambda: [np.loadtxt(io.BytesIO(body), delimiter=",") for _ in range(repeat_files)],
+                    n_rows * repeat_files)
+    return {"rows_per_file": n_rows, "samples_per_s": ours, "loadtxt_per_s": ref, "ratio": ours / ref}
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--n-audio", type=int, default=200)
+    ap.add_argument("--json", action="store_true")
+    args = ap.parse_args(argv)
+
+    from agent.intake import warm_up
+    from agent.policy import bundled_policy_path, load_policy
+
+    policy = load_policy(bundled_policy_path())
+    t = time.perf_counter()
+    import librosa  # noqa: F401
+    import_s = time.perf_counter() - t
+    warm_s = warm_up(policy)
+
+    res = {
+        "cpu_count": os.cpu_count(),
+        "import_librosa_s": import_s,
+        "warm_up_s": warm_s,
+        "audio": [bench_audio(policy, args.n_audio, 16000, 1),
+                  bench_audio(policy, args.n_audio, 44100, 2)],
+        "resample_44k1_to_16k_per_s": bench_resamplers(),
+        "accel": [bench_accel(policy, 600, 100), bench_accel(policy, 200_000, 1)],
+    }
+    if args.json:
+        print(json.dumps(res, indent=2))
+        return 0
+    print(f"warm_up(): {warm_s:.2f} s (librosa import {import_s:.2f} s)")
+    for a in res["audio"]:
+        print(f"audio {a['input']:>14}: featurise {a['snippets_per_s']:7.1f} snippets/s | "
+              f"librosa.load + librosa features {a['reference_per_s']:7.1f}/s | ratio {a['ratio']:.2f}")
+    for rt, v in res["resample_44k1_to_16k_per_s"].items():
+        print(f"resample 3 s 44.1->16 kHz {rt:>11}: " + (f"{v:8.1f}/s" if isinstance(v, float) else v))
+    for a in res["accel"]:
+        print(f"accel {a['rows_per_file']:>7} rows/file: featurise {a['samples_per_s'] / 1e6:5.2f} M samples/s | "
+              f"np.loadtxt alone {a['loadtxt_per_s'] / 1e6:5.2f} M/s | ratio {a['ratio']:.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
