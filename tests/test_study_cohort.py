@@ -67,3 +67,12 @@ def test_report_html_and_plots(cohort, tmp_path):
         assert f'src="{png}"' in text
     assert "http://" not in text and "https://" not in text  # no network resources
     assert "pZ1kW9cc" in text and "Compliance digest" in text
+
+
+def test_merge_parquet_matches_csv(cohort, tmp_path):
+    pq = pytest.importorskip("pyarrow.parquet", reason="pyarrow is optional; Parquet is written only when present")
+    out = merge(cohort.dir, tmp_path / "tables")
+    table = pq.read_table(out["edges.parquet"]).to_pylist()
+    rows = read_csv(out["edges"])
+    assert len(table) == len(rows)
+    assert [str(r["count"]) if r["count"] is not None else "" for r in table] == [r["count"] for r in rows]
