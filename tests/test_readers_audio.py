@@ -132,3 +132,19 @@ def test_resampler_equals_librosa_soxr_hq():
     y = np.random.default_rng(0).standard_normal(44100).astype(np.float32) * 0.1
     ref = librosa.resample(y, orig_sr=44100, target_sr=16000, res_type=RES_TYPE)
     assert np.allclose(resample(y, 44100, 16000), ref, atol=1e-6)
+
+
+def test_aiff_named_wav_is_not_audio_for_this_study(default_policy):
+    # libsndfile could decode it, but only WAV, FLAC and Ogg are contracted.
+    assert rejected(NAME, encode(tone(), 16000, "AIFF"), default_policy).reason == "not_audio"
+
+
+def test_riff_that_is_not_wave_is_not_audio(default_policy):
+    data = bytearray(encode(tone(), 16000))
+    data[8:12] = b"AVI "
+    assert rejected(NAME, bytes(data), default_policy).reason == "not_audio"
+
+
+def test_wav_header_followed_by_garbage_is_truncated(default_policy):
+    data = encode(tone(), 16000)[:12] + np.random.default_rng(1).bytes(4000)
+    assert rejected(NAME, data, default_policy).reason == "truncated"

@@ -2,7 +2,8 @@
 
 Validation, in order (first failure wins):
 
-1. the container is one soundfile recognises (else ``not_audio``);
+1. the bytes start with a RIFF/WAVE, RF64, ``fLaC`` or ``OggS`` header, so no
+   other libsndfile parser ever sees them (else ``not_audio``);
 2. the frames present are the frames the header claims, checked on the RIFF
    ``data`` chunk of a WAV and the STREAMINFO total of a FLAC, and the decoder
    reads to the end without error (else ``truncated``);
@@ -55,6 +56,10 @@ def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioC
 
     now = now_or(now)
     container = _MAGIC.get(data[:4])
+    if container is None or (container == "wav" and data[8:12] != b"WAVE"):
+        # Only the three contracted containers reach libsndfile: its other
+        # format parsers are attack surface this study does not need.
+        reject(path, "not_audio", "not a WAV, FLAC or Ogg file (no RIFF/WAVE, fLaC or OggS header)")
     claimed = None
     if container == "wav" and data[:4] == b"RIFF":
         claimed = _wav_claimed_frames(path, data)
@@ -75,8 +80,6 @@ def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioC
             y = f.read(frames=limit, dtype="float32", always_2d=True)
             header_frames = int(f.frames) if f.frames > 0 else None
     except (sf.SoundFileError, RuntimeError, ValueError, TypeError, EOFError, struct.error) as e:
-        if container is None:
-            reject(path, "not_audio", "not a WAV, FLAC or Ogg Vorbis file")
         reject(path, "truncated", f"the {container.upper()} decoder failed: {_short(e)}")
     n = int(y.shape[0])
     if n >= limit:
