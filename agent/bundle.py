@@ -222,7 +222,11 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
                              f"ciphertext or signature was altered, or it was signed by another key")
 
     # From here the header bytes are authentic.
-    header = check_header(json.loads(parts.header_bytes.decode("utf-8")), source)
+    try:
+        header = json.loads(parts.header_bytes.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError) as e:
+        raise DataError(f"{source}: the signed header is not JSON ({e})") from None
+    header = check_header(header, source)
     if parts.header_bytes != canonical_json(header):
         raise DataError(f"{source}: header is not in canonical JSON form")
     if header["device_key_id"] != device.device_key_id:

@@ -129,3 +129,10 @@ def test_preview_names_suppressed_cells():
     p = make_payload(pol)
     assert p["counts"]["pairs"]["place|mood"] is None
     assert "Withheld because below 50" in preview(p) and "place with mood" in preview(p)
+
+
+def test_merge_rule_payload_validates_and_previews():
+    pol = policy_with("export", small_cell_threshold=20, small_cell_rule="merge")
+    p = make_payload(pol)
+    assert p["counts"]["pairs"]["other"] == 14 + 17 + 17 + 17 + 17 + 17  # every mood pair is below 20
+    assert "all the small pairs together" in preview(p)
