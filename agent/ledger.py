@@ -275,6 +275,8 @@ class Ledger:
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_APPEND | os.O_NOFOLLOW, FILE_MODE)
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX)  # other processes (pause, withdraw) append too
+                st = os.fstat(fd)
+                from_cache = self._tail is not None and self._tail[:2] == (st.st_ino, st.st_size)
                 seq, prev, torn, whole = self._tail_state(fd)
                 out = []
                 if torn:
@@ -288,6 +290,8 @@ class Ledger:
                         os.ftruncate(fd, size - torn)
                         os.fsync(fd)
                         checked.insert(0, ("repaired", {"dropped_bytes": torn}))
+                if not from_cache:
+                    seq, prev = self._continue_after_anchor(seq, prev)
                 lines = []
                 for event, norm in checked:
                     seq += 1
@@ -309,6 +313,26 @@ class Ledger:
             if created:
                 fsync_dir(self.path.parent)
         return out
+
+    def _continue_after_anchor(self, seq: int, prev: str) -> tuple[int, str]:
+        """Where to continue when the file ends before its anchor.
+
+        A ledger deleted, cut at a line boundary or replaced by an older copy
+        would otherwise be extended from its short tail and the anchor
+        overwritten, erasing the evidence.  Continuing after the anchored
+        entry instead leaves a visible gap ("entries N to M missing").
+        """
+        try:
+            doc = json.loads(self.anchor_path.read_text("utf-8"))
+            a_seq, a_hash = doc["seq"], doc["hash"]
+            if not (isinstance(a_seq, int) and isinstance(a_hash, str) and _HEX64.match(a_hash)):
+                return seq, prev
+            self._key.public_key().verify(bytes.fromhex(doc["sig"]), _anchor_body(a_seq, a_hash))
+        except Exception:
+            return seq, prev  # no usable anchor of ours: verification reports it
+        if a_seq > seq:
+            return a_seq, a_hash
+        return seq, prev
 
     def _write_anchor(self, seq: int, hash_: str) -> None:
         sig = self._key.sign(_anchor_body(seq, hash_)).hex()

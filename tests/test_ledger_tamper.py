@@ -281,3 +281,25 @@ def test_many_failures_are_summarised(built):
     msgs = check(home).messages("hash")
     assert len(msgs) == 21
     assert msgs[-1] == "... and 22 more hash problem(s)"
+
+
+# -- the agent keeps running after tampering, without erasing the evidence ---------
+
+def test_deleted_ledger_then_agent_continues(built):
+    home, _ = built
+    home.ledger_path.unlink()
+    Ledger(home, Keystore(home).device_key()).append("agent_start")  # a restarted agent
+    r = check(home)
+    assert r.messages() == ["entries 0 to 12 missing"]
+    assert r.head["seq"] == 13
+
+
+def test_rollback_then_agent_continues(built, tmp_path):
+    home, lg = built
+    old = tmp_path / "old.jsonl"
+    shutil.copy(home.ledger_path, old)
+    for _ in range(3):
+        lg.append("resumed")
+    shutil.copy(old, home.ledger_path)
+    Ledger(home, Keystore(home).device_key()).append("agent_start")
+    assert check(home).messages() == ["entries 13 to 15 missing"]
