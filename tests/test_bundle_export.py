@@ -131,3 +131,21 @@ def test_export_refuses_unapproved_policy(tmp_path):
     with pytest.raises(StateError, match="not approved by the study card"):
         export_bundle(home, strict, now=NOW)
     assert list(home.outbox.iterdir()) == []
+
+
+def test_canaries_in_the_vault_do_not_leave(tmp_path):
+    # Distinctive values planted in every vault table that must stay on the device.
+    home, study = make_world(tmp_path)
+    with Vault.open(home) as v:
+        v.put("place_names", "P1", {"name": "Canary Cottage", "merged_into": None, "exclude": False})
+        v.put("codebook", "place", {"centroids": [[38.7654321, -27.1234567]], "ids": ["P1"]})
+        v.put("gps_fixes", "x:0", {"t": 1764590000.125, "lat": 38.7654321, "lon": -27.1234567, "acc_m": 5.0})
+        v.put("stays", "1764590000", {"t_start": 1764590000.125, "t_end": 1764593600.0,
+                                      "lat": 38.7654321, "lon": -27.1234567, "n": 9})
+        v.put("audio_features", "a1", {"t": 1764590000.125, "vec": [440.123456], "dbfs": -31.4159, "dba": 44.0})
+    path = export_bundle(home, now=NOW)
+    open_bundles(study, [path], PASS)
+    opened = (study / "received" / "pX7QmN2a" / "1.json").read_text()
+    for canary in ("Canary", "38.765", "27.123", "1764590000", "440.123", "31.4159"):
+        assert canary not in opened, canary
+        assert canary.encode() not in path.read_bytes(), canary
