@@ -309,23 +309,18 @@ def researcher_opens(ctx: DemoContext) -> None:
 
 def ethics_board_audits(ctx: DemoContext) -> None:
     from ..audit.report import write_report
+    from ..audit.verify import verify_home
     from ..home import Home
-    from ..ledger import verify_ledger
 
     home = Home(ctx.home_dir)
     policy = home.load_policy()
     ctx.stage("Ethics board: ledger verification and retention report")
-    rep = verify_ledger(home, policy=policy)
-    stats = rep.exposure_stats if hasattr(rep, "exposure_stats") else {}
-    ctx.facts["audit_ok"] = bool(rep.ok)
-    ctx.say(f"Ledger {'verifies' if rep.ok else 'DOES NOT verify'}: {sum(rep.counts.values())} entries, "
-            f"{len(rep.violations)} retention violation(s), {len(rep.problems)} integrity problem(s).")
-    if stats:
-        ctx.say(f"Raw exposure: median {stats.get('median', 0):.2f} s, p95 {stats.get('p95', 0):.2f} s, "
-                f"max {stats.get('max', 0):.2f} s (limit {policy.retention.raw_seconds:g} s).")
+    result = verify_home(home, policy=policy)
+    ctx.facts["audit_ok"] = bool(result.ok)
+    ctx.say(result.text().rstrip())
     path = write_report(home, ctx.workdir / "audit-report", policy=policy)
     ctx.facts["audit_report"] = str(path)
-    ctx.say(f"Report for the board: {path}")
+    ctx.say(f"Report for the board (open it in a browser, no network needed): {path}")
 
 
 def participant_status(ctx: DemoContext) -> None:
