@@ -697,3 +697,89 @@ def test_simulated_place_names(scenario):
     assert names["P99"] == "home (2)"
     assert names[dev["office"]] == "the office"
     assert true_place_map(eps, tl)[dev["office"]] == "office"
+
+
+# -- schedule ------------------------------------------------------------------------------------
+def _policy_with(policy, **schedule):
+    from agent.policy import policy_from_dict
+
+    raw = policy.as_dict()
+    raw["schedule"].update(schedule)
+    return policy_from_dict(raw)
+
+
+def _gps_times(files):
+    out = []
+    for p in files:
+        if p.name.endswith(".gpx"):
+            out += re.findall(r"<trkpt[^>]*>.*?<time>([^<]+)</time>", p.read_text())
+        elif p.name.endswith(".gps.csv"):
+            out += [r.split(",")[0] for r in p.read_text().splitlines()[1:]]
+        elif p.name.endswith(".nmea"):
+            out += [ln.split(",")[1] for ln in p.read_text().splitlines() if ln[3:6] == "RMC" and ",A," in ln]
+    return out
+
+
+def test_gps_fixes_follow_a_sparse_policy_schedule(timeline, policy, tmp_path):
+    sparse = _policy_with(policy, gps_interval_minutes=90)
+    files = [p for p in write_day(timeline, 0, tmp_path, sparse, seed=SEED) if "gps_" in p.name]
+    hours = (timeline.day_bounds(0)[1] - timeline.day_bounds(0)[0]) / 3600
+    assert 0 < len(files) <= hours * 90 / 60 / 1.4  # one file per scheduled fix at most, not one per hour
+    assert 0 < len(set(_gps_times(files))) <= 16
+
+
+def test_audio_and_accel_follow_the_policy_schedule(inbox, timeline, policy):
+    box, files = inbox
+    sch = policy.schedule
+    t0, t1 = timeline.day_bounds(0)
+    day0 = [p for p in files if t0 <= datetime.strptime(STAMP.search(p.name).group(1), "%Y%m%dT%H%M%SZ")
+            .replace(tzinfo=ZoneInfo("UTC")).timestamp() < t1]
+    expected = (t1 - t0) / (60 * sch.audio_interval_minutes)
+    n_audio = sum(_kind(p) == ".wav" for p in day0)
+    n_accel = sum(_kind(p) == ".accel.csv" for p in day0)
+    assert 0.95 * expected <= n_audio <= expected
+    assert 0.95 * expected <= n_accel <= expected
+    for p in day0:
+        if _kind(p) == ".wav":
+            t = datetime.strptime(STAMP.search(p.name).group(1), "%Y%m%dT%H%M%SZ").replace(
+                tzinfo=ZoneInfo("UTC")).timestamp()
+            assert (t - t0) % (60 * sch.audio_interval_minutes) <= 4
+
+
+def _band_energies(x, sr):
+    from scipy.signal import welch
+
+    f, pxx = welch(x, fs=sr, nperseg=1024)
+    edges = np.geomspace(40, 7000, 17)
+    return np.log10([pxx[(f >= a) & (f < b)].sum() + 1e-20 for a, b in zip(edges, edges[1:])])
+
+
+def test_sound_types_are_learnable_from_band_energies():
+    # Log band energies from scipy's Welch spectrum and a cross-validated
+    # logistic regression (scikit-learn; common practice): the classes carry
+    # enough signal to be learned from a few examples each.
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import cross_val_score
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    from agent.demo.scenario import SOUND_TYPES
+
+    rng = np.random.default_rng(8)
+    X, y = [], []
+    for st in SOUND_TYPES:
+        for _ in range(12):
+            X.append(_band_energies(synthesize(st, rng, sr=16000), 16000))
+            y.append(st)
+    acc = cross_val_score(make_pipeline(StandardScaler(), LogisticRegression(max_iter=3000)),
+                          np.array(X), np.array(y), cv=3).mean()
+    assert acc > 0.8
+
+
+def test_snippets_of_one_type_vary_in_level_and_events():
+    rng = np.random.default_rng(9)
+    for st in ("cafe", "wind_gulls", "quiet_room"):
+        xs = [synthesize(st, rng, sr=16000).astype(float) for _ in range(6)]
+        levels = [10 * np.log10(np.mean(x * x)) for x in xs]
+        assert np.ptp(levels) > 2.0  # per-snippet level variation (dB)
+        assert not np.allclose(xs[0], xs[1])

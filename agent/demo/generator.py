@@ -499,13 +499,14 @@ def _gps_noise(r, n, indoor):
 def _write_gps(tl, day, t0, t1, inbox, sch, seed):
     sc = tl.scenario
     out = []
-    step = 60.0 * sch.gps_interval_minutes
+    grid = np.arange(t0, t1, 60.0 * sch.gps_interval_minutes)  # the day's fix schedule
     for h, hs in enumerate(np.arange(t0, t1, GPS_FILE_SECONDS)):
         r = _rng(seed, _S_GPS, day, h)
         if r.random() < GPS_FILE_MISSING_PROBABILITY:
             continue
-        he = min(hs + GPS_FILE_SECONDS, t1)
-        base = np.arange(hs, he, step)
+        base = grid[(grid >= hs) & (grid < hs + GPS_FILE_SECONDS)]
+        if base.size == 0:
+            continue  # a sparse schedule: no fix falls in this hour
         ts = np.floor(base + r.uniform(0, 3, base.size))
         keep = np.ones(ts.size, bool)
         if r.random() < GPS_DROPOUT_PROBABILITY and ts.size > 2:
