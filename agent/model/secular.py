@@ -49,6 +49,27 @@ from .retrieval import TIE_RTOL, ZERO_RTOL
 MAX_ITER = 100
 
 
+class TrialState:
+    """Solution of a batch of trials in the eigenbasis of W.
+
+    Attributes
+    ----------
+    coef : (T, n)
+        The activation is ``v = U @ coef[t]`` (unit norm).
+    mu : (T,)
+        Its eigenvalue, the largest of ``W + beta x x^T``.
+    secular : (T,) bool
+        True where ``v`` is the secular vector (the cue shaped it); False where
+        it is a leading eigenvector of W itself (``beta = 0``, empty cue, or an
+        untouched leading eigenspace that wins).
+    z : (T, n)
+        ``U^T x`` with untouched eigenspaces zeroed.
+    """
+
+    def __init__(self, coef, mu, secular, z, beta):
+        self.coef, self.mu, self.secular, self.z, self.beta = coef, mu, secular, z, beta
+
+
 class RankOneSolver:
     """Eigendecomposition of one W(θ), reused for any number of trials.
 
@@ -116,16 +137,25 @@ class RankOneSolver:
         mu : (T,) ndarray, only with ``return_mu``
             The leading eigenvalue of ``W + beta x x^T``.
         """
+        rows = np.asarray(rows, dtype=np.int64)
+        st = self.state(cue_idx, cue_w, beta)
+        if self.n == 0:
+            act = np.zeros(rows.shape)
+        else:
+            act = np.einsum("tmn,tn->tm", self.u_ext[rows], st.coef)
+        return (act, st.mu) if return_mu else act
+
+    def state(self, cue_idx, cue_w, beta: float) -> "TrialState":
+        """Per-trial solution in the eigenbasis of W: ``v = U @ coef`` (see :class:`TrialState`)."""
         beta = float(beta)
         if not np.isfinite(beta) or beta < 0:
             raise ValueError(f"beta = {beta!r}: expected a finite number >= 0")
         cue_idx = np.asarray(cue_idx, dtype=np.int64)
         cue_w = np.asarray(cue_w, dtype=np.float64)
-        rows = np.asarray(rows, dtype=np.int64)
         t_count, n = cue_idx.shape[0], self.n
         if n == 0:
-            out = np.zeros(rows.shape)
-            return (out, np.full(t_count, np.nan)) if return_mu else out
+            return TrialState(np.zeros((t_count, 0)), np.full(t_count, np.nan),
+                              np.zeros(t_count, dtype=bool), np.zeros((t_count, 0)), beta)
         z = self.cue_coefficients(cue_idx, cue_w)
         x2 = np.einsum("tc,tc->t", cue_w, cue_w)
         w = z * z
@@ -136,25 +166,23 @@ class RankOneSolver:
         w = z * z
         any_touch = touched.any(axis=1)
         top_touched = touched[:, -1]
-        u_rows = self.u_ext[rows]  # (T, m, n)
 
-        act = np.zeros(rows.shape)
+        coef = np.zeros((t_count, n))
         mu = np.full(t_count, self.lam_max)
-        ones_rows = self.ones_vec[rows]
+        secular = np.zeros(t_count, dtype=bool)
+        ones_coef = np.zeros(n)
+        ones_coef[self.top] = self.u_ext[:-1, self.top].T @ self.ones_vec[:-1]
 
         # β = 0 or no cue: leading eigenspace of W decides
-        if beta == 0.0:
-            plain = np.ones(t_count, dtype=bool)
-        else:
-            plain = ~any_touch
+        plain = np.ones(t_count, dtype=bool) if beta == 0.0 else ~any_touch
         if plain.any():
             p = plain & top_touched
             if p.any():
                 zt = z[p][:, self.top]
-                y = np.einsum("tmk,tk->tm", u_rows[p][:, :, self.top], zt)
-                act[p] = y / np.sqrt((zt * zt).sum(axis=1))[:, None]
-            q = plain & ~top_touched
-            act[q] = ones_rows[q]
+                c = np.zeros((int(p.sum()), n))
+                c[:, self.top] = zt / np.sqrt((zt * zt).sum(axis=1))[:, None]
+                coef[p] = c
+            coef[plain & ~top_touched] = ones_coef
 
         sec = ~plain
         if sec.any():
@@ -173,17 +201,17 @@ class RankOneSolver:
             s = _secular_root(a, ws_, es, lo, beta)
             mu_s = lam_star + s
             denom = np.where(es, s[:, None] + a, 1.0)
-            coef = np.where(es, zs / denom, 0.0)
-            nrm = np.sqrt((coef * coef).sum(axis=1))
-            y = np.einsum("tmn,tn->tm", u_rows[sec], coef) / nrm[:, None]
+            c = np.where(es, zs / denom, 0.0)
+            c /= np.sqrt((c * c).sum(axis=1))[:, None]
             # deflation: an untouched leading eigenspace above the secular root wins
             tol = self.tie_rtol * np.maximum(self.scale, np.abs(mu_s))
             loses = (~top_touched[sec]) & (mu_s < self.lam_max - tol)
-            y[loses] = ones_rows[sec][loses]
-            mu_s = np.where(loses, self.lam_max, mu_s)
-            act[sec] = y
-            mu[sec] = mu_s
-        return (act, mu) if return_mu else act
+            c[loses] = ones_coef
+            coef[sec] = c
+            mu[sec] = np.where(loses, self.lam_max, mu_s)
+            sec_rows = np.flatnonzero(sec)
+            secular[sec_rows[~loses]] = True
+        return TrialState(coef, mu, secular, z, beta)
 
     def activation(self, x, beta: float) -> np.ndarray:
         """Full canonical activation for one dense cue ``x`` (tests and diagnostics)."""
@@ -208,35 +236,41 @@ class RankOneSolver:
 
 
 def _secular_root(a, w, mask, lo_s, beta):
-    """Root ``s > 0`` of ``beta * sum w / (s + a) = 1`` per row, given a lower bound ``lo_s``."""
+    """Root ``s > 0`` of ``beta * sum w / (s + a) = 1`` per row, given a lower bound ``lo_s``.
+
+    Newton on ``F(u) = log phi(e^u) + log beta`` safeguarded by bisection of the
+    bracket ``[log lo_s, log(beta sum w)]``; only unconverged rows are iterated.
+    """
+    eps4 = 4 * np.finfo(float).eps
+    # untouched terms get a huge offset so that they vanish without masking in the loop
+    a = np.where(mask, a, 1e300)
+    w = np.where(mask, w, 0.0)
     lo = np.log(lo_s)
-    hi = np.log(beta * w.sum(axis=1))
-    hi = np.maximum(hi, lo)
+    hi = np.maximum(np.log(beta * w.sum(axis=1)), lo)
     u = lo.copy()
-    done = hi - lo <= 4 * np.finfo(float).eps * np.maximum(1.0, np.abs(hi))
     log_beta = np.log(beta)
+    act = np.flatnonzero(hi - lo > eps4 * np.maximum(1.0, np.abs(hi)))
     for _ in range(MAX_ITER):
-        if done.all():
+        if len(act) == 0:
             break
-        s = np.exp(u)
-        d = np.where(mask, s[:, None] + a, 1.0)
-        r = np.where(mask, w / d, 0.0)
+        ua, la, ha = u[act], lo[act], hi[act]
+        s = np.exp(ua)
+        d = s[:, None] + a[act]
+        r = w[act] / d
         phi = r.sum(axis=1)
         dphi = (r / d).sum(axis=1)
         f = np.log(phi) + log_beta
         fp = -s * dphi / phi
-        lo = np.where(f > 0, u, lo)
-        hi = np.where(f < 0, u, hi)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            step = np.where(fp != 0, f / fp, 0.0)
-        u_new = u - step
-        out = ~((u_new > lo) & (u_new < hi))
-        u_new = np.where(out & (f != 0), 0.5 * (lo + hi), u_new)
-        u_new = np.where((f == 0) | done, u, u_new)
-        small = np.abs(u_new - u) <= 4 * np.finfo(float).eps * np.maximum(1.0, np.abs(u))
-        narrow = hi - lo <= 4 * np.finfo(float).eps * np.maximum(1.0, np.abs(hi))
-        done = done | small | narrow | (f == 0)
-        u = u_new
+        la = np.where(f > 0, ua, la)
+        ha = np.where(f < 0, ua, ha)
+        u_new = ua - f / fp
+        bad = ~((u_new > la) & (u_new < ha))
+        u_new = np.where(bad, 0.5 * (la + ha), u_new)
+        u_new = np.where(f == 0, ua, u_new)
+        lo[act], hi[act], u[act] = la, ha, u_new
+        keep = ((np.abs(u_new - ua) > eps4 * np.maximum(1.0, np.abs(ua)))
+                & (ha - la > eps4 * np.maximum(1.0, np.abs(ha))) & (f != 0))
+        act = act[keep]
     return np.exp(u)
 
 

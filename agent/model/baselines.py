@@ -1,0 +1,204 @@
+"""The model and its baselines as predictors with one interface.
+
+A predictor is fitted on training trials (``fit(design)``) and then gives
+log-probabilities over the options of any trials (``log_probabilities(design)``).
+Cross-validation treats all of them alike, on the same folds.
+
+``EigenModel``
+    the cue-biased eigenvector model (θ, β, τ by maximum likelihood).
+``Chance``
+    ``1 / options``; nothing to fit.
+``Frequency``
+    the option most often visited at the probed hour and weekday.  Scores are
+    ``s = n(hour, weekday, place) + 1e-3 n(hour, place) + 1e-6 n(place)`` from
+    the episodes (the small terms only break ties, in that order); without
+    episodes the graph's uncapped co-occurrence counts give
+    ``s = c(hour, place) + c(weekday, place)``.  Choice is a Luce rule on the
+    add-one-smoothed scores, ``p ∝ (1 + s)^(1/τ)``, with τ fitted.
+``Centrality``
+    β = 0 and every θ = 1: plain eigenvector centrality of the capped graph,
+    the same for every cue; τ fitted.
+``TimeLinks``
+    the model with every type pair other than time-place (hour, weekday and
+    week to place) fixed at 0; θ of those pairs, β and τ fitted.
+
+The episodes, and therefore the counts and the graph, include the probed hours
+themselves: the model and the frequency baseline see the same history, which is
+the design of the study (the graph is the participant's record), not a fold leak.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+
+import numpy as np
+from scipy.optimize import minimize, minimize_scalar
+
+from .choice import log_probabilities, uniform_log_probabilities
+from .design import PLACE, ModelGraph, TrialDesign
+from .likelihood import (LOG_TAU_BOUNDS, ActivationCache, ModelSpec, model_log_probabilities,
+                         negative_log_likelihood, nll_and_grad)
+
+
+class Chance:
+    name = "chance"
+    n_params = 0
+
+    def fit(self, design: TrialDesign, rng=None):
+        return self
+
+    def log_probabilities(self, design: TrialDesign) -> np.ndarray:
+        return uniform_log_probabilities(design.opt_mask)
+
+    def params(self) -> dict:
+        return {}
+
+
+def _fit_tau(scores, design: TrialDesign) -> float:
+    ans = design.choice_pos >= 0
+    if not ans.any():
+        return 1.0
+    s, mask, pos = scores[ans], design.opt_mask[ans], design.choice_pos[ans]
+
+    def nll(log_tau):
+        lp = log_probabilities(s, mask, np.exp(log_tau))
+        return -lp[np.arange(len(pos)), pos].sum()
+
+    res = minimize_scalar(nll, bounds=LOG_TAU_BOUNDS, method="bounded", options={"xatol": 1e-6})
+    return float(np.exp(res.x))
+
+
+class _ScoreBaseline:
+    """A fixed score per option and a fitted temperature."""
+
+    n_params = 1
+
+    def __init__(self):
+        self.tau = None
+
+    def scores(self, design: TrialDesign) -> np.ndarray:  # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def fit(self, design: TrialDesign, rng=None):
+        self.tau = _fit_tau(self.scores(design), design)
+        return self
+
+    def log_probabilities(self, design: TrialDesign) -> np.ndarray:
+        return log_probabilities(self.scores(design), design.opt_mask, self.tau)
+
+    def params(self) -> dict:
+        return {"tau": self.tau}
+
+
+class Frequency(_ScoreBaseline):
+    name = "frequency"
+
+    def __init__(self, graph: ModelGraph, episodes=None):
+        super().__init__()
+        self.graph = graph
+        self.source = "episodes" if episodes is not None else (
+            "graph counts" if graph.counts is not None else "capped graph")
+        if episodes is not None:
+            self.n_hdp, self.n_hp, self.n_p = Counter(), Counter(), Counter()
+            for e in episodes:
+                p = e.get("place")
+                if p is None or e.get("hour") is None:
+                    continue
+                h, d, p = int(e["hour"]), e.get("weekday"), str(p)
+                self.n_hdp[(h, None if d is None else int(d), p)] += 1
+                self.n_hp[(h, p)] += 1
+                self.n_p[p] += 1
+        else:
+            self.n_hdp = None
+
+    def scores(self, design: TrialDesign) -> np.ndarray:
+        out = np.zeros(design.opt_mask.shape)
+        if self.n_hdp is not None:
+            for t, opts in enumerate(design.options):
+                h, d = int(design.hours[t]), int(design.weekdays[t])
+                for j, p in enumerate(opts):
+                    out[t, j] = self.n_hdp[(h, d, p)] + 1e-3 * self.n_hp[(h, p)] + 1e-6 * self.n_p[p]
+            return np.log1p(out)
+        mat = self.graph.counts if self.graph.counts is not None else self.graph.capped
+        idx = self.graph.index
+        for t, opts in enumerate(design.options):
+            hi = idx.get(("hour", str(int(design.hours[t]))))
+            di = idx.get(("weekday", str(int(design.weekdays[t]))))
+            for j, p in enumerate(opts):
+                pi = idx.get((PLACE, p))
+                if pi is None:
+                    continue
+                out[t, j] = (mat[hi, pi] if hi is not None else 0.0) + (mat[di, pi] if di is not None else 0.0)
+        return np.log1p(out)
+
+
+class Centrality(_ScoreBaseline):
+    name = "centrality"
+
+    def __init__(self, graph: ModelGraph):
+        super().__init__()
+        self.graph = graph
+        self._last = (None, None)
+
+    def scores(self, design: TrialDesign) -> np.ndarray:
+        if self._last[0] is not design:  # identity, not id(): ids are reused after collection
+            cache = ActivationCache(self.graph, design)
+            self._last = (design, cache.activations(np.ones(len(self.graph.type_pairs)), 0.0))
+        return self._last[1]
+
+
+class EigenModel:
+    """The cue-biased eigenvector model fitted by maximum likelihood (L-BFGS-B, restarts)."""
+
+    def __init__(self, spec: ModelSpec, restarts: int = 4, seed: int = 0, maxiter: int = 200):
+        self.spec = spec
+        self.name = spec.name
+        self.restarts = int(restarts)
+        self.seed = int(seed)
+        self.maxiter = int(maxiter)
+        self.p = None
+        self.nll = None
+        self.runs = []
+
+    @property
+    def n_params(self) -> int:
+        return self.spec.n_params
+
+    def fit(self, design: TrialDesign, rng=None):
+        rng = np.random.default_rng(self.seed) if rng is None else rng
+        cache = ActivationCache(self.spec.graph, design)
+        starts = [self.spec.start()] + [self.spec.start(rng) for _ in range(self.restarts - 1)]
+        best, self.runs = None, []
+        f = lambda p: nll_and_grad(self.spec, cache, p)  # noqa: E731
+        for p0 in starts:
+            res = minimize(f, p0, jac=True, method="L-BFGS-B", bounds=self.spec.bounds(),
+                           options={"maxiter": self.maxiter})
+            self.runs.append({"nll": float(res.fun), "converged": bool(res.success), "nit": int(res.nit)})
+            if best is None or res.fun < best.fun:
+                best = res
+        self.p, self.objective = best.x, float(best.fun)
+        self.nll = float(negative_log_likelihood(self.spec, cache, best.x))
+        self.converged = bool(best.success)
+        self.n_eigh = cache.n_eigh
+        return self
+
+    def log_probabilities(self, design: TrialDesign) -> np.ndarray:
+        return model_log_probabilities(self.spec, ActivationCache(self.spec.graph, design), self.p)
+
+    def unpacked(self):
+        return self.spec.unpack(self.p)
+
+    def params(self) -> dict:
+        theta, beta, tau = self.unpacked()
+        return {"theta": self.spec.theta_dict(theta), "beta": beta, "tau": tau}
+
+
+def default_predictors(graph: ModelGraph, *, episodes=None, restarts: int = 4, seed: int = 0) -> dict:
+    """The model and every baseline, by name, in report order."""
+    return {
+        "model": EigenModel(ModelSpec.full(graph), restarts=restarts, seed=seed),
+        "chance": Chance(),
+        "frequency": Frequency(graph, episodes),
+        "centrality": Centrality(graph),
+        "time_links": EigenModel(ModelSpec.time_links(graph), restarts=restarts, seed=seed + 1),
+    }

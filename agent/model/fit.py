@@ -1,0 +1,247 @@
+"""Fit the model to the participant's own choices and report it beside the baselines.
+
+:func:`fit_model` fits the cue-biased eigenvector model on every answered trial
+(the reported parameters), then cross-validates the model and each baseline on
+the same day folds (the reported metrics).  The likelihood is that of the
+participant's *choices*; the true place is used only to score accuracy.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import DataError
+from .baselines import default_predictors
+from .crossval import chance_metrics, cross_validate
+from .design import TrialDesign, as_model_graph
+
+DEFAULT_FOLDS = 5
+DEFAULT_RESTARTS = 4
+BASELINES = ("chance", "frequency", "centrality", "time_links")
+LABELS = {"model": "cue-biased eigenvector", "chance": "chance (1/options)",
+          "frequency": "frequency (hour x weekday)", "centrality": "centrality (beta = 0)",
+          "time_links": "time-place links only"}
+
+
+@dataclass
+class FitResult:
+    """Fitted parameters, cross-validated metrics of the model and of every baseline."""
+
+    params: dict
+    cv: dict
+    baselines: dict
+    n_trials: int
+    n_answered: int
+    n_skipped: int
+    fit: dict = field(default_factory=dict)
+    chance_level: dict = field(default_factory=dict)
+    participant_accuracy: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
+
+    def to_dict(self) -> dict:
+        """JSON-ready record (``docs/architecture.md``, Model; stored as vault ``fits/latest``)."""
+        return _plain({
+            "params": self.params, "cv": self.cv, "baselines": self.baselines,
+            "n_trials": self.n_trials, "n_answered": self.n_answered, "n_skipped": self.n_skipped,
+            "fit": self.fit, "chance_level": self.chance_level,
+            "participant_accuracy": self.participant_accuracy, "notes": self.notes,
+        })
+
+    def table(self) -> str:
+        return render_table(self.to_dict())
+
+
+def _plain(o):
+    if isinstance(o, dict):
+        return {str(k): _plain(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_plain(v) for v in o]
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return [_plain(v) for v in o.tolist()]
+    if isinstance(o, float) and not np.isfinite(o):
+        return None
+    return o
+
+
+def _policy_int(policy, section, key, default):
+    if policy is None:
+        return default
+    return int(getattr(getattr(policy, section), key))
+
+
+def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episodes=None,
+              folds: int | None = None, restarts: int | None = None) -> FitResult:
+    """Fit the model on the participant's choices; cross-validate it and the baselines.
+
+    Parameters
+    ----------
+    graph : CooccurrenceGraph or ModelGraph
+        Anything with ``capped``, ``kinds`` and ``index``.
+    trials_with_answers : sequence of dict
+        Trials (Quiz contract) each with a ``choice`` (``None``: skipped).
+    policy : Policy, optional
+        ``model.folds`` and ``model.restarts`` (defaults 5 and 4).
+    seed : int
+        Seeds restarts, fold assignment and bootstrap.
+    episodes : sequence of dict, optional
+        For the frequency baseline; without them the graph's counts are used.
+    """
+    from threadpoolctl import threadpool_limits
+
+    # graphs here have tens to hundreds of nodes: one BLAS thread is faster than
+    # several (thread start-up dominates an eigh of that size)
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts)
+
+
+def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts) -> FitResult:
+    t0 = time.perf_counter()
+    mg = as_model_graph(graph)
+    if not mg.type_pairs:
+        raise DataError("fit: the graph has no edges; nothing to fit")
+    design = TrialDesign(mg, trials_with_answers)
+    n_ans = int(design.answered.sum())
+    if n_ans == 0:
+        raise DataError("fit: no answered trials (every trial was skipped or none exist)")
+    k = folds if folds is not None else _policy_int(policy, "model", "folds", DEFAULT_FOLDS)
+    r = restarts if restarts is not None else _policy_int(policy, "model", "restarts", DEFAULT_RESTARTS)
+    notes = []
+
+    preds = default_predictors(mg, episodes=episodes, restarts=r, seed=seed)
+    full = default_predictors(mg, restarts=r, seed=seed)["model"].fit(design.subset(np.flatnonzero(design.answered)),
+                              rng=np.random.default_rng([seed, 12345]))
+    theta, beta, tau = full.unpacked()
+    params = {"theta": full.spec.theta_dict(theta), "beta": beta, "tau": tau,
+              "reference_pair": _ref_name(full.spec), "activation": "sqrt(n) * unit-norm eigenvector"}
+    t_full = time.perf_counter() - t0
+
+    cv_all = cross_validate(preds, design, k, seed)
+    fold_sizes = cv_all.pop("_folds")
+    if len(fold_sizes) < k:
+        notes.append(f"only {len(fold_sizes)} days with answers: {len(fold_sizes)} folds instead of {k}")
+    if design.missing_options:
+        notes.append(f"{design.missing_options} option places are not in the graph (activation 0)")
+    no_cue = int((design.cue_w.sum(axis=1) == 0).sum())
+    if no_cue:
+        notes.append(f"{no_cue} trials have no cue node in the graph (centrality only)")
+    if preds["frequency"].source != "episodes":
+        notes.append(f"frequency baseline from {preds['frequency'].source} (no episodes given)")
+
+    rows = np.flatnonzero(design.answered)
+    ans = design.answered
+    pa = (design.choice_pos[ans] == design.correct_pos[ans]).sum()
+    from .crossval import _prop
+
+    return FitResult(
+        params=params,
+        cv=cv_all["model"],
+        baselines={name: cv_all[name] for name in BASELINES},
+        n_trials=len(design), n_answered=n_ans, n_skipped=len(design) - n_ans,
+        fit={"nll": full.nll, "n_params": full.n_params, "restarts": r, "runs": full.runs,
+             "converged": full.converged, "folds": len(fold_sizes), "fold_sizes": fold_sizes,
+             "seconds_full_fit": round(t_full, 3), "seconds_total": round(time.perf_counter() - t0, 3),
+             "n_nodes": mg.n, "type_pairs": [f"{a}|{b}" for a, b in mg.type_pairs]},
+        chance_level=chance_metrics(design, rows),
+        participant_accuracy=_prop(pa, n_ans),
+        notes=notes,
+    )
+
+
+def _ref_name(spec):
+    return None if spec.reference is None else "|".join(spec.graph.type_pairs[spec.reference])
+
+
+def _fmt_prop(m) -> str:
+    v, ci = m.get("value"), m.get("ci") or [None, None]
+    if v is None:
+        return "-"
+    lo, hi = ci
+    return f"{v:5.3f} [{lo:4.2f}, {hi:4.2f}]" if lo is not None else f"{v:5.3f}"
+
+
+def _fmt_ll(m) -> str:
+    v, ci = m.get("value"), m.get("ci") or [None, None]
+    if v is None:
+        return "-"
+    lo, hi = ci
+    return f"{v:6.3f} [{lo:5.2f}, {hi:5.2f}]" if lo is not None else f"{v:6.3f}"
+
+
+def render_table(d: dict) -> str:
+    """Plain-text table: model vs each baseline, held-out, with 95 % intervals."""
+    p = d["params"]
+    lines = [f"memory model fit: {d['n_answered']} answered trials ({d['n_skipped']} skipped), "
+             f"{d['fit'].get('folds')}-fold cross-validation by day",
+             "",
+             f"{'predictor':<28} {'agreement [95% CI]':<22} {'accuracy [95% CI]':<22} "
+             f"{'held-out loglik [95% CI]':<24}"]
+    rows = [("model", d["cv"])] + list(d["baselines"].items())
+    for name, res in rows:
+        pooled = res["pooled"]
+        lines.append(f"{LABELS.get(name, name):<28} {_fmt_prop(pooled['agreement']):<22} "
+                     f"{_fmt_prop(pooled['accuracy']):<22} {_fmt_ll(pooled['loglik']):<24}")
+    cl = d.get("chance_level", {})
+    if cl:
+        lines.append(f"{'(chance level)':<28} {cl['agreement']:5.3f}{'':<17} {cl['agreement']:5.3f}"
+                     f"{'':<17} {cl['loglik']:6.3f}")
+    pa = d.get("participant_accuracy")
+    if pa:
+        lines.append(f"{'(participant accuracy)':<28} {'':<22} {_fmt_prop(pa):<22}")
+    lines += ["", "parameters (fitted on all answered trials; "
+                  f"{p.get('reference_pair')} fixed to 1):"]
+    for key, val in sorted(p["theta"].items()):
+        lines.append(f"  theta[{key}] = {val:.4g}")
+    lines.append(f"  beta = {p['beta']:.4g}   tau = {p['tau']:.4g}")
+    for note in d.get("notes", []):
+        lines.append(f"note: {note}")
+    return "\n".join(lines)
+
+
+def load_home_inputs(home):
+    """Trials joined with answers, and episodes, from the home's vault."""
+    from ..vault import Vault
+    from .design import join_answers
+
+    v = Vault.open(home)
+    try:
+        trials = [obj for _, obj in v.items("trials")]
+        answers = {rid: obj for rid, obj in v.items("answers")}
+        episodes = [obj for _, obj in v.items("episodes")]
+    finally:
+        close = getattr(v, "close", None)
+        if close:
+            close()
+    return join_answers(trials, answers), episodes
+
+
+def fit_from_home(home, policy=None, seed: int = 0, *, store: bool = True) -> FitResult:
+    """Fit from the home's vault (trials, answers, episodes) and store ``fits/latest``."""
+    from ..graph import CooccurrenceGraph
+    from ..home import Home
+
+    home = home if isinstance(home, Home) else Home(home)
+    if policy is None:
+        policy = home.load_policy()
+    rows, episodes = load_home_inputs(home)
+    if not rows:
+        raise DataError(f"{home.vault_path}: no quiz trials stored yet; run the quiz first")
+    if not episodes:
+        raise DataError(f"{home.vault_path}: no episodes stored; the graph cannot be built")
+    graph = CooccurrenceGraph.from_episodes(episodes, policy)
+    result = fit_model(graph, rows, policy, seed=seed, episodes=episodes)
+    if store:
+        from ..vault import Vault
+
+        v = Vault.open(home)
+        try:
+            v.upsert("fits", "latest", result.to_dict())
+        finally:
+            close = getattr(v, "close", None)
+            if close:
+                close()
+    return result
