@@ -303,3 +303,68 @@ def test_rollback_then_agent_continues(built, tmp_path):
     shutil.copy(old, home.ledger_path)
     Ledger(home, Keystore(home).device_key()).append("agent_start")
     assert check(home).messages() == ["entries 13 to 15 missing"]
+
+
+# -- property: any change of meaning is detected ---------------------------------
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+_EDIT_BYTES = st.sampled_from(b"0123456789abcdef\"{}[]:,.-eEtrunlsx ")
+
+
+@st.composite
+def tampering(draw):
+    op = draw(st.sampled_from(["delete", "swap", "edit", "duplicate", "truncate", "prefix"]))
+    return op, draw(st.integers(0, 10 ** 6)), draw(st.integers(0, 10 ** 6)), draw(_EDIT_BYTES)
+
+
+def _apply(data: bytes, op, a, b, byte) -> bytes:
+    ls = data.splitlines(keepends=True)
+    n = len(ls)
+    if op == "delete":
+        del ls[a % n]
+    elif op == "swap":
+        i, j = a % n, b % n
+        if i == j:
+            j = (i + 1) % n
+        ls[i], ls[j] = ls[j], ls[i]
+    elif op == "duplicate":
+        i = a % n
+        ls.insert(b % (n + 1), ls[i])
+    elif op == "edit":
+        line = bytearray(ls[a % n])
+        k = b % (len(line) - 1)  # never the newline
+        line[k] = byte if line[k] != byte else (byte + 1) % 128 or 49
+        ls[a % n] = bytes(line)
+    elif op == "truncate":
+        return data[: a % len(data)]
+    elif op == "prefix":
+        return b"".join(ls[: a % n])
+    return b"".join(ls)
+
+
+def _meaning(data: bytes):
+    out = []
+    for line in data.splitlines():
+        try:
+            out.append(json.loads(line))
+        except ValueError:
+            out.append(None)
+    return out
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(t=tampering())
+def test_any_change_of_meaning_is_detected(built, t):
+    home, _ = built
+    if not hasattr(home, "_pristine"):
+        home._pristine = home.ledger_path.read_bytes()
+    original = home._pristine
+    changed = _apply(original, *t)
+    home.ledger_path.write_bytes(changed)
+    r = check(home)
+    # A byte edit may yield the same JSON value (say 1790000000.0 -> 1790000000e0):
+    # that changes nothing and may verify; every other change must not.
+    assert (not r.ok) or _meaning(changed) == _meaning(original), (t, r.problems)
+    home.ledger_path.write_bytes(original)
