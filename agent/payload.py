@@ -116,23 +116,40 @@ def _num(v) -> float | None:
 
 
 def _numeric_map(d) -> dict:
-    """Only the finite numeric leaves of a flat mapping with name-like keys."""
+    """Flatten one level of metrics into ``{name: number}``.
+
+    A number stays as it is; an interval record ``{"value", "k", "ci": [lo, hi]}``
+    (as ``agent/model/crossval.py`` writes them) becomes ``name``, ``name_k``,
+    ``name_ci_low`` and ``name_ci_high``.  Strings, lists and anything deeper
+    are left on the device.
+    """
     if not isinstance(d, Mapping):
         return {}
     out = {}
     for k, v in d.items():
-        if isinstance(k, str) and _NAME.match(k):
-            n = _num(v)
-            if n is not None:
-                out[k] = n
+        if not (isinstance(k, str) and _NAME.match(k)) or k.startswith("_"):
+            continue
+        n = _num(v)
+        if n is not None:
+            out[k] = n
+        elif isinstance(v, Mapping) and "value" in v:
+            if _num(v.get("value")) is not None:
+                out[k] = _num(v["value"])
+            if _num(v.get("k")) is not None:
+                out[f"{k}_k"] = _num(v["k"])
+            ci = v.get("ci")
+            if isinstance(ci, (list, tuple)) and len(ci) == 2 and all(_num(c) is not None for c in ci):
+                out[f"{k}_ci_low"], out[f"{k}_ci_high"] = _num(ci[0]), _num(ci[1])
     return out
 
 
 def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
     """The exported part of a ``FitResult.to_dict()``: numbers only, exported type pairs only.
 
-    Anything that is not a finite number at a known position (per-trial lists,
-    strings, nested objects) is left behind on the device.
+    ``cv`` and each baseline are ``{"folds": [...], "pooled": {...}}`` of metric
+    records; they are flattened with :func:`_numeric_map`.  Anything that is not
+    a finite number at a known position (fold dates, notes, per-trial lists,
+    nested objects) is left behind on the device.
     """
     if not fit:
         return None
@@ -145,8 +162,9 @@ def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
             theta[f"{a}|{b}"] = n
     out_params = {"theta": theta}
     for k in ("beta", "tau"):
-        n = _num(params.get(k))
-        out_params[k] = n
+        out_params[k] = _num(params.get(k))
+    ref = params.get("reference_pair")
+    out_params["reference_pair"] = ref if isinstance(ref, str) and ref in theta else None
     cv = fit.get("cv") or {}
     folds = [_numeric_map(f) for f in (cv.get("folds") or []) if isinstance(f, Mapping)]
     baselines = {}
@@ -154,9 +172,11 @@ def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
         if not (isinstance(name, str) and _NAME.match(name)):
             continue
         if isinstance(b, Mapping):
-            baselines[name] = _numeric_map(b)
+            baselines[name] = _numeric_map(b["pooled"] if isinstance(b.get("pooled"), Mapping) else b)
         elif _num(b) is not None:
             baselines[name] = {"value": _num(b)}
+    if isinstance(fit.get("chance_level"), Mapping) and "chance_level" not in baselines:
+        baselines["chance_level"] = _numeric_map(fit["chance_level"])
     n_trials = fit.get("n_trials")
     return {"params": out_params, "cv": {"pooled": _numeric_map(cv.get("pooled")), "folds": folds},
             "baselines": baselines, "n_trials": int(n_trials) if isinstance(n_trials, int) else None}
@@ -432,7 +452,8 @@ _NUMMAP = _map(_NAME, "a metric name", _numv)
 def _model(v, p):
     _obj(v, p, {
         "params": lambda d, q: _obj(d, q, {"theta": _map(_PAIR, "'kind|kind'", _numv),
-                                           "beta": _nullable(_numv), "tau": _nullable(_numv)}),
+                                           "beta": _nullable(_numv), "tau": _nullable(_numv),
+                                           "reference_pair": _nullable(_str_rx(_PAIR, "'kind|kind'"))}),
         "cv": lambda d, q: _obj(d, q, {"pooled": _NUMMAP, "folds": _list(_NUMMAP, 100)}),
         "baselines": _map(_NAME, "a baseline name", _NUMMAP),
         "n_trials": _nullable(_int(0)),

@@ -36,10 +36,29 @@ LEDGER = {"counts": {"audio.received": 10, "audio.destroyed": 10}, "max_exposure
           "median_exposure_s": 0.7, "p95_exposure_s": 1.2, "violations": 0,
           "head": {"seq": 42, "hash": "ab" * 32}}
 
-FIT = {"params": {"theta": {"hour|place": 1.2, "place|sound": 0.3, "mood|place": 0.1}, "beta": 2.0, "tau": 0.5},
-       "cv": {"folds": [{"loglik": -10.0, "accuracy": 0.5}], "pooled": {"loglik": -50.0, "accuracy": 0.45,
-                                                                        "agreement": 0.6}},
-       "baselines": {"chance": {"accuracy": 0.25}, "frequency": {"accuracy": 0.4}}, "n_trials": 20}
+def _m(v, k=None, n=18):
+    """A metric record in the shape agent/model/crossval.py writes."""
+    out = {"value": v, "ci": [max(0.0, v - 0.2), min(1.0, v + 0.2)]}
+    if k is not None:
+        out["k"] = float(k)
+    return out
+
+
+def _pooled(agree, acc):
+    return {"n": 18, "n_days": 6, "agreement": _m(agree, round(agree * 18)), "accuracy": _m(acc, round(acc * 18)),
+            "loglik": {"value": -1.1, "ci": [-1.3, -0.9]}}
+
+
+# The shape of FitResult.to_dict() (agent/model/fit.py), with fictional numbers.
+FIT = {"params": {"theta": {"hour|place": 1.2, "place|sound": 0.3, "mood|place": 0.1}, "beta": 2.0, "tau": 0.5,
+                  "reference_pair": "hour|place", "activation": "sqrt(n) * unit-norm eigenvector"},
+       "cv": {"folds": [{**_pooled(0.5, 0.5), "fold": 0, "days": ["2025-11-20", "2025-11-21"]}],
+              "pooled": _pooled(0.6, 0.45)},
+       "baselines": {"chance": {"folds": [], "pooled": _pooled(0.25, 0.25)},
+                     "frequency": {"folds": [], "pooled": _pooled(0.4, 0.4)}},
+       "n_trials": 20, "n_answered": 18, "n_skipped": 2,
+       "fit": {"nll": 20.1, "type_pairs": ["hour|place"]}, "chance_level": {"agreement": 0.25, "loglik": -1.386},
+       "participant_accuracy": _m(0.5, 9), "notes": ["only 6 days with answers"]}
 
 QUIZ = {"issued": 20, "answered": 18, "skipped": 2, "pending": 0, "correct": 9, "chance": 0.25,
         "accuracy": 0.5, "p_value": 0.01}

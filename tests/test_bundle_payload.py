@@ -136,3 +136,18 @@ def test_merge_rule_payload_validates_and_previews():
     p = make_payload(pol)
     assert p["counts"]["pairs"]["other"] == 14 + 17 + 17 + 17 + 17 + 17  # every mood pair is below 20
     assert "all the small pairs together" in preview(p)
+
+
+def test_project_fit_flattens_interval_metrics():
+    out = project_fit(FIT, ["hour", "place", "sound", "mood"])
+    assert out["cv"]["pooled"]["agreement"] == 0.6
+    assert out["cv"]["pooled"]["agreement_ci_low"] == pytest.approx(0.4)
+    assert out["baselines"]["frequency"]["accuracy"] == 0.4
+    assert out["baselines"]["chance_level"]["agreement"] == 0.25
+    assert out["params"]["reference_pair"] == "hour|place"
+    assert "days" not in out["cv"]["folds"][0] and out["cv"]["folds"][0]["fold"] == 0
+    assert "2025-11-20" not in json.dumps(out)  # fold dates stay on the device
+
+
+def test_quiz_agreement_from_the_model():
+    assert make_payload()["quiz"]["agreement"] == 0.6
