@@ -783,3 +783,17 @@ def test_snippets_of_one_type_vary_in_level_and_events():
         levels = [10 * np.log10(np.mean(x * x)) for x in xs]
         assert np.ptp(levels) > 2.0  # per-snippet level variation (dB)
         assert not np.allclose(xs[0], xs[1])
+
+
+def test_routine_keeps_wall_clock_times_on_the_clock_change_day(scenario):
+    # zoneinfo: on Sunday 25 October 2026 the Azores day has 25 hours; the bakery
+    # trip at 09:30 local must stay near 09:30 local, not shift by an hour.
+    tz = ZoneInfo("Atlantic/Azores")
+    hours = []
+    for seed in range(20):
+        tl = simulate_days(scenario, START, 2, seed=seed)
+        for v in tl.visits:
+            local = datetime.fromtimestamp(v["t_start"], tz)
+            if v["place_id"] == "bakery" and local.day == 25:
+                hours.append(local.hour + local.minute / 60)
+    assert len(hours) >= 5 and 9.05 < np.median(hours) < 10.2  # an hour early would be about 8.5

@@ -247,6 +247,15 @@ def _local_midnights(tz, d0: date, days: int) -> list[float]:
     return [datetime.combine(d0 + timedelta(days=i), dtime(0, 0), tz).timestamp() for i in range(days + 1)]
 
 
+def local_clock(tz, day: date, minutes: float) -> float:
+    """UTC of a local wall-clock time ``minutes`` after midnight on ``day``.
+
+    Wall-clock arithmetic (aware datetime plus timedelta), so 09:00 stays 09:00
+    on a day with a clock change; an ambiguous time takes its first occurrence.
+    """
+    return (datetime.combine(day, dtime(0, 0), tz) + timedelta(minutes=float(minutes))).timestamp()
+
+
 class _Walker:
     """Builds the gap-free segment list while the simulated day unfolds."""
 
@@ -291,9 +300,10 @@ class _Walker:
         return arrive
 
 
-def _plan_day(sc: Scenario, rng, weekday: int, midnight: float) -> list[tuple[float, float, object]]:
+def _plan_day(sc: Scenario, rng, day: date) -> list[tuple[float, float, object]]:
     """Activities happening today as (start, duration, activity), by start time."""
     ir = sc.irregularity
+    weekday = day.weekday()
     chosen, groups = [], {}
     for a in sc.routine:
         if weekday not in a.days:
@@ -315,7 +325,7 @@ def _plan_day(sc: Scenario, rng, weekday: int, midnight: float) -> list[tuple[fl
         if rng.random() < ir["late_probability"]:
             start += rng.uniform(10, max(ir["late_minutes_max"], 10))
         dur = max(a.duration_min + (rng.normal(0, a.duration_jitter_min) if a.duration_jitter_min else 0), 25.0)
-        plan.append((midnight + 60.0 * start, 60.0 * dur, a))
+        plan.append((local_clock(sc.tz, day, start), 60.0 * dur, a))
     plan.sort(key=lambda x: x[0])
     return plan
 
@@ -353,13 +363,13 @@ def simulate_days(scenario: Scenario, start_utc: float, days: int, seed: int) ->
     w = _Walker(scenario, rng, mids[0])
     sick_days = []
     for i in range(int(days)):
-        weekday = (d0 + timedelta(days=i)).weekday()
+        day = d0 + timedelta(days=i)
         sick = rng.random() < ir["sick_day_probability"]
-        plan = _plan_day(scenario, rng, weekday, mids[i])
+        plan = _plan_day(scenario, rng, day)
         if sick:
             sick_days.append(i)
             plan = []
-        latest = mids[i] + 60.0 * ir["latest_start_min"]
+        latest = local_clock(tz, day, ir["latest_start_min"])
         for start, dur, act in plan:
             if act.place == w.place:
                 w.free_at = max(w.free_at, start + dur)
@@ -762,7 +772,8 @@ def _write_mood(tl, day, t0, t1, inbox, sch, seed):
     sc, md = tl.scenario, tl.scenario.mood
     r = _rng(seed, _S_MOOD, day)
     n = int(sch.mood_prompts_per_day)
-    a, b = t0 + 60.0 * md["prompt_start_min"], t0 + 60.0 * md["prompt_end_min"]
+    today = datetime.fromtimestamp(t0, sc.tz).date()
+    a, b = (local_clock(sc.tz, today, md["prompt_start_min"]), local_clock(sc.tz, today, md["prompt_end_min"]))
     edges = np.linspace(a, b, n + 1)
     slot = (b - a) / n
     prompts = edges[:-1] + r.uniform(0.1, 0.9, n) * slot  # one random time in each slot
