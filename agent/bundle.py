@@ -26,8 +26,10 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import re
 import struct
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -327,10 +329,7 @@ def export_bundle(home, policy=None, now: float | None = None, confirm=lambda pr
     -------
     Path of the bundle, or None when the participant declined.
     """
-    from .disclosure import check_budget
-    from .home import Home, write_private
-    from .keystore import Keystore
-    from .payload import build_payload_and_relabel, preview
+    from .home import Home
     from .study.card import check_policy_approved
 
     home = home if isinstance(home, Home) else Home(home)
@@ -338,6 +337,32 @@ def export_bundle(home, policy=None, now: float | None = None, confirm=lambda pr
     policy = policy or home.load_policy()
     card = card or home_card(home)
     check_policy_approved(card, policy)
+    # One export at a time: the budget check, the sequence number and the record
+    # must not interleave with a second export (the agent itself may keep running).
+    with _export_lock(home):
+        return _export_locked(home, policy, card, now, confirm, vault)
+
+
+@contextmanager
+def _export_lock(home):
+    import fcntl
+
+    home.state.mkdir(parents=True, exist_ok=True, mode=0o700)
+    fd = os.open(home.state / "export.lock", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o600)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(fd)
+
+
+def _export_locked(home, policy, card, now, confirm, vault):
+    from .disclosure import check_budget
+    from .home import write_private
+    from .keystore import Keystore
+    from .ledger import Ledger
+    from .payload import build_payload_and_relabel, preview
+
     own_vault = vault is None
     if own_vault:
         from .vault import Vault
@@ -364,12 +389,7 @@ def export_bundle(home, policy=None, now: float | None = None, confirm=lambda pr
                 relabel.save(vault)
         path = home.outbox / bundle_name(seq)
         write_private(path, data)
-        try:
-            from .ledger import Ledger
-
-            Ledger(home, signing_key=device_key).append("exported", bundle_seq=seq, digest=digest)
-        except ImportError:  # pragma: no cover - ledger not installed
-            pass
+        Ledger(home, signing_key=device_key).append("exported", bundle_seq=seq, digest=digest)
         return path
     finally:
         if own_vault:
