@@ -149,3 +149,26 @@ def test_canaries_in_the_vault_do_not_leave(tmp_path):
     for canary in ("Canary", "38.765", "27.123", "1764590000", "440.123", "31.4159"):
         assert canary not in opened, canary
         assert canary.encode() not in path.read_bytes(), canary
+
+
+def test_concurrent_exports_cannot_overspend(tmp_path):
+    # Two exports racing for the last epsilon: exactly one is sealed, the other refused.
+    import threading
+
+    home, _ = make_world(tmp_path, dp_policy_text(1.0, 1.0))
+    results, barrier = [], threading.Barrier(2)
+
+    def run():
+        barrier.wait()
+        try:
+            results.append(export_bundle(home, now=NOW).name)
+        except BudgetError as e:
+            results.append(type(e).__name__)
+
+    threads = [threading.Thread(target=run) for _ in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert sorted(results) == ["BudgetError", "bundle-000001.lethe"]
+    assert [p.name for p in home.outbox.iterdir()] == ["bundle-000001.lethe"]
