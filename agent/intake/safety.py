@@ -264,27 +264,51 @@ class InboxDir:
             refers to another file (which is then left alone).
         """
         _check_name(name)
-        if opened is None and expect is None:
-            raise ValueError("destroy() needs the file's identity: pass opened= or expect=")
         try:
             if opened is not None:
-                ident, strict = os.fstat(opened.fd), False  # held open: the inode cannot be reused
-                # Never overwrite bytes that another name shares (a hardlink made meanwhile).
-                if opened.writable and stat.S_ISREG(ident.st_mode) and ident.st_nlink == 1 and ident.st_size > 0:
-                    _overwrite(opened.fd, ident.st_size)
-            else:
-                ident, strict = expect, True
-            now = self.lstat(name)
-            if now is None or not same_file(now, ident, strict=strict):
-                return False
-            if stat.S_ISDIR(now.st_mode):
-                return False  # never remove a directory
-            os.unlink(name, dir_fd=self.fd)
-            self.fsync()
-            return True
+                self.overwrite(opened)
+            removed = self.unlink_checked(name, opened, expect)
+            if removed:
+                self.fsync()
+            return removed
         finally:
             if opened is not None:
                 opened.close()
+
+    def overwrite(self, opened: OpenedFile) -> bool:
+        """Zeros over the file through its descriptor, fsync'd; False when not done.
+
+        Skipped when the descriptor is read-only or the inode has gained
+        another link (those bytes belong to another name too).
+        """
+        if opened is None or opened.fd < 0 or not opened.writable:
+            return False
+        st = os.fstat(opened.fd)
+        if not stat.S_ISREG(st.st_mode) or st.st_nlink != 1 or st.st_size == 0:
+            return False
+        return _overwrite(opened.fd, st.st_size)
+
+    def unlink_checked(self, name: str, opened: OpenedFile | None = None,
+                       expect: os.stat_result | None = None) -> bool:
+        """Unlink ``name`` only if it still is the file we hold (or, unopened, the one ``lstat`` saw).
+
+        The directory is not fsynced here (see :meth:`fsync`), so a group of
+        unlinks shares one directory fsync.
+        """
+        _check_name(name)
+        if opened is not None and opened.fd >= 0:
+            ident, strict = os.fstat(opened.fd), False  # held open: the inode cannot be reused
+        elif expect is not None:
+            ident, strict = expect, True
+        else:
+            raise ValueError("unlink_checked() needs the file's identity: pass opened= or expect=")
+        now = self.lstat(name)
+        if now is None or not same_file(now, ident, strict=strict):
+            return False
+        if stat.S_ISDIR(now.st_mode):
+            return False  # never remove a directory
+        os.unlink(name, dir_fd=self.fd)
+        return True
 
     def fsync(self) -> None:
         try:
@@ -293,19 +317,24 @@ class InboxDir:
             pass  # some file systems cannot fsync a directory; the unlink still happened
 
 
-def _overwrite(fd: int, size: int) -> None:
-    """Zeros over the whole file, then fsync.  Best effort (see docs/intake.md, limits of deletion)."""
+def _overwrite(fd: int, size: int) -> bool:
+    """Zeros over the whole file, then fsync.  Best effort (see docs/intake.md, limits of deletion).
+
+    The fsync matters: dirty pages of an inode that is unlinked next may be
+    dropped without ever being written, leaving the old blocks as they were.
+    """
     zeros = b"\0" * min(size, _CHUNK)
     offset = 0
     try:
         while offset < size:
             n = os.pwrite(fd, zeros[: min(size - offset, len(zeros))], offset)
             if n <= 0:
-                break
+                return False
             offset += n
         os.fsync(fd)
     except OSError:
-        pass
+        return False
+    return True
 
 
 def _check_name(name: str) -> None:

@@ -283,34 +283,41 @@ class InboxWatcher:
                 p.sig, p.due = sig, now + self.settle_s
 
     def _process_ready(self) -> None:
+        from .pipeline import BATCH_FILES
+
         while True:
-            ready = [(n, p) for n, p in self.pending.items() if p.ready]
+            ready = [n for n, p in self.pending.items() if p.ready]
             if not ready:
                 return
             # Oldest deadline first: the file that has existed longest goes next.
             order = []
-            for name, p in ready:
+            for name in ready:
                 lst = self.intake.inbox.lstat(name)
                 if lst is None:
                     del self.pending[name]
                     continue
-                order.append((min(max(lst.st_mtime, lst.st_ctime), p.first_seen), name))
+                order.append((min(max(lst.st_mtime, lst.st_ctime), self.pending[name].first_seen), name))
             if not order:
                 return
             order.sort()
-            _, name = order[0]
-            del self.pending[name]
-            out = _process_safely(self.intake, name, self.outcomes)
-            if out is not None:
-                self.own_closes[name] = self.own_closes.get(name, 0) + 1
+            names = [n for _, n in order[:BATCH_FILES]]
+            for n in names:
+                del self.pending[n]
+            outs = _process_safely(self.intake, names, self.outcomes)
+            done = set()
+            for out in outs:
+                done.add(out.name)
+                self.own_closes[out.name] = self.own_closes.get(out.name, 0) + 1
                 if self.on_outcome is not None:
                     self.on_outcome(out)
-            elif self.intake.inbox.lstat(name) is not None and not ignored(name):
-                # Changed under us: look again after the settle time.
-                now = time.time()
-                lst = self.intake.inbox.lstat(name)
+            now = time.time()
+            for n in names:
+                if n in done or ignored(n):
+                    continue
+                lst = self.intake.inbox.lstat(n)
                 if lst is not None and not stat.S_ISDIR(lst.st_mode):
-                    self.pending[name] = Pending(first_seen=now, sig=_sig(lst), due=now + self.settle_s)
+                    # Changed under us: look again after the settle time.
+                    self.pending[n] = Pending(first_seen=now, sig=_sig(lst), due=now + self.settle_s)
             # Events that arrived while working may make other files ready.
             while True:
                 try:
