@@ -78,14 +78,23 @@ def librosa_reference(path, sr):
     return m.mean(axis=1)
 
 
-def best_rate(fn, units, repeat=3):
-    """Units per second, best of ``repeat`` runs (the least disturbed by other load)."""
-    best = 0.0
+def best_rate(fn, units, repeat=5):
+    """Units per second: best and median of ``repeat`` timed runs.
+
+    The best run is the least disturbed by other load on a shared machine; the
+    median shows how much that load mattered.
+    """
+    rates = []
     for _ in range(repeat):
         t = time.perf_counter()
         fn()
-        best = max(best, units / (time.perf_counter() - t))
-    return best
+        rates.append(units / (time.perf_counter() - t))
+    return max(rates), float(np.median(rates))
+
+
+def _pair(name, ours, ref):
+    return {name: ours[0], name + "_median": ours[1], "reference_per_s": ref[0],
+            "reference_median": ref[1], "ratio": ours[0] / ref[0]}
 
 
 def bench_audio(policy, n, sr_in, channels):
@@ -94,8 +103,8 @@ def bench_audio(policy, n, sr_in, channels):
     from agent.intake import featurise
 
     items = audio_inputs(n, sr_in, channels)
-    featurise(items[0][0], items[0][1], policy)  # warm: caches, lazy imports
-    ours = best_rate(lambda: [featurise(nm, d, policy) for nm, d in items], n)
+    featurise(items[0][0], items[0][1], policy, now=T0 + 1e7)  # warm: caches, lazy imports
+    ours = best_rate(lambda: [featurise(nm, d, policy, now=T0 + 1e7) for nm, d in items], n)
     with tempfile.TemporaryDirectory() as tmp:
         paths = []
         for nm, d in items:
@@ -105,8 +114,7 @@ def bench_audio(policy, n, sr_in, channels):
             paths.append(p)
         librosa_reference(paths[0], policy.intake.audio_sr)
         ref = best_rate(lambda: [librosa_reference(p, policy.intake.audio_sr) for p in paths], n)
-    return {"input": f"{sr_in} Hz x{channels}", "snippets_per_s": ours, "reference_per_s": ref,
-            "ratio": ours / ref}
+    return {"input": f"{sr_in} Hz x{channels}", **_pair("snippets_per_s", ours, ref)}
 
 
 def bench_resamplers(sr_in=44100, sr_out=16000, n=50):
@@ -121,7 +129,7 @@ def bench_resamplers(sr_in=44100, sr_out=16000, n=50):
             out[rt] = f"unavailable ({type(e).__name__})"
             continue
         out[rt] = best_rate(lambda: [librosa.resample(y, orig_sr=sr_in, target_sr=sr_out, res_type=rt)
-                                     for _ in range(n)], n)
+                                     for _ in range(n)], n)[0]
     return out
 
 
@@ -137,7 +145,7 @@ def bench_accel(policy, n_rows, repeat_files):
     body = data.split(b"\n", 2)[2]
     ref = best_rate(lambda: [np.loadtxt(io.BytesIO(body), delimiter=",") for _ in range(repeat_files)],
                     n_rows * repeat_files)
-    return {"rows_per_file": n_rows, "samples_per_s": ours, "loadtxt_per_s": ref, "ratio": ours / ref}
+    return {"rows_per_file": n_rows, **_pair("samples_per_s", ours, ref)}
 
 
 def main(argv=None):
@@ -150,14 +158,11 @@ def main(argv=None):
     from agent.policy import bundled_policy_path, load_policy
 
     policy = load_policy(bundled_policy_path())
-    t = time.perf_counter()
-    import librosa  # noqa: F401
-    import_s = time.perf_counter() - t
     warm_s = warm_up(policy)
 
     res = {
         "cpu_count": os.cpu_count(),
-        "import_librosa_s": import_s,
+        "load_average_1min": os.getloadavg()[0],
         "warm_up_s": warm_s,
         "audio": [bench_audio(policy, args.n_audio, 16000, 1),
                   bench_audio(policy, args.n_audio, 44100, 2)],
@@ -167,15 +172,19 @@ def main(argv=None):
     if args.json:
         print(json.dumps(res, indent=2))
         return 0
-    print(f"warm_up(): {warm_s:.2f} s (librosa import {import_s:.2f} s)")
+    print(f"{res['cpu_count']} CPUs, load average {res['load_average_1min']:.1f} at start; "
+          "figures are best (median) of 5 runs")
+    print(f"warm_up(): {warm_s:.2f} s")
     for a in res["audio"]:
-        print(f"audio {a['input']:>14}: featurise {a['snippets_per_s']:7.1f} snippets/s | "
-              f"librosa.load + librosa features {a['reference_per_s']:7.1f}/s | ratio {a['ratio']:.2f}")
+        print(f"audio {a['input']:>14}: featurise {a['snippets_per_s']:7.1f} ({a['snippets_per_s_median']:.1f}) "
+              f"snippets/s | librosa.load + librosa features {a['reference_per_s']:7.1f} "
+              f"({a['reference_median']:.1f})/s | ratio {a['ratio']:.2f}")
     for rt, v in res["resample_44k1_to_16k_per_s"].items():
         print(f"resample 3 s 44.1->16 kHz {rt:>11}: " + (f"{v:8.1f}/s" if isinstance(v, float) else v))
     for a in res["accel"]:
-        print(f"accel {a['rows_per_file']:>7} rows/file: featurise {a['samples_per_s'] / 1e6:5.2f} M samples/s | "
-              f"np.loadtxt alone {a['loadtxt_per_s'] / 1e6:5.2f} M/s | ratio {a['ratio']:.2f}")
+        print(f"accel {a['rows_per_file']:>7} rows/file: featurise {a['samples_per_s'] / 1e6:5.2f} "
+              f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s | np.loadtxt alone "
+              f"{a['reference_per_s'] / 1e6:5.2f} ({a['reference_median'] / 1e6:.2f}) M/s | ratio {a['ratio']:.2f}")
     return 0
 
 
