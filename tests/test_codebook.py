@@ -463,3 +463,95 @@ def test_cli_codebook_and_graph(home, default_policy, repo, tmp_path, capsys):
     assert png.read_bytes()[:4] == b"\x89PNG"
     assert main(["--home", str(home.root), "graph"]) == 0
     assert "spectrum capped" in capsys.readouterr().out
+
+
+# -- acceptance on the demo scenario -------------------------------------------------------------
+
+DEMO_DAYS = 7  # one full weekly routine; the 14-day figures are in docs/graph.md
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    """Generator -> inbox -> intake -> codebook -> episodes, on the bundled scenario."""
+    gen = pytest.importorskip("agent.demo.generator",
+                              reason="the demo generator (agent/demo/generator.py) is not available")
+    pipeline = pytest.importorskip("agent.intake.pipeline",
+                                   reason="the intake pipeline (agent/intake/pipeline.py) is not available")
+    import shutil
+
+    from agent.episodes import load_episodes
+    from agent.home import Home
+    from agent.policy import bundled_policy_path
+    from agent.vault import Vault
+
+    home = Home(tmp_path_factory.mktemp("demo") / "home").create()
+    shutil.copy(bundled_policy_path("default"), home.policy_path)
+    policy = home.load_policy()
+    sc = gen.Scenario.load()
+    start = 1793577600.0  # 2026-11-02T00:00Z, a Monday: fixed so the run does not depend on today
+    home.update_config(timezone=sc.timezone, enrolled_at=start)
+    tl = gen.simulate_days(sc, start, DEMO_DAYS, 7)
+    for d in range(DEMO_DAYS):
+        gen.write_day(tl, d, home.inbox, policy, 7)
+        pipeline.drain(home, policy, settle_s=0.0)
+    now = start + DEMO_DAYS * 86400 + 3600
+    with Vault.open(home) as v:
+        report = run_codebook(home, policy, v, now=now, episodes=False)
+        coded = [row for _, row in v.items("coded")]
+        from agent.episodes import build_episodes
+
+        build_episodes(home, policy, v, now=now)
+        episodes = load_episodes(v)
+        tables = v.tables()
+    return {"timeline": tl, "scenario": sc, "coded": coded, "report": report, "episodes": episodes,
+            "policy": policy, "tables": tables}
+
+
+@pytest.mark.slow
+def test_demo_places_match_the_ground_truth(demo_run):
+    # reference: sklearn's adjusted Rand index against the generator's timeline
+    from sklearn.metrics import adjusted_rand_score
+
+    tl = demo_run["timeline"]
+    pairs = [(c["id"], tl.dominant_place(c["t"], c["t_end"])) for c in demo_run["coded"] if c["kind"] == "place"]
+    pairs = [(a, b) for a, b in pairs if b is not None]
+    assert len(pairs) > 30
+    ari = adjusted_rand_score([b for _, b in pairs], [a for a, _ in pairs])
+    assert ari >= 0.9, ari
+
+
+@pytest.mark.slow
+def test_demo_sound_classes_separate_place_types(demo_run):
+    from sklearn.metrics import adjusted_rand_score
+
+    tl, sc = demo_run["timeline"], demo_run["scenario"]
+    rows = [(c["id"], tl.place_at(c["t"] + 1.0)) for c in demo_run["coded"] if c["kind"] == "sound"]
+    rows = [(a, p) for a, p in rows if p is not None]  # snippets recorded during visits
+    assert len(rows) > 100
+    by_type = adjusted_rand_score([sc.places[p].type for _, p in rows], [a for a, _ in rows])
+    by_sound = adjusted_rand_score([sc.places[p].sound for _, p in rows], [a for a, _ in rows])
+    assert by_type >= 0.6, by_type
+    assert by_sound >= 0.6, by_sound
+
+
+@pytest.mark.slow
+def test_demo_features_are_gone_after_coding(demo_run):
+    t = demo_run["tables"]
+    # only stays still pending confirmation remain (and only within feature retention)
+    assert t.get("stays", 0) == demo_run["report"].pending_stays
+    assert t.get("accel_features", 0) == 0
+    assert t.get("episodes", 0) == len(demo_run["episodes"]) > 0
+
+
+@pytest.mark.slow
+def test_demo_capped_graph_is_flatter_and_within_the_cap(demo_run):
+    from agent.graph import CooccurrenceGraph
+    from agent.spectrum import spectrum_report
+
+    policy = demo_run["policy"]
+    g = CooccurrenceGraph.from_episodes(demo_run["episodes"], policy)
+    assert g.degrees("capped").max() <= policy.graph.degree_cap
+    r = spectrum_report(g)
+    flat = {k: round(r[k]["flatness"], 3) for k in r}
+    assert flat["capped"] > flat["binary"] and flat["capped"] > flat["counts"], flat
+    assert r["capped"]["ratio"] < r["counts"]["ratio"], {k: r[k]["ratio"] for k in r}
