@@ -53,6 +53,18 @@ class FitResult:
     def table(self) -> str:
         return render_table(self.to_dict())
 
+    def summary(self) -> dict:
+        """Pooled held-out values only (no per-fold detail), for status lines and the demo."""
+        def pooled(res):
+            p = res["pooled"]
+            return {"agreement": p["agreement"]["value"], "agreement_ci": p["agreement"]["ci"],
+                    "accuracy": p["accuracy"]["value"], "loglik": p["loglik"]["value"]}
+
+        return _plain({"params": {k: self.params[k] for k in ("theta", "beta", "tau")},
+                       "n_answered": self.n_answered, "model": pooled(self.cv),
+                       "baselines": {k: pooled(v) for k, v in self.baselines.items()},
+                       "chance_level": self.chance_level})
+
 
 def _plain(o):
     if isinstance(o, dict):

@@ -1,0 +1,70 @@
+"""``lethe fit`` end to end on a home whose vault holds synthetic trials, answers and episodes."""
+
+import json
+import shutil
+
+import numpy as np
+import pytest
+
+from agent.cli import main
+from agent.errors import EXIT_DATA, EXIT_STATE
+
+
+def _fill(home, repo, n_trials=60):
+    from agent.graph import CooccurrenceGraph
+    from agent.model.design import ModelGraph
+    from agent.model.synthetic import quiz_trials, routine_episodes, simulate_answers
+    from agent.policy import load_policy
+    from agent.vault import Vault
+
+    # the default policy with a quick fit (2 folds, 1 restart) to keep the test short
+    text = (repo / "policies" / "default.toml").read_text()
+    text = text.replace("folds = 5", "folds = 2").replace("restarts = 4", "restarts = 1")
+    home.policy_path.write_text(text)
+    home.write_config({"pseudonym": "test"})
+    policy = load_policy(home.policy_path)
+    assert policy.model.folds == 2
+    eps = routine_episodes(10, seed=1)
+    mg = ModelGraph.from_graph(CooccurrenceGraph.from_episodes(eps, policy))
+    trials = quiz_trials(eps, n_trials, seed=2)
+    rows = simulate_answers(mg, trials, mg.theta_dict(np.ones(len(mg.type_pairs))), 2.0, 0.2, seed=3)
+    v = Vault.open(home)
+    for e in eps:
+        v.put("episodes", e["key"], e)
+    for t, r in zip(trials, rows):
+        v.put("trials", t["trial_id"], t)
+        v.put("answers", t["trial_id"], {"trial_id": t["trial_id"], "choice": r["choice"], "rt_s": 2.0,
+                                          "answered_at": 0.0, "source": "simulated"})
+    v.close()
+
+
+def test_fit_json_stores_latest(home, repo, capsys):
+    from agent.vault import Vault
+
+    _fill(home, repo)
+    assert main(["--home", str(home.root), "fit", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert set(out["baselines"]) == {"chance", "frequency", "centrality", "time_links"}
+    assert out["n_trials"] == 60
+    v = Vault.open(home)
+    stored = v.get("fits", "latest")
+    v.close()
+    assert stored["params"] == out["params"]
+
+
+def test_fit_text_prints_the_table(home, repo, capsys):
+    _fill(home, repo)
+    assert main(["--home", str(home.root), "fit", "--no-store"]) == 0
+    text = capsys.readouterr().out
+    assert "cue-biased eigenvector" in text and "chance" in text
+
+
+def test_fit_without_trials_exits_with_data_error(home, repo, capsys):
+    shutil.copy(repo / "policies" / "default.toml", home.policy_path)
+    home.write_config({"pseudonym": "test"})
+    assert main(["--home", str(home.root), "fit"]) == EXIT_DATA
+    assert "no quiz trials" in capsys.readouterr().err
+
+
+def test_fit_outside_a_home_exits_with_state_error(tmp_path, capsys):
+    assert main(["--home", str(tmp_path / "none"), "fit"]) == EXIT_STATE
