@@ -91,3 +91,12 @@ def test_single_sample_is_too_short(default_policy):
 def test_gravity_free_values_labelled_g_are_bad_unit(default_policy):
     # A median magnitude of 0.02 g cannot be a sensor that senses gravity.
     assert reason(accel(z=0.0), default_policy) == "bad_unit"
+
+
+def test_crlf_line_ends_and_a_byte_order_mark_are_accepted(default_policy):
+    data = b"\xef\xbb\xbf" + accel().replace(b"\n", b"\r\n")
+    assert read_accel(NAME, data, default_policy, now=NOW).t.shape == (600,)
+
+
+def test_header_without_samples_is_too_short(default_policy):
+    assert reason(b"# unit=g\ntime,x,y,z\n", default_policy) == "too_short"

@@ -148,3 +148,7 @@ def test_riff_that_is_not_wave_is_not_audio(default_policy):
 def test_wav_header_followed_by_garbage_is_truncated(default_policy):
     data = encode(tone(), 16000)[:12] + np.random.default_rng(1).bytes(4000)
     assert rejected(NAME, data, default_policy).reason == "truncated"
+
+
+def test_implausible_sample_rate_is_a_bad_header(default_policy):
+    assert rejected(NAME, encode(tone(sr=4000), 4000), default_policy).reason == "bad_header"

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import io
 import re
+import warnings as _warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -69,6 +70,8 @@ def parse_unit_line(path, line: bytes) -> tuple[float, float | None]:
 def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelRecord:
     """Parse and validate one burst."""
     now = now_or(now)
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]  # a UTF-8 byte-order mark some editors add
     parts = data.split(b"\n", 2)
     if len(parts) < 3:
         reject(path, "too_short", "expected a unit line, a header line and samples")
@@ -77,8 +80,10 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
     if header != ("time", "x", "y", "z"):
         reject(path, "bad_header", "expected the header 'time,x,y,z'")
     try:
-        arr = np.loadtxt(io.BytesIO(parts[2]), delimiter=",", dtype=np.float64, ndmin=2,
-                         comments=None)
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
+            arr = np.loadtxt(io.BytesIO(parts[2]), delimiter=",", dtype=np.float64, ndmin=2,
+                             comments=None)
     except ValueError as e:
         m = re.search(r"row (\d+)", str(e))
         where = f" at data row {int(m.group(1))}" if m else ""

@@ -34,6 +34,11 @@ except ImportError:  # pragma: no cover
 # Half a 16-bit LSB: a peak-to-peak swing below this is no signal at all.
 CONSTANT_PTP = 2.0 ** -16
 
+# Recorders in this study sample speech-band audio or better; a header outside
+# these bounds is corrupt or not a recording.
+MIN_SR, MAX_SR = 8000, 384000
+MAX_CHANNELS = 8
+
 _MAGIC = {b"RIFF": "wav", b"RF64": "wav", b"fLaC": "flac", b"OggS": "ogg"}
 
 
@@ -72,8 +77,9 @@ def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioC
         with sf.SoundFile(io.BytesIO(data)) as f:
             orig_sr = int(f.samplerate)
             channels = int(f.channels)
-            if orig_sr <= 0 or channels <= 0:
-                reject(path, "bad_header", "sample rate or channel count is zero")
+            if not MIN_SR <= orig_sr <= MAX_SR or not 1 <= channels <= MAX_CHANNELS:
+                reject(path, "bad_header",
+                       f"sample rate must be {MIN_SR}-{MAX_SR} Hz and channels 1-{MAX_CHANNELS}")
             # Read at most a little more than the longest allowed snippet, so a
             # small compressed file cannot expand into gigabytes.
             limit = int(np.ceil((target + tol) * orig_sr)) + 1
