@@ -145,3 +145,63 @@ def test_classify_by_suffix(name, kind):
 ])
 def test_unfinished_names_are_ignored(name, expected):
     assert ignored(name) is expected
+
+
+# --- fuzzing: any bytes give an ItemResult or a RejectedInput, nothing else ---
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from agent.intake.item import ItemResult  # noqa: E402
+
+
+def _valid_samples(policy):
+    nmea = (b"$GPRMC,120000,A,3830.000,N,02838.000,W,0.0,0.0,041126,,,A*"
+            + b"%02X" % _xor(b"GPRMC,120000,A,3830.000,N,02838.000,W,0.0,0.0,041126,,,A") + b"\n")
+    return {
+        f"snd_{STAMP}.wav": wav(),
+        "t.gpx": (GPX_HEAD + GPX_BODY).encode(),
+        "t.nmea": nmea,
+        "t.gps.csv": b"time,lat,lon\n2026-11-04T12:00:00Z,38.5,-28.6\n",
+        "b.accel.csv": accel(),
+        "m.mood.csv": mood(policy),
+    }
+
+
+def _xor(b):
+    c = 0
+    for x in b:
+        c ^= x
+    return c
+
+
+def _outcome(name, data, policy):
+    try:
+        return featurise(name, data, policy, now=NOW)
+    except RejectedInput as e:
+        assert e.reason and e.path == name
+        return e
+
+
+FUZZ = settings(max_examples=int(__import__("os").environ.get("LETHE_FUZZ_EXAMPLES", "40")), deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+
+
+@pytest.mark.parametrize("name", [f"snd_{STAMP}.wav", "t.gpx", "t.nmea", "t.gps.csv", "b.accel.csv",
+                                  "m.mood.csv", "m.mood.json"])
+@FUZZ
+@given(data=st.binary(min_size=1, max_size=2000))
+def test_random_bytes_never_escape_as_another_exception(default_policy, name, data):
+    assert isinstance(_outcome(name, data, default_policy), (ItemResult, RejectedInput))
+
+
+@pytest.mark.parametrize("name", [f"snd_{STAMP}.wav", "t.gpx", "t.nmea", "t.gps.csv", "b.accel.csv",
+                                  "m.mood.csv"])
+@FUZZ
+@given(cut=st.floats(0.0, 1.0), flips=st.lists(st.tuples(st.floats(0.0, 1.0), st.integers(0, 255)),
+                                                max_size=8))
+def test_damaged_valid_files_never_escape_as_another_exception(default_policy, name, cut, flips):
+    data = bytearray(_valid_samples(default_policy)[name])
+    assert isinstance(_outcome(name, bytes(data), default_policy), ItemResult)  # the original is valid
+    for pos, val in flips:
+        data[int(pos * (len(data) - 1))] = val
+    data = bytes(data[: max(1, int(cut * len(data)))])
+    assert isinstance(_outcome(name, data, default_policy), (ItemResult, RejectedInput))
