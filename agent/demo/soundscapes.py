@@ -94,6 +94,7 @@ class _Ctx:
         self.t = np.arange(n) / sr
         self.f = np.maximum(np.fft.rfftfreq(n, 1.0 / sr), 1e-3)
         self.S = np.zeros(self.f.size, dtype=complex)
+        self.P = np.zeros(self.f.size)  # power mask of the stationary noise, drawn once at render
 
     def _mask(self, lo_hz, hi_hz):
         return _band(self.f, lo_hz, min(hi_hz, 0.45 * self.sr))
@@ -104,11 +105,11 @@ class _Ctx:
 
     def add_noise(self, lo_hz, hi_hz, gain=1.0):
         """Add stationary band-limited Gaussian noise of RMS about ``gain``."""
+        # Independent Gaussian noises add in power, so all stationary bands
+        # share one random spectrum drawn in render(): one draw, not one per band.
         m = self._mask(lo_hz, hi_hz)
-        scale = gain * self.n / (2.0 * np.sqrt(np.sum(m * m)) + 1e-12)  # not np.dot: BLAS threads
-        z = self._cnoise((m.size,))
-        z *= m * scale
-        self.S += z
+        m2 = m * m
+        self.P += m2 * (gain * self.n / 2.0) ** 2 / (np.sum(m2) + 1e-24)  # np.sum, not np.dot: no BLAS threads
 
     def add_tones(self, freqs_hz, amps):
         """Add steady sinusoids (nearest FFT bin) with random phases."""
@@ -121,7 +122,10 @@ class _Ctx:
         self.add_tones(f0 * np.arange(1, len(amps) + 1), amps)
 
     def render(self):
-        return np.fft.irfft(self.S, self.n)
+        spec = self.S
+        if self.P.any():
+            spec = spec + self._cnoise((self.P.size,)) * np.sqrt(self.P)
+        return np.fft.irfft(spec, self.n)
 
     def noise(self, lo_hz, hi_hz, k=1):
         """``k`` rows of unit-RMS Gaussian noise band-limited to [lo, hi] Hz."""
