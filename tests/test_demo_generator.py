@@ -25,7 +25,7 @@ import pytest
 from agent.demo import Scenario, load_truth, simulate_days, write_day, write_truth
 from agent.demo.answers import simulate_answers, simulate_place_names, true_place_map
 from agent.demo.generator import accel_signal, nmea_checksum, stamp_utc
-from agent.demo.scenario import destination, offset_latlon
+from agent.demo.scenario import destination
 from agent.demo.soundscapes import synthesize
 from agent.errors import DataError
 
@@ -797,3 +797,10 @@ def test_routine_keeps_wall_clock_times_on_the_clock_change_day(scenario):
             if v["place_id"] == "bakery" and local.day == 25:
                 hours.append(local.hour + local.minute / 60)
     assert len(hours) >= 5 and 9.05 < np.median(hours) < 10.2  # an hour early would be about 8.5
+
+
+def test_scenario_unknown_sound_type_is_named():
+    raw = _raw()
+    raw["places"][0]["sound"] = "disco"
+    with pytest.raises(DataError, match=r"places\[0\]\.sound.*one of"):
+        Scenario.from_dict(raw, "x.toml")

@@ -210,6 +210,10 @@ def _between(lo, hi):
     return lambda v: None if lo <= v <= hi else f"between {lo} and {hi}"
 
 
+def _member(choices):
+    return lambda v: None if v in choices else f"one of {list(choices)}"
+
+
 def _clock(v):
     try:
         h, m = v.split(":")
@@ -257,12 +261,12 @@ def _validate(raw: dict, source: str) -> Scenario:
             c.fail(f"{w}.motion", "expected at least one positive weight")
         places[pid] = Place(
             id=pid,
-            type=c.get(p, "type", str, w, check=lambda v: None if v in PLACE_TYPES else f"one of {list(PLACE_TYPES)}"),
+            type=c.get(p, "type", str, w, check=_member(PLACE_TYPES)),
             name=c.get(p, "name", str, w),
             east_m=c.get(p, "east_m", NUM, w, check=_between(-50000, 50000)),
             north_m=c.get(p, "north_m", NUM, w, check=_between(-50000, 50000)),
             wander_m=c.get(p, "wander_m", NUM, w, 5.0, _between(0, 500)),
-            sound=c.get(p, "sound", str, w, check=lambda v: None if v in SOUND_TYPES else f"one of {list(SOUND_TYPES)}"),
+            sound=c.get(p, "sound", str, w, check=_member(SOUND_TYPES)),
             motion={k: float(v) for k, v in motion.items()},
         )
     if sum(p.type == "home" for p in places.values()) != 1:
@@ -277,8 +281,7 @@ def _validate(raw: dict, source: str) -> Scenario:
         days = c.get(a, "days", list, w)
         if not days or any(d not in WEEKDAYS for d in days):
             c.fail(f"{w}.days", f"value {days!r}: expected a non-empty list drawn from {list(WEEKDAYS)}")
-        mode = c.get(a, "mode", str, w, None,
-                     lambda v: None if v in TRAVEL_MODES else f"one of {list(TRAVEL_MODES)}")
+        mode = c.get(a, "mode", str, w, None, _member(TRAVEL_MODES))
         routine.append(Activity(
             label=c.get(a, "label", str, w),
             place=pid,
