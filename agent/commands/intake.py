@@ -21,6 +21,7 @@ def register(sub) -> None:
 def _run(args) -> int:
     import os
     import signal
+    import sys
     import threading
 
     from ..errors import UsageError
@@ -41,9 +42,16 @@ def _run(args) -> int:
     def _stop(signum, frame):
         stop.set()
 
+    def _ready(seconds):
+        if not args.once:
+            # On stderr, so --json output stays clean; a supervisor can wait for this line.
+            print(f"lethe: watching {home.inbox} (ready in {seconds:.2f} s; stop with Ctrl-C)",
+                  file=sys.stderr, flush=True)
+
     old = {s: signal.signal(s, _stop) for s in (signal.SIGTERM, signal.SIGINT)}
     try:
-        report = run_agent(home, policy, once=args.once, settle_s=args.settle, stop_event=stop)
+        report = run_agent(home, policy, once=args.once, settle_s=args.settle, stop_event=stop,
+                           on_ready=_ready)
     finally:
         for s, h in old.items():
             signal.signal(s, h)

@@ -338,12 +338,7 @@ class Intake:
                 w.out.reason = "unknown_format"
                 w.out.detail = ("unrecognised file name suffix; expected .wav .flac .ogg .gpx .nmea .gps.csv "
                                 ".accel.csv .mood.csv or .mood.json")
-        rest = [w for w in todo if not w.final]
-        if len(rest) > 1 and self.workers > 1:
-            list(self._pool().map(self._featurise_one, rest))
-        else:
-            for w in rest:
-                self._featurise_one(w)
+        self._each(self._featurise_one, [w for w in todo if not w.final])
 
     def _featurise_one(self, w) -> None:
         from . import featurise
@@ -409,21 +404,25 @@ class Intake:
     def _destroy_all(self, works) -> None:
         """Overwrite through each descriptor, unlink each name after re-checking it, one directory fsync."""
         held = [w.opened for w in works if w.opened is not None]
-        if len(held) > 1 and self.workers > 1:
-            list(self._pool().map(self.inbox.overwrite, held))  # fsync releases the GIL
-        else:
-            for o in held:
-                self.inbox.overwrite(o)
+        self._each(self.inbox.overwrite, held)  # fsync releases the GIL: overwrites overlap
         for w in works:
             w.out.removed = self.inbox.unlink_checked(w.name, w.opened, expect=w.lst)
-            if w.opened is not None:
-                w.opened.close()
-                w.opened = None
+        # Closing the last descriptor of an unlinked file frees its blocks: also worth overlapping.
+        self._each(lambda o: o.close(), held)
+        for w in works:
+            w.opened = None
         self.inbox.fsync()
         t = time.time()
         for w in works:
             w.out.destroyed_at = t
             w.out.exposure_s = round(max(0.0, t - w.out.complete_at), 6)
+
+    def _each(self, fn, items) -> None:
+        if len(items) > 1 and self.workers > 1:
+            list(self._pool().map(fn, items))
+        else:
+            for x in items:
+                fn(x)
 
     def _pool(self):
         if self._executor is None:
