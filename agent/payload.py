@@ -561,9 +561,10 @@ def preview(payload: Mapping) -> str:
                     "device." if relab else "no place, sound or activity ids."))
     m = payload["model"]
     if m is not None:
+        names = sorted({re.sub(r"_(k|ci_low|ci_high)$", "", k) for k in m["cv"]["pooled"]} - {"n", "n_days"})
         L.append(f"  * The memory model fitted on this device: {len(m['params']['theta'])} weights, "
-                 f"its cross-validated scores ({', '.join(sorted(m['cv']['pooled'])) or 'none'}) "
-                 f"and {len(m['baselines'])} comparison baselines.")
+                 f"its cross-validated scores ({', '.join(names) or 'none'}, with 95% intervals) "
+                 f"and the same scores for {len(m['baselines'])} comparison baselines.")
     q = payload["quiz"]
     if q is not None:
         acc = "no answers yet" if q["accuracy"] is None else f"{100 * q['accuracy']:.0f}% correct"
