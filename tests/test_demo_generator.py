@@ -804,3 +804,24 @@ def test_scenario_unknown_sound_type_is_named():
     raw["places"][0]["sound"] = "disco"
     with pytest.raises(DataError, match=r"places\[0\]\.sound.*one of"):
         Scenario.from_dict(raw, "x.toml")
+
+
+def test_gps_fixes_lie_near_the_true_place(inbox, timeline, scenario):
+    # geographiclib distances from each GPX fix taken during a visit to the
+    # visited place's centre: GPS noise plus wandering, apart from rare outliers.
+    box, files = inbox
+    d = []
+    for p in files:
+        if _kind(p) != ".gpx":
+            continue
+        text = p.read_text()
+        for la, lo, t in re.findall(r'lat="([-0-9.]+)" lon="([-0-9.]+)"><ele>[^<]*</ele><time>([^<]+)</time>', text):
+            ts = datetime.fromisoformat(t.replace("Z", "+00:00")).timestamp()
+            pid = timeline.place_at(ts)
+            if pid is not None:
+                plat, plon = scenario.latlon(pid)
+                d.append(WGS84.Inverse(float(la), float(lo), plat, plon)["s12"])
+    d = np.array(d)
+    assert d.size > 50
+    assert 4 < np.median(d) < 40
+    assert np.mean(d < 100) > 0.97
