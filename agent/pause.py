@@ -84,10 +84,7 @@ def set_paused(home, until: float | None = None, ledger=None, now: float | None 
 def clear_pause(home, ledger=None) -> dict:
     """End a pause now (idempotent); records ``resumed`` if a pause was in force."""
     h = _home(home)
-    try:
-        was = is_paused(h)
-    except StateError:
-        was = True
+    was = is_paused(h)
     state = {"paused": False, "since": None, "until": None}
     write_private(h.pause_path, json.dumps(state, sort_keys=True).encode())
     if ledger is not None and was:

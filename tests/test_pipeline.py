@@ -226,3 +226,17 @@ def test_drain_report_text_and_dict(h, policy):
     d = rep.as_dict()
     assert d["received"] == {"audio": 1} and d["exposure"]["n"] == 1
     assert "received 1 (audio 1)" in rep.text()
+
+
+def test_exposure_percentiles_match_numpy():
+    # Hyndman and Fan type 7 is numpy.percentile's default ("linear").
+    import numpy as np
+
+    from agent.intake.pipeline import exposure_stats
+
+    xs = [0.3, 5.0, 0.01, 2.2, 9.9, 0.7, 1.1]
+    got = exposure_stats(xs)
+    assert got["median_s"] == pytest.approx(np.percentile(xs, 50), abs=1e-4)
+    assert got["p95_s"] == pytest.approx(np.percentile(xs, 95), abs=1e-4)
+    assert got["max_s"] == max(xs) and got["n"] == 7
+    assert exposure_stats([])["median_s"] is None

@@ -470,17 +470,22 @@ def open_items(ledger) -> dict[str, dict]:
 
 # -- reports --------------------------------------------------------------------
 def exposure_stats(values) -> dict:
-    """``{"n", "median_s", "p95_s", "max_s"}`` (nearest-rank percentiles; empty: None)."""
+    """``{"n", "median_s", "p95_s", "max_s"}``; empty: None.
+
+    Percentiles interpolate linearly between order statistics (Hyndman and Fan
+    type 7, numpy's default), as the ledger verifier does, so the two agree.
+    """
     xs = sorted(float(v) for v in values if v is not None)
     if not xs:
         return {"n": 0, "median_s": None, "p95_s": None, "max_s": None}
 
-    def rank(p):
-        # Nearest-rank percentile (common practice, no source).
-        return xs[max(0, math.ceil(p * len(xs)) - 1)]
+    def q(p):
+        h = (len(xs) - 1) * p
+        lo = math.floor(h)
+        hi = min(lo + 1, len(xs) - 1)
+        return xs[lo] + (h - lo) * (xs[hi] - xs[lo])
 
-    return {"n": len(xs), "median_s": round(rank(0.5), 4), "p95_s": round(rank(0.95), 4),
-            "max_s": round(xs[-1], 4)}
+    return {"n": len(xs), "median_s": round(q(0.5), 4), "p95_s": round(q(0.95), 4), "max_s": round(xs[-1], 4)}
 
 
 @dataclass
