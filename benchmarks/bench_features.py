@@ -148,6 +148,22 @@ def bench_accel(policy, n_rows, repeat_files):
     return {"rows_per_file": n_rows, **_pair("samples_per_s", ours, ref)}
 
 
+def bench_billion_laughs(policy, n=200):
+    """Seconds to reject an entity-expansion bomb (it must not be expanded)."""
+    from agent.errors import RejectedInput
+    from agent.intake import featurise
+
+    lol = "".join(f'<!ENTITY l{i} "{("&l%d;" % (i - 1)) * 10 if i else "lol"}">' for i in range(10))
+    doc = (f'<?xml version="1.0"?><!DOCTYPE gpx [{lol}]><gpx version="1.1"><name>&l9;</name></gpx>').encode()
+    t = time.perf_counter()
+    for _ in range(n):
+        try:
+            featurise("bomb.gpx", doc, policy)
+        except RejectedInput:
+            pass
+    return (time.perf_counter() - t) / n
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--n-audio", type=int, default=200)
@@ -168,6 +184,7 @@ def main(argv=None):
                   bench_audio(policy, args.n_audio, 44100, 2)],
         "resample_44k1_to_16k_per_s": bench_resamplers(),
         "accel": [bench_accel(policy, 600, 100), bench_accel(policy, 200_000, 1)],
+        "billion_laughs_reject_s": bench_billion_laughs(policy),
     }
     if args.json:
         print(json.dumps(res, indent=2))
@@ -185,6 +202,7 @@ def main(argv=None):
         print(f"accel {a['rows_per_file']:>7} rows/file: featurise {a['samples_per_s'] / 1e6:5.2f} "
               f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s | np.loadtxt alone "
               f"{a['reference_per_s'] / 1e6:5.2f} ({a['reference_median'] / 1e6:.2f}) M/s | ratio {a['ratio']:.2f}")
+    print(f"billion-laughs GPX rejected in {res['billion_laughs_reject_s'] * 1e6:.0f} us")
     return 0
 
 

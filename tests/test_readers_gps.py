@@ -261,3 +261,13 @@ def test_speed_filter_drops_a_final_spike():
     fixes = [fx(0, 0.0), fx(60, 0.0001), fx(120, 1.0)]
     kept, n = drop_speed_outliers(fixes, 70.0)
     assert kept == fixes[:2] and n == 1
+
+
+def test_billion_laughs_is_refused_at_the_doctype_before_any_expansion(default_policy):
+    # defusedxml with forbid_dtd raises DTDForbidden at the <!DOCTYPE> start
+    # handler, before the parser reads a single entity declaration.
+    lol = "".join(f'<!ENTITY l{i} "{("&l%d;" % (i - 1)) * 10 if i else "lol"}">' for i in range(10))
+    doc = f'<?xml version="1.0"?><!DOCTYPE gpx [{lol}]><gpx version="1.1"><name>&l9;</name></gpx>'
+    with pytest.raises(RejectedInput) as e:
+        feat("t.gpx", doc, default_policy)
+    assert e.value.reason == "xml_unsafe" and "DTDForbidden" in e.value.detail

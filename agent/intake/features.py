@@ -339,11 +339,9 @@ def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: fl
     for length, ws in by_len.items():
         block = np.stack([mag[starts[w]:starts[w] + length] for w in ws])
         dom[ws] = dominant_hz(block, rate_hz)
-    rows = [
-        [float(t[0] + w * window_s), float(enmo_mean[w]), float(sd[w]), float(dom[w]),
-         int(enmo_mean[w] >= ACTIVE_ENMO_G)]
-        for w in keep
-    ]
+    table = np.column_stack([t[0] + keep * window_s, enmo_mean[keep], sd[keep], dom[keep]]).tolist()
+    active = (enmo_mean[keep] >= ACTIVE_ENMO_G).astype(int).tolist()
+    rows = [r + [a] for r, a in zip(table, active)]
     return rows, int(n_win - len(keep))
 
 
