@@ -168,7 +168,9 @@ def report(study_dir, out) -> Path:
     parts.append(_table(cov, [c for c in (cov[0] if cov else {}) if c not in ("latest", "policy_fingerprint")]))
 
     parts.append("<h2>Compliance digest per participant</h2>")
-    comp = _latest(t["compliance"])
+    # Hashes shortened for the page; the full values are in the merged tables.
+    comp = [{**r, "policy_fingerprint": r["policy_fingerprint"][:16] + "…",
+             "ledger_head_hash": str(r["ledger_head_hash"])[:16] + "…"} for r in _latest(t["compliance"])]
     parts.append("<p>From each bundle's ledger digest (signed on the device, verified here with the "
                  "bundle's signature): retention violations, raw-file exposure, and the ledger head an "
                  "ethics board can compare with the device's ledger.</p>")
