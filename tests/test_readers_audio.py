@@ -152,3 +152,10 @@ def test_wav_header_followed_by_garbage_is_truncated(default_policy):
 
 def test_implausible_sample_rate_is_a_bad_header(default_policy):
     assert rejected(NAME, encode(tone(sr=4000), 4000), default_policy).reason == "bad_header"
+
+
+def test_clipped_recording_is_kept_with_a_warning(default_policy):
+    y = np.clip(tone(amp=3.0), -1.0, 1.0)
+    r = featurise(NAME, encode(y, 16000), default_policy, now=NOW)
+    assert any("clipped" in w for w in r.warnings)
+    assert featurise(NAME, encode(tone(), 16000), default_policy, now=NOW).warnings == []

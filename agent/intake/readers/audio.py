@@ -34,6 +34,10 @@ except ImportError:  # pragma: no cover
 # Half a 16-bit LSB: a peak-to-peak swing below this is no signal at all.
 CONSTANT_PTP = 2.0 ** -16
 
+# More than 1 % of samples at full scale: the level features are unreliable.
+CLIP_LEVEL = 0.999
+CLIP_FRACTION = 0.01
+
 # Recorders in this study sample speech-band audio or better; a header outside
 # these bounds is corrupt or not a recording.
 MIN_SR, MAX_SR = 8000, 384000
@@ -114,11 +118,16 @@ def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioC
     why = plausible_time(t, now)
     if why:
         reject(path, "bad_timestamp", f"start time in the file name is {why}")
+    warnings = []
+    clipped = int(np.count_nonzero(np.abs(y) >= CLIP_LEVEL))
+    if clipped > CLIP_FRACTION * y.size:
+        warnings.append(f"{clipped} of {y.size} samples at full scale (clipped recording)")
     sr = int(policy.intake.audio_sr)
     mono = np.ascontiguousarray(mono, dtype=np.float32)
     if orig_sr != sr:
         mono = resample(mono, orig_sr, sr)
-    return AudioClip(y=mono, sr=sr, t=t, orig_sr=orig_sr, channels=channels, n_frames=n)
+    return AudioClip(y=mono, sr=sr, t=t, orig_sr=orig_sr, channels=channels, n_frames=n,
+                     warnings=warnings)
 
 
 def resample(y: np.ndarray, orig_sr: int, sr: int) -> np.ndarray:
