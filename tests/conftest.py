@@ -12,6 +12,8 @@ import pytest
 # that persists across test processes of one run.
 os.environ.setdefault("NUMBA_CACHE_DIR", str(Path(tempfile.gettempdir()) / "lethe-test-numba"))
 os.environ.setdefault("MPLBACKEND", "Agg")
+# Never touch a developer's real OS keyring from the tests.
+os.environ.setdefault("LETHE_NO_KEYRING", "1")
 
 REPO = Path(__file__).resolve().parent.parent
 
