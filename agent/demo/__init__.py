@@ -25,4 +25,4 @@ def __getattr__(name):
         from . import answers
 
         return getattr(answers, name)
-    raise AttributeError(name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
