@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import math
 import time as _time
+import warnings
 from collections import Counter
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
@@ -371,6 +372,7 @@ class CentroidCodebook:
         """Refit on feature rows ``x`` (n, d); return the ID of each row."""
         from scipy.optimize import linear_sum_assignment
         from sklearn.cluster import KMeans
+        from sklearn.exceptions import ConvergenceWarning
         from sklearn.metrics import silhouette_score
         from sklearn.preprocessing import StandardScaler
 
@@ -386,8 +388,11 @@ class CentroidCodebook:
         scores = {}
         k_hi = min(self.k_max, len(x) - 1)
         for k in range(self.k_min, k_hi + 1):
-            km = KMeans(n_clusters=k, n_init=10, random_state=self.seed).fit(z)
-            if len(set(km.labels_.tolist())) < 2:
+            with warnings.catch_warnings():
+                # duplicate rows can leave fewer distinct clusters than k; handled below
+                warnings.simplefilter("ignore", ConvergenceWarning)
+                km = KMeans(n_clusters=k, n_init=10, random_state=self.seed).fit(z)
+            if len(set(km.labels_.tolist())) < k:
                 continue
             s = float(silhouette_score(z, km.labels_, sample_size=min(len(z), 2000),
                                        random_state=self.seed))
@@ -511,6 +516,7 @@ class CodebookReport:
     quality: dict = field(default_factory=dict)
     events: list = field(default_factory=list)
     episodes: int | None = None
+    problems: list = field(default_factory=list)
 
     @property
     def n_places(self) -> int:
@@ -528,7 +534,7 @@ class CodebookReport:
         return {"n_places": self.n_places, "n_sounds": self.n_sounds, "n_motions": self.n_motions,
                 "coded": self.coded, "deleted": self.deleted, "pending_stays": self.pending_stays,
                 "refitted": self.refitted, "quality": self.quality, "events": self.events,
-                "episodes": self.episodes}
+                "episodes": self.episodes, "problems": self.problems}
 
 
 def _load(vault, policy):
@@ -645,8 +651,11 @@ def run_codebook(home, policy, vault, now: float | None = None, *, ledger=None,
     if audio and (_refit_due(sound, policy, now)):
         x = [a["vec"] for _, a in audio]
         if len(x) >= max(sound.k_min + 1, 10):
-            sound.fit(x, now=now)
-            report.refitted.append("sound")
+            try:
+                sound.fit(x, now=now)
+                report.refitted.append("sound")
+            except ValueError as e:  # degenerate features: keep the old codebook (if any)
+                report.problems.append(f"sound refit skipped: {e}")
     uncoded = [(rid, a) for rid, a in audio if rid not in coded_rids]
     if sound.fitted and uncoded:
         for (rid, a), sid in zip(uncoded, sound.assign([a["vec"] for _, a in uncoded])):
@@ -663,13 +672,17 @@ def run_codebook(home, policy, vault, now: float | None = None, *, ledger=None,
     if motion is not None and accel and _refit_due(motion, policy, now):
         rows = [motion_features(w) for _, a in accel for w in a["windows"]]
         if len(rows) >= max(motion.k_min + 1, 10):
-            motion.fit(rows, now=now)
-            report.refitted.append("motion")
+            try:
+                motion.fit(rows, now=now)
+                report.refitted.append("motion")
+            except ValueError as e:
+                report.problems.append(f"motion refit skipped: {e}")
     for rid, a in accel:
         is_coded = f"{rid}:0" in coded_rids or (not a["windows"] and rid in coded_rids)
         window_s = float(a["window_s"])
         if not is_coded:
-            wins = a["windows"]
+            # a window without a finite ENMO cannot be classified; it is dropped uncoded
+            wins = [w for w in a["windows"] if all(math.isfinite(float(v)) for v in w[:4])]
             labels = None
             if motion is None:
                 labels = [enmo_band(w[1]) for w in wins]

@@ -383,6 +383,29 @@ def test_pending_stay_is_kept_only_within_feature_retention(home, default_policy
         assert v.count("stays") == 0 and v.count("coded") == 0
 
 
+def test_identical_audio_features_do_not_stop_the_stage(home, default_policy):
+    from agent.vault import Vault
+
+    with Vault.open(home) as v:
+        for i in range(20):
+            v.put("audio_features", f"a{i}", {"t": T0 + 600 * i, "vec": [1.0] * 8, "dbfs": -30.0, "dba": 50.0})
+        r = run_codebook(home, default_policy, v, now=T0 + 86400, episodes=False)
+        assert r.problems and "sound refit skipped" in r.problems[0]
+        assert v.count("audio_features") == 20 and r.coded == {}
+
+
+def test_window_without_finite_enmo_is_dropped_uncoded(home, default_policy):
+    from agent.vault import Vault
+
+    with Vault.open(home) as v:
+        v.put("accel_features", "m1", {"t0": T0, "window_s": 10.0,
+                                       "windows": [[T0, float("nan"), 0.0, 0.0, 0], [T0 + 10, 0.2, 0.1, 2.0, 1]]})
+        r = run_codebook(home, default_policy, v, now=T0 + 3600, episodes=False)
+        assert r.coded == {"motion": 1}
+        assert [row["id"] for _, row in v.items("coded")] == ["mvpa"]
+        assert v.count("accel_features") == 0
+
+
 def test_kmeans_motion_uses_m_ids(home, tmp_path, repo):
     from agent.policy import load_policy
     from agent.vault import Vault
