@@ -47,6 +47,8 @@ import scipy.linalg as la
 from .retrieval import TIE_RTOL, ZERO_RTOL
 
 MAX_ITER = 100
+U_RTOL = 1e-14  # relative step in u = log s at which the root is taken as found
+F_ATOL = 1e-15  # |log phi + log beta| at which the root is taken as found
 
 
 class TrialState:
@@ -266,10 +268,14 @@ def _secular_root(a, w, mask, lo_s, beta):
         u_new = ua - f / fp
         bad = ~((u_new > la) & (u_new < ha))
         u_new = np.where(bad, 0.5 * (la + ha), u_new)
-        u_new = np.where(f == 0, ua, u_new)
+        # at a root to machine accuracy keep the point itself (a Newton step of
+        # zero length would be "outside" the open bracket and trigger a bisection)
+        u_new = np.where(np.abs(f) <= F_ATOL, ua, u_new)
         lo[act], hi[act], u[act] = la, ha, u_new
-        keep = ((np.abs(u_new - ua) > eps4 * np.maximum(1.0, np.abs(ua)))
-                & (ha - la > eps4 * np.maximum(1.0, np.abs(ha))) & (f != 0))
+        # stop at machine accuracy of F (rounding noise in phi is ~n eps, so
+        # asking for less than a few ulps of u would only oscillate)
+        keep = ((np.abs(u_new - ua) > U_RTOL * np.maximum(1.0, np.abs(ua)))
+                & (ha - la > eps4 * np.maximum(1.0, np.abs(ha))) & (np.abs(f) > F_ATOL))
         act = act[keep]
     return np.exp(u)
 
