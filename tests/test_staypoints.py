@@ -129,3 +129,50 @@ def test_bad_radius_is_refused_with_the_expected_range():
 
 def test_empty_input_gives_nothing():
     assert extract_stays([], 100.0, 20.0) == ([], [])
+
+
+# --- the block-wise search agrees with a plain transcription of the definition ---
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+def naive_stays(fixes, radius_m, min_minutes):
+    """Li et al. 2008 as a direct double loop (stay ends at the last fix inside D)."""
+    stays, i, n = [], 0, len(fixes)
+    while i < n:
+        j = i + 1
+        while j < n and haversine_m(fixes[i]["lat"], fixes[i]["lon"], fixes[j]["lat"], fixes[j]["lon"]) <= radius_m:
+            j += 1
+        if j == n:
+            return stays, fixes[i:]
+        if fixes[j - 1]["t"] - fixes[i]["t"] >= 60 * min_minutes:
+            stays.append((fixes[i]["t"], fixes[j - 1]["t"], j - i))
+            i = j
+        else:
+            i += 1
+    return stays, []
+
+
+@settings(max_examples=60, deadline=None)
+@given(steps=st.lists(st.tuples(st.floats(0.5, 15.0), st.sampled_from([0.0, 0.0, 0.0, 3e-4, 2e-3]),
+                                st.floats(-1.0, 1.0)), min_size=1, max_size=120))
+def test_extract_stays_agrees_with_the_naive_definition(steps):
+    # Random walks: mostly standing still, sometimes small or large moves.
+    t, lat, lon, fixes = 0.0, 38.53, -28.63, []
+    for dt_min, size, direction in steps:
+        t += dt_min
+        lat += size * direction
+        lon += size * (1 - abs(direction))
+        fixes.append(fix(t, lat, lon))
+    stays, leftover = extract_stays(fixes, 100.0, 20.0)
+    ref_stays, ref_left = naive_stays(fixes, 100.0, 20.0)
+    assert [(s["t_start"], s["t_end"], s["n"]) for s in stays] == ref_stays
+    assert leftover == ref_left
+
+
+def test_long_stay_spanning_several_search_blocks():
+    # 100 fixes within D (more than the first two blocks of 32 and 64), then away.
+    fixes = around(HOME, range(0, 100), jitter=2e-4, seed=11) + [fix(100, *CAFE)]
+    stays, leftover = extract_stays(fixes, 100.0, 20.0)
+    assert [(s["n"], s["t_end"] - s["t_start"]) for s in stays] == [(100, 99 * 60.0)]
+    assert stays == [dict(stays[0])] and len(leftover) == 1
