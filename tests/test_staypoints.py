@@ -176,3 +176,9 @@ def test_long_stay_spanning_several_search_blocks():
     stays, leftover = extract_stays(fixes, 100.0, 20.0)
     assert [(s["n"], s["t_end"] - s["t_start"]) for s in stays] == [(100, 99 * 60.0)]
     assert stays == [dict(stays[0])] and len(leftover) == 1
+
+
+def test_leftover_holds_the_callers_own_fix_objects():
+    fixes = around(HOME, range(0, 11, 5))
+    _, leftover = extract_stays(fixes, 100.0, 20.0)
+    assert all(a is b for a, b in zip(leftover, fixes)) and len(leftover) == 3

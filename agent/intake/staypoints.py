@@ -48,8 +48,8 @@ def extract_stays(fixes, radius_m: float, min_minutes: float, *, flush: bool = F
     stays : list of dict
         ``{"t_start", "t_end", "lat", "lon", "n"}`` per stay, in time order.
     leftover : list of dict
-        The fixes of the open segment (empty when ``flush``); pass them first
-        in the next call.
+        The fixes of the open segment (empty when ``flush``), the very dict
+        objects passed in; pass them first in the next call.
     """
     if radius_m <= 0 or not np.isfinite(radius_m):
         raise ValueError(f"radius_m must be a positive number of metres, got {radius_m!r}")
