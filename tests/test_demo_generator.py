@@ -242,6 +242,7 @@ def test_gps_csv_has_the_contract_header(inbox):
 
 
 def test_gps_noise_is_mostly_5_to_30_m():
+    # Consumer GPS horizontal error of about 5-30 m: common practice, no source.
     from agent.demo.generator import _gps_noise
 
     rng = np.random.default_rng(1)
@@ -282,6 +283,7 @@ def test_some_gps_hours_carry_an_outlier_or_a_gap(scenario, policy, tmp_path):
 
 # -- audio -------------------------------------------------------------------------------
 def test_wav_files_decode_at_declared_rate_and_duration(inbox, policy):
+    # decoded independently by soundfile (libsndfile)
     import soundfile as sf
 
     box, files = inbox
@@ -307,7 +309,8 @@ def _band_share(x, sr, lo, hi):
 
 
 def test_quiet_room_shows_mains_hum():
-    # a 50 Hz appliance hum: most of a quiet room's energy sits below 400 Hz
+    # a 50 Hz mains-appliance hum (50 Hz mains: common practice, no source): the
+    # strongest low-frequency line sits on a multiple of 50 Hz
     x = synthesize("quiet_room", np.random.default_rng(3), sr=16000)
     from scipy.signal import welch
 
@@ -351,6 +354,8 @@ def _read_accel(p: Path):
 
 
 def test_accel_files_have_the_declared_rate_and_unit(inbox, policy):
+    # np.diff of the time column against the declared rate; 1 g = 9.80665 m/s^2
+    # (standard gravity, CGPM 1901, from memory)
     box, files = inbox
     acc = [p for p in files if _kind(p) == ".accel.csv"]
     assert len(acc) > 300
@@ -382,6 +387,7 @@ def test_walking_shows_a_2_hz_peak():
 
 
 def test_still_is_gravity_plus_small_noise():
+    # 1 g at rest and MEMS noise of a few mg: common practice, no source.
     rng = np.random.default_rng(6)
     t = 1.7e9 + np.arange(600) / 10.0
     a = accel_signal(np.array(["still"] * 600), t, rng, 10.0)
