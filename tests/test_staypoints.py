@@ -182,3 +182,10 @@ def test_leftover_holds_the_callers_own_fix_objects():
     fixes = around(HOME, range(0, 11, 5))
     _, leftover = extract_stays(fixes, 100.0, 20.0)
     assert all(a is b for a, b in zip(leftover, fixes)) and len(leftover) == 3
+
+
+def test_scalar_and_array_haversine_paths_agree():
+    rng = np.random.default_rng(5)
+    a = rng.uniform([-90, -180, -90, -180], [90, 180, 90, 180], size=(50, 4))
+    vec = haversine_m(a[:, 0], a[:, 1], a[:, 2], a[:, 3])
+    assert np.allclose([haversine_m(*map(float, r)) for r in a], vec, rtol=1e-12)
