@@ -16,7 +16,7 @@ import cryptography_vectors
 import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 from cryptography.hazmat.primitives.asymmetric.x25519 import X25519PrivateKey
-from pyhpke import AEADId, CipherSuite, KDFId, KEMId, KEMKey, KEMKeyPair
+from pyhpke import AEADId, CipherSuite, KDFId, KEMId
 
 from agent.bundle import split_bundle
 from agent.study.keys import enc_length, suite_of
