@@ -373,22 +373,28 @@ def accel_features(rec, policy) -> ItemResult:
 
 # ---------------------------------------------------------------------------
 def warm_up(policy=None) -> float:
-    """Run every feature once on tiny synthetic inputs; returns the seconds taken.
+    """Run every feature once on synthetic inputs; returns the seconds taken.
 
-    librosa compiles some functions with numba on first use; calling this at
-    set-up (with ``NUMBA_CACHE_DIR`` pointing into the home) moves that cost out
-    of the first real snippet.
+    Imports the feature stack (scipy.fft, scipy.sparse, soundfile, soxr) and
+    fills the small caches (mel filterbank, Hann window, A-weighting grid for
+    the policy's snippet length), so the first real file is not slower than
+    the rest.  The hot path uses none of librosa's numba functions, so there
+    is nothing to compile; ``NUMBA_CACHE_DIR`` still matters if other code
+    calls librosa.
     """
     t0 = time.perf_counter()
     sr = int(policy.intake.audio_sr) if policy is not None else 16000
+    seconds = float(policy.schedule.audio_snippet_seconds) if policy is not None else 3.0
     rng = np.random.default_rng(0)
-    y = (0.1 * rng.standard_normal(sr // 2)).astype(np.float32)
+    # A snippet of the policy's length, so the A-weighting grid cached here is
+    # the one real snippets use.
+    y = (0.1 * rng.standard_normal(int(round(seconds * sr)))).astype(np.float32)
     audio_vector(y, sr)
     level_dbfs(y)
     level_dba(y, sr)
     from .readers.audio import resample
 
-    resample(y, sr, sr // 2 if sr > 8000 else 16000)
+    resample(y[: sr // 2], sr, sr // 2 if sr > 8000 else 16000)
     tt = np.arange(200) / 10.0
     xyz = np.column_stack([np.zeros(200), np.zeros(200), 1.0 + 0.1 * np.sin(2 * np.pi * tt)])
     accel_windows(tt, xyz, 10.0, 10.0)
