@@ -337,6 +337,26 @@ def test_run_codebook_codes_and_discards_features(home, default_policy):
         assert set(v.rids("codebook")) == {"place", "sound", "motion"}
 
 
+def test_run_codebook_with_a_real_ledger_appends_counts(home, default_policy):
+    # the coded event's contract field is `counts` (agent/ledger.py EVENT_FIELDS);
+    # a real Ledger validates it on append, so a wrong field name raises here
+    from agent.keystore import Keystore
+    from agent.ledger import Ledger, verify_ledger
+    from agent.vault import Vault
+
+    rng = np.random.default_rng(2)
+    ks = Keystore(home).ensure()
+    lg = Ledger(home, signing_key=ks.device_key())
+    with Vault.open(home) as v:
+        _fill(v, rng, days=1)
+        r = run_codebook(home, default_policy, v, now=T0 + 3 * 86400, ledger=lg, episodes=False)
+    coded = [e for e in lg.entries() if e["event"] == "coded"]
+    assert len(coded) == 1
+    # one day of _fill: 3 sites x 18 audio snippets; a single stay per site makes no place yet
+    assert coded[0]["counts"] == r.coded and r.coded["sound"] == 54
+    assert verify_ledger(home, public_key=ks.device_public()).ok
+
+
 def test_run_codebook_twice_codes_nothing_new(home, default_policy):
     from agent.vault import Vault
 
