@@ -223,6 +223,10 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
         raise IntegrityError(f"{source}: Ed25519 signature does not verify against {who}: the header, "
                              f"ciphertext or signature was altered, or it was signed by another key")
 
+    if device.withdrawn:
+        raise StateError(f"{source}: participant {device.pseudonym!r} withdrew on {device.withdrawn}; "
+                         f"their bundles are no longer opened")
+
     # From here the header bytes are authentic.
     try:
         header = json.loads(parts.header_bytes.decode("utf-8"))

@@ -207,3 +207,13 @@ def test_header_is_canonical_json(study):
     h0, h1 = header_range(data)
     assert data[:8] == MAGIC
     assert canonical_json(json.loads(data[h0:h1])) == data[h0:h1]
+
+
+def test_withdrawn_participant(study):
+    from agent.study.withdrawal import make_withdrawal_certificate, register_withdrawal, write_withdrawal_certificate
+
+    data = study.seal()  # sealed before the withdrawal, arriving after it
+    cert = make_withdrawal_certificate("harbour-days-2027", study.pseudonym, study.device,
+                                       {"seq": 9, "hash": "ab" * 32}, {"episodes": 60})
+    register_withdrawal(study.dir, write_withdrawal_certificate(study.tmp / "w.json", cert))
+    refuse(study, data, StateError, "withdrew on")
