@@ -21,7 +21,8 @@ Counts of zero are released: they say an event did not happen, which is common
 practice in published cell-size rules.  The default threshold 11 follows the
 cell-size rule for Medicare data of the US Centers for Medicare & Medicaid
 Services (counts 1-10 are not shown), as tabulated on Duke University's
-DataShare page "Cell Size Suppression Requirements".
+DataShare page "Cell Size Suppression Requirements"
+(https://duke.atlassian.net/wiki/spaces/PD/pages/33588869/Cell+Size+Suppression+Requirements).
 
 With DP on, noise is added first and suppression applied to the *noisy*
 counts (post-processing, so it costs no privacy); suppressing on true counts
