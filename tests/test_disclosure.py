@@ -34,7 +34,8 @@ def l1(a, b):
 # -- suppression ------------------------------------------------------------------
 
 def test_suppress_small_cells():
-    # Cell-size rule: counts 1-10 withheld, zero and >= 11 shown (threshold 11).
+    # CMS cell-size rule as tabulated on Duke DataShare "Cell Size Suppression Requirements":
+    # counts 1-10 withheld, zero permitted, >= 11 shown (threshold 11).
     r = suppress_small_cells({"a|b": 5, "a|c": 11, "b|c": 0, "c|d": 10}, 11, "suppress")
     assert r.cells == {"a|b": None, "a|c": 11, "b|c": 0, "c|d": None}
     assert r.suppressed == ["a|b", "c|d"]
