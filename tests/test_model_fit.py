@@ -248,7 +248,7 @@ def test_recovery_of_beta_and_tau_reaches_point_nine():
     mg = ModelGraph.from_graph(CooccurrenceGraph.from_episodes(eps, None, cap_rule="strongest"))
     trials = quiz_trials(eps, 150, seed=2)
     spec = ModelSpec(mg, reference=None, fit_theta=False, name="beta_tau")
-    rec = recover(mg, trials, n_sims=15, seed=0, spec=spec)
+    rec = recover(mg, trials, n_sims=30, seed=0, spec=spec)
     assert rec["params"]["beta"]["r"] >= 0.9
     assert rec["params"]["tau"]["r"] >= 0.9
 

@@ -43,6 +43,7 @@ from .likelihood import (LOG_TAU_BOUNDS, ActivationCache, ModelSpec, model_log_p
 # relative change of the objective at which L-BFGS-B stops; 1e-7 of an NLL near
 # 50 is 5e-6 nats, far below anything the held-out metrics can resolve
 FTOL = 1e-7
+SCREEN = 8  # random draws screened per restart
 
 
 class Chance:
@@ -172,9 +173,16 @@ class EigenModel:
     def fit(self, design: TrialDesign, rng=None):
         rng = np.random.default_rng(self.seed) if rng is None else rng
         cache = ActivationCache(self.spec.graph, design)
-        starts = [self.spec.start()] + [self.spec.start(rng) for _ in range(self.restarts - 1)]
-        best, self.runs = None, []
         f = lambda p: nll_and_grad(self.spec, cache, p)  # noqa: E731
+        # Screen SCREEN x restarts seeded draws and start from the best ones: on a
+        # disconnected graph the activation jumps between components as β moves,
+        # the objective is piecewise smooth, and a local method only finds the
+        # piece it starts in.  The box centre is always one of the starts.
+        draws = [self.spec.start(rng) for _ in range(SCREEN * self.restarts)]
+        values = np.array([f(q)[0] for q in draws])
+        best_draws = [draws[i] for i in np.argsort(values)[: self.restarts - 1]]
+        starts = [self.spec.start()] + best_draws
+        best, self.runs = None, []
         for p0 in starts:
             res = minimize(f, p0, jac=True, method="L-BFGS-B", bounds=self.spec.bounds(),
                            options={"maxiter": self.maxiter, "ftol": FTOL})

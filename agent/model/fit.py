@@ -12,6 +12,7 @@ import time
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.sparse.csgraph import connected_components
 
 from ..errors import DataError
 from .baselines import default_predictors
@@ -141,6 +142,12 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
     no_cue = int((design.cue_w.sum(axis=1) == 0).sum())
     if no_cue:
         notes.append(f"{no_cue} trials have no cue node in the graph (centrality only)")
+    n_comp, labels = connected_components(mg.capped, directed=False)
+    if n_comp > 1:
+        sizes = np.bincount(labels)
+        notes.append(f"the capped graph has {n_comp} connected components (largest {sizes.max()} of "
+                     f"{mg.n} nodes); the activation can jump between components as beta changes, "
+                     f"so the likelihood is only piecewise smooth")
     if preds["frequency"].source != "episodes":
         notes.append(f"frequency baseline from {preds['frequency'].source} (no episodes given)")
 
@@ -157,7 +164,7 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
         fit={"nll": full.nll, "n_params": full.n_params, "restarts": r, "runs": full.runs,
              "converged": full.converged, "folds": len(fold_sizes), "fold_sizes": fold_sizes,
              "seconds_full_fit": round(t_full, 3), "seconds_total": round(time.perf_counter() - t0, 3),
-             "n_nodes": mg.n, "type_pairs": [f"{a}|{b}" for a, b in mg.type_pairs]},
+             "n_nodes": mg.n, "components": int(n_comp), "type_pairs": [f"{a}|{b}" for a, b in mg.type_pairs]},
         chance_level=chance_metrics(design, rows),
         participant_accuracy=_prop(pa, n_ans),
         notes=notes,

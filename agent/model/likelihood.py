@@ -98,7 +98,7 @@ class ModelSpec:
 
     def unpack(self, p):
         p = np.asarray(p, dtype=np.float64)
-        theta = np.ones(len(self.graph.type_pairs)) if self.fit_theta else np.ones(len(self.graph.type_pairs))
+        theta = np.ones(len(self.graph.type_pairs))
         theta[list(self.zero)] = 0.0
         theta[self.free] = np.exp(p[: len(self.free)])
         i = len(self.free)

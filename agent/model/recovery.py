@@ -52,6 +52,13 @@ def recover(graph, trials, n_sims: int = 30, seed: int = 0, *, restarts: int = 2
     """
     if n_sims < 3:
         raise ValueError(f"n_sims = {n_sims}: expected at least 3 simulations for a correlation")
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):  # small eighs: threads only cost
+        return _recover(graph, trials, n_sims, seed, restarts, spec)
+
+
+def _recover(graph, trials, n_sims, seed, restarts, spec):
     mg = as_model_graph(graph)
     spec = spec or ModelSpec.full(mg)
     design = TrialDesign(mg, [dict(t, choice=None) for t in trials])
