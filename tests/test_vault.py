@@ -1,19 +1,26 @@
-"""The encrypted record store: round trips, AEAD binding, idempotence, durability,
-transactions, permissions and the absence of plaintext on disk."""
+"""The encrypted record store: round trips, AEAD binding, opaque addresses, idempotence,
+durability, transactions, permissions, schema versions, migration from the first layout
+and the absence of plaintext (payloads and rids) on disk."""
 
 from __future__ import annotations
 
+import hashlib
+import hmac
+import json
 import os
 import sqlite3
 import stat
 import threading
+from pathlib import Path
 
+import cryptography_vectors
 import numpy as np
 import pytest
+from cryptography.hazmat.primitives.ciphers.aead import AESGCM
 
 from agent.errors import IntegrityError, StateError, UsageError
 from agent.keystore import Keystore
-from agent.vault import Vault
+from agent.vault import SCHEMA_VERSION, Vault, derive_keys
 
 MARKER = "zz-plaintext-marker-4711"
 
@@ -123,24 +130,25 @@ def test_delete_clear_count_tables(vault):
 
 # -- AEAD ------------------------------------------------------------------------------
 
-def _copy_record(home, src, dst_table, dst_rid):
+def _copy_record(home, vault, src, dst_table, dst_rid):
     db = _raw(home)
-    nonce, ct = db.execute("SELECT nonce, ct FROM records WHERE tbl = ? AND rid = ?", src).fetchone()
-    db.execute("INSERT INTO records (tbl, rid, nonce, ct) VALUES (?, ?, ?, ?)", (dst_table, dst_rid, nonce, ct))
+    nonce, ct = db.execute("SELECT nonce, ct FROM records WHERE addr = ?", (vault._addr(*src),)).fetchone()
+    db.execute("INSERT INTO records (tbl, addr, nonce, ct) VALUES (?, ?, ?, ?)",
+               (dst_table, vault._addr(dst_table, dst_rid), nonce, ct))
     db.commit()
     db.close()
 
 
 def test_record_copied_to_another_rid_fails(home, vault):
     vault.put("audio_features", "aaa", {"v": 1})
-    _copy_record(home, ("audio_features", "aaa"), "audio_features", "bbb")
+    _copy_record(home, vault, ("audio_features", "aaa"), "audio_features", "bbb")
     with pytest.raises(IntegrityError, match="record 'audio_features'/'bbb' fails authentication"):
         vault.get("audio_features", "bbb")
 
 
 def test_record_moved_to_another_table_fails(home, vault):
     vault.put("stays", "100", {"lat": 1})
-    _copy_record(home, ("stays", "100"), "coded", "100")
+    _copy_record(home, vault, ("stays", "100"), "coded", "100")
     with pytest.raises(IntegrityError, match="record 'coded'/'100'"):
         vault.get("coded", "100")
 
@@ -148,7 +156,7 @@ def test_record_moved_to_another_table_fails(home, vault):
 def test_table_rid_boundary_is_unambiguous(home, vault):
     # "ab" + "c" and "a" + "bc" must not share associated data (the NUL separator).
     vault.put("ab", "c", 1)
-    _copy_record(home, ("ab", "c"), "a", "bc")
+    _copy_record(home, vault, ("ab", "c"), "a", "bc")
     with pytest.raises(IntegrityError):
         vault.get("a", "bc")
 
@@ -166,11 +174,56 @@ def test_flipped_ciphertext_bit_fails(home, vault):
 
 
 def test_wrong_key_fails(home, vault):
+    # keyed addresses would make a wrong key look like an empty vault; the key check refuses it
     vault.put("t", "r", {"v": 1})
-    other = Vault(home.vault_path, os.urandom(32))
-    with pytest.raises(IntegrityError, match="sealed with another key"):
-        other.get("t", "r")
-    other.close()
+    with pytest.raises(IntegrityError, match="vault.db: the vault was sealed with another key"):
+        Vault(home.vault_path, os.urandom(32))
+
+
+def test_swapped_payloads_fail(home, vault):
+    vault.put("stays", "1761350400", {"n": 1})
+    vault.put("stays", "1761354000", {"n": 2})
+    a, b = vault._addr("stays", "1761350400"), vault._addr("stays", "1761354000")
+    db = _raw(home)
+    row_b = db.execute("SELECT nonce, ct FROM records WHERE addr = ?", (b,)).fetchone()
+    db.execute("UPDATE records SET nonce = ?, ct = ? WHERE addr = ?", (*row_b, a))
+    db.commit()
+    db.close()
+    with pytest.raises(IntegrityError, match="record 'stays'/'1761350400' fails authentication"):
+        vault.get("stays", "1761350400")
+
+
+def test_relabelled_table_column_fails(home, vault):
+    # the row's own table goes into the associated data, so editing tbl breaks the seal
+    vault.put("stays", "1761350400", {"n": 1})
+    db = _raw(home)
+    db.execute("UPDATE records SET tbl = 'coded'")
+    db.commit()
+    db.close()
+    with pytest.raises(IntegrityError, match="record 'coded'/'1761350400' fails authentication"):
+        vault.get("stays", "1761350400")
+
+
+def test_items_names_table_and_address_of_a_bad_record(home, vault):
+    vault.put("episodes", "2026-10-25T01:00+01:00", {"n": 1})
+    addr = vault._addr("episodes", "2026-10-25T01:00+01:00")
+    db = _raw(home)
+    db.execute("UPDATE records SET nonce = ?", (os.urandom(12),))
+    db.commit()
+    db.close()
+    with pytest.raises(IntegrityError, match=f"record 'episodes'/address {addr[:8].hex()} fails authentication"):
+        list(vault.items("episodes"))
+
+
+def test_missing_key_check_is_refused(home, vault):
+    vault.put("t", "r", 1)
+    vault.close()
+    db = _raw(home)
+    db.execute("DELETE FROM meta")
+    db.commit()
+    db.close()
+    with pytest.raises(IntegrityError, match="vault.db: the vault has no key check"):
+        Vault.open(home)
 
 
 def test_nonces_are_unique_and_ciphertexts_differ(home, vault):
