@@ -64,3 +64,39 @@ def test_open_tampered_exit_code_and_message(tmp_path, capsys):
     assert main(["study", "open", "--dir", str(study), "--passphrase-file", str(pf), str(bad)]) == EXIT_INTEGRITY
     assert "Ed25519 signature does not verify" in capsys.readouterr().err
     assert not (study / "received").exists()
+
+
+def _spawn_export(home):
+    import sys
+
+    import pexpect
+
+    return pexpect.spawn(sys.executable, ["-m", "agent.cli", "--home", str(home.root), "export"],
+                         encoding="utf-8", timeout=120)
+
+
+def test_export_asks_in_a_terminal_and_sends_on_yes(tmp_path):
+    home, _ = make_world(tmp_path)
+    child = _spawn_export(home)
+    child.expect(r"This export would send the study")
+    child.expect(r"Send this to the study\? \[y/N\]")
+    child.sendline("y")
+    child.expect("Sealed and signed bundle-000001.lethe")
+    child.expect(pexpect_eof())
+    assert [p.name for p in home.outbox.iterdir()] == ["bundle-000001.lethe"]
+
+
+def test_export_in_a_terminal_declined(tmp_path):
+    home, _ = make_world(tmp_path)
+    child = _spawn_export(home)
+    child.expect(r"Send this to the study\? \[y/N\]")
+    child.sendline("")
+    child.expect("Nothing was exported.")
+    child.expect(pexpect_eof())
+    assert list(home.outbox.iterdir()) == []
+
+
+def pexpect_eof():
+    import pexpect
+
+    return pexpect.EOF
