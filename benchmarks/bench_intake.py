@@ -1,6 +1,6 @@
 """Intake end to end: backfill throughput, steady-state raw exposure, idle CPU, peak RSS, start-up.
 
-Everything runs the real command (``python -m agent.cli run``) in a child
+Everything runs the real command (``agent.cli.main(["run", ...])``, as the ``lethe`` script does) in a child
 process on fresh homes under a temporary directory:
 
 * **start-up**: spawn ``lethe run`` on an empty inbox until it prints that it
@@ -14,7 +14,8 @@ process on fresh homes under a temporary directory:
 * **steady state**: ``lethe run`` watching while files of the demo arrive one
   by one every 50-200 ms (written as ``.part`` and renamed, as recorders do);
 * raw exposure (complete to destroyed) comes from the ledger
-  (:func:`agent.ledger.verify_ledger`), peak RSS from ``wait4``'s rusage.
+  (:func:`agent.ledger.verify_ledger`), peak RSS from each child's own
+``VmHWM`` (``/proc/self/status``) as it exits.
 
 References measured in the same run: exposure against the policy limit
 (``retention.raw_seconds``); audio throughput against the naive path
@@ -81,6 +82,33 @@ def child_env(home) -> dict:
     return env
 
 
+# The real command, then its own peak RSS (VmHWM of the new address space).  rusage's
+# ru_maxrss of a child is no use here: Linux carries the parent's high-water mark
+# across fork and exec, so every child would report at least this process's size.
+LETHE = r"""
+import sys
+from agent.cli import main
+try:
+    rc = main(sys.argv[1:])
+finally:
+    for line in open("/proc/self/status"):
+        if line.startswith("VmHWM:"):
+            print("peak_rss_kb", line.split()[1], file=sys.stderr, flush=True)
+sys.exit(rc)
+"""
+
+
+def lethe_cmd(*args) -> list[str]:
+    return [sys.executable, "-c", LETHE, *args]
+
+
+def peak_kb(stderr_text: str) -> float:
+    for line in stderr_text.splitlines():
+        if line.startswith("peak_rss_kb"):
+            return float(line.split()[1])
+    return float("nan")
+
+
 def popen_rusage(args, env, **kw):
     """Run to completion and return (stdout, stderr, returncode, rusage) using wait4."""
     p = subprocess.Popen(args, cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, **kw)
@@ -92,11 +120,10 @@ def popen_rusage(args, env, **kw):
 
 
 def once_with_rusage(home) -> tuple[dict, float, float]:
-    out, err, rc, ru = popen_rusage([sys.executable, "-m", "agent.cli", "--home", str(home.root), "run", "--once",
-                                     "--json"], child_env(home))
+    out, err, rc, ru = popen_rusage(lethe_cmd("--home", str(home.root), "run", "--once", "--json"), child_env(home))
     if rc != 0:
         raise SystemExit(f"lethe run --once failed ({rc}): {err.decode()[-2000:]}")
-    return json.loads(out), ru.ru_maxrss / 1024.0, ru.ru_utime + ru.ru_stime
+    return json.loads(out), peak_kb(err.decode()) / 1024.0, ru.ru_utime + ru.ru_stime
 
 
 class Watching:
@@ -105,7 +132,7 @@ class Watching:
     def __init__(self, home):
         self.home = home
         self.t_spawn = time.monotonic()
-        self.p = subprocess.Popen([sys.executable, "-m", "agent.cli", "--home", str(home.root), "run"],
+        self.p = subprocess.Popen(lethe_cmd("--home", str(home.root), "run"),
                                   cwd=ROOT, env=child_env(home), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                                   text=True)
         line = self.p.stderr.readline()
@@ -121,12 +148,8 @@ class Watching:
 
     def stop(self):
         self.p.send_signal(signal.SIGTERM)
-        _, status, ru = os.wait4(self.p.pid, 0)
-        self.p.returncode = os.waitstatus_to_exitcode(status)
-        out = self.p.stdout.read()
-        self.p.stdout.close()
-        self.p.stderr.close()
-        return out, ru.ru_maxrss / 1024.0
+        out, err = self.p.communicate(timeout=120)
+        return out, peak_kb(err) / 1024.0
 
 
 def ledger_exposure(home) -> dict:

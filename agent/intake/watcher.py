@@ -286,12 +286,9 @@ class InboxWatcher:
         from .pipeline import BATCH_FILES
 
         while True:
-            ready = [n for n, p in self.pending.items() if p.ready]
-            if not ready:
-                return
             # Oldest deadline first: the file that has existed longest goes next.
             order = []
-            for name in ready:
+            for name in [n for n, p in self.pending.items() if p.ready]:
                 lst = self.intake.inbox.lstat(name)
                 if lst is None:
                     del self.pending[name]
@@ -300,34 +297,39 @@ class InboxWatcher:
             if not order:
                 return
             order.sort()
-            names = [n for _, n in order[:BATCH_FILES]]
-            for n in names:
-                del self.pending[n]
-            outs = _process_safely(self.intake, names, self.outcomes)
-            done = set()
-            for out in outs:
-                done.add(out.name)
-                self.own_closes[out.name] = self.own_closes.get(out.name, 0) + 1
-                if self.on_outcome is not None:
-                    self.on_outcome(out)
-            now = time.time()
-            for n in names:
-                if n in done or ignored(n):
-                    continue
-                lst = self.intake.inbox.lstat(n)
-                if lst is not None and not stat.S_ISDIR(lst.st_mode):
-                    # Changed under us: look again after the settle time.
-                    self.pending[n] = Pending(first_seen=now, sig=_sig(lst), due=now + self.settle_s)
-            # Events that arrived while working may make other files ready.
-            while True:
-                try:
-                    msg = self.q.get_nowait()
-                except queue.Empty:
-                    break
-                if msg == _STOP:
-                    self.stop_event.set()
-                    return
-                self._handle(*msg)
+            names = [n for _, n in order]
+            for i in range(0, len(names), BATCH_FILES):
+                group = [n for n in names[i:i + BATCH_FILES] if n in self.pending and self.pending[n].ready]
+                for n in group:
+                    del self.pending[n]
+                self._take(group)
+                # Events that arrived while working may make other files ready, or change these.
+                while True:
+                    try:
+                        msg = self.q.get_nowait()
+                    except queue.Empty:
+                        break
+                    if msg == _STOP:
+                        self.stop_event.set()
+                        return
+                    self._handle(*msg)
+
+    def _take(self, names) -> None:
+        outs = _process_safely(self.intake, names, self.outcomes)
+        done = set()
+        for out in outs:
+            done.add(out.name)
+            self.own_closes[out.name] = self.own_closes.get(out.name, 0) + 1
+            if self.on_outcome is not None:
+                self.on_outcome(out)
+        now = time.time()
+        for n in names:
+            if n in done or ignored(n):
+                continue
+            lst = self.intake.inbox.lstat(n)
+            if lst is not None and not stat.S_ISDIR(lst.st_mode):
+                # Changed under us: look again after the settle time.
+                self.pending[n] = Pending(first_seen=now, sig=_sig(lst), due=now + self.settle_s)
 
 
 def setup_logging(home) -> logging.Handler | None:
