@@ -25,7 +25,7 @@ _EXPORTS = {
     "verify_enrolment": "card", "load_enrolment": "card",
     "enroll": "registry", "Registry": "registry",
     "make_withdrawal_certificate": "withdrawal", "verify_withdrawal": "withdrawal",
-    "verify_withdrawal_signature": "withdrawal",
+    "verify_withdrawal_signature": "withdrawal", "register_withdrawal": "withdrawal",
     "open_bundles": "open", "OpenResult": "open",
 }
 
