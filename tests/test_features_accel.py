@@ -125,3 +125,18 @@ def test_welch_psd_matches_scipy(n, nperseg):
     f_ref, p_ref = welch(x, fs=10.0, nperseg=nperseg, noverlap=nperseg // 2, axis=-1)
     f, p = F.welch_psd(x, 10.0, nperseg)
     assert np.allclose(f, f_ref) and np.allclose(p, p_ref)
+
+
+def test_batched_windows_equal_window_by_window_computation():
+    # A gap inside the third window makes equal-length windows non-contiguous.
+    t, xyz = gait(1.8, n=600)
+    keep = np.ones(600, dtype=bool)
+    keep[230:260] = False
+    t, xyz = t[keep], xyz[keep]
+    rows, _ = F.accel_windows(t, xyz, RATE, 10.0)
+    mag = np.linalg.norm(xyz, axis=1)
+    for r in rows:
+        sel = (t >= r[0]) & (t < r[0] + 10.0)
+        assert r[1] == pytest.approx(F.enmo_g(xyz[sel]).mean())
+        assert r[2] == pytest.approx(mag[sel].std())
+        assert r[3] == pytest.approx(F.dominant_hz(mag[sel][None, :], RATE)[0])

@@ -309,14 +309,15 @@ def dominant_hz(mag: np.ndarray, rate_hz: float) -> np.ndarray:
     return np.where(still, 0.0, dom)
 
 
-def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: float):
+def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: float,
+                  mag_g: np.ndarray | None = None):
     """Per-window features; returns ``(rows, n_skipped)``.
 
     Windows start at ``t[0] + k * window_s``.  A window holding fewer than half
     the samples the rate implies (the ragged end of a burst, or a gap) is
-    skipped and counted.
+    skipped and counted.  ``mag_g`` is the vector magnitude if the caller has it.
     """
-    mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g))
+    mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g)) if mag_g is None else mag_g
     enmo = np.maximum(mag - 1.0, 0.0)
     k = np.floor((t - t[0]) / window_s).astype(np.int64)
     n_win = int(k[-1]) + 1
@@ -337,7 +338,11 @@ def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: fl
     for w in keep:
         by_len.setdefault(int(counts[w]), []).append(int(w))
     for length, ws in by_len.items():
-        block = np.stack([mag[starts[w]:starts[w] + length] for w in ws])
+        first = starts[ws[0]]
+        if len(ws) > 1 and np.all(starts[ws] == first + length * np.arange(len(ws))):
+            block = mag[first:first + length * len(ws)].reshape(len(ws), length)  # contiguous: a view
+        else:
+            block = np.stack([mag[starts[w]:starts[w] + length] for w in ws])
         dom[ws] = dominant_hz(block, rate_hz)
     table = np.column_stack([t[0] + keep * window_s, enmo_mean[keep], sd[keep], dom[keep]]).tolist()
     active = (enmo_mean[keep] >= ACTIVE_ENMO_G).astype(int).tolist()
@@ -348,7 +353,8 @@ def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: fl
 def accel_features(rec, policy) -> ItemResult:
     """ItemResult with one ``accel_features`` row for a validated burst."""
     window_s = float(policy.intake.accel_window_seconds)
-    rows, skipped = accel_windows(rec.t, rec.xyz_g, rec.rate_hz, window_s)
+    rows, skipped = accel_windows(rec.t, rec.xyz_g, rec.rate_hz, window_s,
+                                  mag_g=getattr(rec, "mag_g", None))
     warnings = list(rec.warnings)
     dropped = dict(rec.dropped)
     if skipped:

@@ -40,6 +40,7 @@ class AccelRecord:
     rate_hz: float         # measured: 1 / median interval
     warnings: list[str] = field(default_factory=list)
     dropped: dict[str, int] = field(default_factory=dict)
+    mag_g: np.ndarray | None = None   # vector magnitude, if already computed
 
 
 def parse_unit_line(path, line: bytes) -> tuple[float, float | None]:
@@ -113,7 +114,8 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
                    f"{label} rate {r:.3g} Hz is outside schedule.accel_rate_hz = {want:g} Hz "
                    f"± {tol:.0%} (intake.accel_rate_tolerance)")
     xyz = arr[:, 1:4] * scale if scale != 1.0 else np.ascontiguousarray(arr[:, 1:4])
-    mag_med = float(np.median(np.sqrt(np.einsum("ij,ij->i", xyz, xyz))))
+    mag = np.sqrt(np.einsum("ij,ij->i", xyz, xyz))
+    mag_med = float(np.median(mag))
     lo, hi = MAGNITUDE_RANGE_G
     if not lo <= mag_med <= hi:
         reject(path, "bad_unit",
@@ -127,4 +129,4 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
         dropped["gap"] = n_gaps
         warnings.append(f"{n_gaps} gap(s) in the samples, about {lost:.1f} s missing")
     return AccelRecord(path=str(path), t=t, xyz_g=xyz, rate_hz=rate,
-                       warnings=warnings, dropped=dropped)
+                       warnings=warnings, dropped=dropped, mag_g=mag)
