@@ -384,3 +384,233 @@ def test_symlinked_vault_is_refused(home, tmp_path):
 def test_key_must_be_32_bytes(home):
     with pytest.raises(UsageError, match="32-byte key"):
         Vault(home.vault_path, b"short")
+
+
+# -- opaque addresses ------------------------------------------------------------------
+
+# rids that are times or counters: none of them may be readable from the files
+TIME_RIDS = {"episodes": "2026-10-25T01:00+01:00", "stays": "1761350400", "gps_fixes": "item0042:17"}
+
+
+def _vault_bytes(home) -> dict[str, bytes]:
+    return {p.name: p.read_bytes() for p in home.root.iterdir() if p.name.startswith("vault.db")}
+
+
+def _assert_no_rid_bytes(files: dict[str, bytes]) -> None:
+    for name, data in files.items():
+        for rid in TIME_RIDS.values():
+            assert rid.encode() not in data, (name, rid)
+        assert b"2026-10-25" not in data, name  # not even the date part of the hour key
+        assert b"17613504" not in data, name  # nor the leading digits of the start time
+
+
+def test_no_rid_in_database_or_wal(home, vault):
+    for table, rid in TIME_RIDS.items():
+        vault.put(table, rid, {"n": 1})
+        vault.upsert(table, rid, {"n": 2})
+    vault.put("stays", "1761350401", {"n": 3})
+    vault.delete("stays", "1761350401")
+    files = _vault_bytes(home)
+    assert len(files.get("vault.db-wal", b"")) > 0  # checked while the WAL holds the writes
+    _assert_no_rid_bytes(files)
+    vault.close()
+    _assert_no_rid_bytes(_vault_bytes(home))
+
+
+def test_rids_still_come_back_in_order(vault):
+    rids = ["2026-10-25T01:00+01:00", "2026-10-25T01:00+00:00", "2026-10-25T02:00+00:00"]
+    for r in rids:
+        vault.put("episodes", r, {"key": r})
+    assert vault.rids("episodes") == rids
+    assert [obj["key"] for _, obj in vault.items("episodes")] == rids
+    assert ("episodes", rids[1]) in vault and ("episodes", "2026-10-25T03:00+00:00") not in vault
+
+
+def test_the_same_rid_in_two_tables_has_two_addresses(vault):
+    vault.put("stays", "1761350400", {"t": "stay"})
+    assert vault.put("coded", "1761350400", {"t": "coded"}) is True
+    assert vault.get("stays", "1761350400") == {"t": "stay"}
+    assert vault.get("coded", "1761350400") == {"t": "coded"}
+
+
+def _rfc5869(ikm: bytes, salt: bytes, info: bytes, length: int) -> bytes:
+    # RFC 5869 section 2.2 (extract) and 2.3 (expand), written out with hmac
+    prk = hmac.new(salt or bytes(32), ikm, hashlib.sha256).digest()
+    okm, block, i = b"", b"", 1
+    while len(okm) < length:
+        block = hmac.new(prk, block + info + bytes([i]), hashlib.sha256).digest()
+        okm, i = okm + block, i + 1
+    return okm[:length]
+
+
+def _rfc5869_cases():
+    text = (Path(cryptography_vectors.__file__).parent / "KDF" / "rfc-5869-HKDF-SHA256.txt").read_text()
+    cases, cur = [], {}
+    for line in text.splitlines():
+        if "=" in line and not line.startswith("#"):
+            k, v = (x.strip() for x in line.split("=", 1))
+            cur[k] = v
+            if k == "OKM":
+                cases.append(cur)
+                cur = {}
+    return cases
+
+
+def test_reference_hkdf_matches_rfc_5869_vectors():
+    # RFC 5869 appendix A.1-A.3, via cryptography_vectors KDF/rfc-5869-HKDF-SHA256.txt
+    cases = _rfc5869_cases()
+    assert len(cases) >= 3
+    for c in cases:
+        got = _rfc5869(bytes.fromhex(c["IKM"]), bytes.fromhex(c["salt"]), bytes.fromhex(c["info"]), int(c["L"]))
+        assert got.hex() == c["OKM"].lower()
+
+
+def test_on_disk_format_matches_the_documented_contract(home, vault):
+    # docs/vault.md: k = HKDF-SHA256(vault key, no salt, info label); addr = HMAC-SHA256(k_addr,
+    # table NUL rid); ct = AES-256-GCM(k_aead, rid NUL json, aad "lethe-vault/2" NUL table NUL addr)
+    key = Keystore(home).vault_key()
+    k_aead = _rfc5869(key, b"", b"lethe vault v2: record sealing key (AES-256-GCM)", 32)
+    k_addr = _rfc5869(key, b"", b"lethe vault v2: record address key (HMAC-SHA256)", 32)
+    assert derive_keys(key) == (k_aead, k_addr)
+    assert len({k_aead, k_addr, key}) == 3
+    vault.put("stays", "1761350400", {"n": 3})
+    db = _raw(home)
+    tbl, addr, nonce, ct = db.execute("SELECT tbl, addr, nonce, ct FROM records").fetchone()
+    db.close()
+    assert tbl == "stays"
+    assert addr == hmac.new(k_addr, b"stays\0" + b"1761350400", hashlib.sha256).digest()
+    plain = AESGCM(k_aead).decrypt(nonce, ct, b"lethe-vault/2\0stays\0" + addr)
+    assert plain == b'1761350400\0{"n":3}'
+
+
+def test_schema_version_is_set(home, vault):
+    db = _raw(home)
+    assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION == 2
+    db.close()
+
+
+# -- schema versions and migration from the first layout -------------------------------
+
+def _build_first_layout(home, rows, key=None):
+    """A vault.db as the first layout wrote it: rids in the clear, raw-key seals, AAD table NUL rid."""
+    key = Keystore(home).ensure().vault_key() if key is None else key
+    db = sqlite3.connect(str(home.vault_path))
+    db.execute("PRAGMA journal_mode=WAL")
+    db.execute("""CREATE TABLE records (seq INTEGER PRIMARY KEY AUTOINCREMENT, tbl TEXT NOT NULL,
+                  rid TEXT NOT NULL, nonce BLOB NOT NULL, ct BLOB NOT NULL, UNIQUE (tbl, rid))""")
+    aead = AESGCM(key)
+    for table, rid, obj in rows:
+        nonce = os.urandom(12)
+        ct = aead.encrypt(nonce, json.dumps(obj, separators=(",", ":")).encode(), f"{table}\0{rid}".encode())
+        db.execute("INSERT INTO records (tbl, rid, nonce, ct) VALUES (?, ?, ?, ?)", (table, rid, nonce, ct))
+    db.commit()
+    db.close()
+    os.chmod(home.vault_path, 0o600)
+
+
+OLD_ROWS = [("episodes", "2026-10-25T01:00+01:00", {"place": "P1"}),
+            ("stays", "1761350400", {"n": 4}),
+            ("gps_fixes", "item0042:17", {"lat": 38.7}),
+            ("episodes", "2026-10-25T01:00+00:00", {"place": "P2"}),
+            ("stays", "1761354000", {"n": 5})]
+
+
+def test_first_layout_is_migrated_on_open(home):
+    _build_first_layout(home, OLD_ROWS)
+    assert b"1761350400" in home.vault_path.read_bytes()  # the first layout really shows the rid
+    with Vault.open(home) as v:
+        assert v.migrated == 5
+        assert list(v.items("episodes")) == [("2026-10-25T01:00+01:00", {"place": "P1"}),
+                                             ("2026-10-25T01:00+00:00", {"place": "P2"})]
+        assert v.get("stays", "1761354000") == {"n": 5}
+        assert v.tables() == {"episodes": 2, "gps_fixes": 1, "stays": 2}
+        assert v.put("stays", "1761350400", {"n": 0}) is False  # idempotence survives the move
+    db = _raw(home)
+    assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+    db.close()
+
+
+def test_migration_keeps_insertion_order_for_later_writes(home):
+    _build_first_layout(home, OLD_ROWS)
+    with Vault.open(home) as v:
+        v.put("stays", "1761357600", {"n": 6})
+        v.upsert("stays", "1761350400", {"n": 40})
+        assert list(v.items("stays")) == [("1761350400", {"n": 40}), ("1761354000", {"n": 5}),
+                                          ("1761357600", {"n": 6})]
+
+
+def test_migration_leaves_no_rid_on_disk(home):
+    _build_first_layout(home, OLD_ROWS)
+    assert b"2026-10-25" in home.vault_path.read_bytes()
+    Vault.open(home).close()
+    _assert_no_rid_bytes(_vault_bytes(home))
+
+
+def test_second_open_after_migration_migrates_nothing(home):
+    _build_first_layout(home, OLD_ROWS)
+    Vault.open(home).close()
+    with Vault.open(home) as v:
+        assert v.migrated == 0 and v.count("stays") == 2
+
+
+def test_empty_first_layout_is_migrated(home):
+    _build_first_layout(home, [])
+    with Vault.open(home) as v:
+        assert v.migrated == 0 and v.tables() == {}
+        v.put("t", "a", 1)
+        assert v.get("t", "a") == 1
+
+
+def test_altered_first_layout_record_stops_migration_unchanged(home):
+    _build_first_layout(home, OLD_ROWS)
+    db = sqlite3.connect(str(home.vault_path))
+    db.execute("UPDATE records SET rid = '1761350999' WHERE rid = '1761350400'")
+    db.commit()
+    db.close()
+    with pytest.raises(IntegrityError, match="first-layout record 'stays'/'1761350999' fails authentication"):
+        Vault.open(home)
+    db = _raw(home)
+    assert db.execute("PRAGMA user_version").fetchone()[0] == 0
+    assert db.execute("SELECT COUNT(*) FROM records WHERE rid IS NOT NULL").fetchone()[0] == 5
+    db.close()
+
+
+def test_first_layout_under_another_key_is_refused(home):
+    _build_first_layout(home, OLD_ROWS, key=os.urandom(32))
+    with pytest.raises(IntegrityError, match="altered or sealed with another key; nothing was changed"):
+        Vault.open(home)
+
+
+def test_future_schema_version_is_refused(home):
+    Vault.open(home).close()
+    db = _raw(home)
+    db.execute("PRAGMA user_version = 3")
+    db.commit()
+    db.close()
+    with pytest.raises(StateError, match="vault.db: vault schema version 3 is newer than this lethe reads"):
+        Vault.open(home)
+    db = _raw(home)
+    assert db.execute("PRAGMA user_version").fetchone()[0] == 3  # left as it was
+    db.close()
+
+
+def test_future_version_is_refused_before_anything_is_written(home):
+    db = _raw(home)
+    db.execute("PRAGMA user_version = 7")
+    db.commit()
+    db.close()
+    with pytest.raises(StateError, match="schema version 7"):
+        Vault.open(home)
+    db = _raw(home)
+    assert db.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()[0] == 0
+    assert db.execute("PRAGMA journal_mode").fetchone()[0] == "delete"  # WAL was never switched on
+    db.close()
+
+
+def test_unknown_layout_is_refused(home):
+    db = _raw(home)
+    db.execute("CREATE TABLE something_else (x)")
+    db.commit()
+    db.close()
+    with pytest.raises(IntegrityError, match=r"not a lethe vault layout \(schema version 0"):
+        Vault.open(home)
