@@ -23,7 +23,11 @@ seal
 Schema (``HOME/vault.db``, ``PRAGMA user_version = 2``)::
 
     records(seq INTEGER PRIMARY KEY AUTOINCREMENT, tbl TEXT, addr BLOB(32) UNIQUE,
-            nonce BLOB(12), ct BLOB)
+            nonce BLOB(12), ct BLOB)            -- index (tbl, seq)
+    meta(name TEXT PRIMARY KEY, value BLOB)     -- 'key_check': HMAC(address key, fixed text)
+
+The key check exists because keyed addresses would make a wrong key look like
+an empty vault; with it a wrong key is an ``IntegrityError`` at open.
 
 ``seq`` gives insertion order; an upsert keeps the record's first position.  A
 file in the first layout (``user_version`` 0, rids in the clear) is rewritten
