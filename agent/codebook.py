@@ -60,6 +60,9 @@ MOTION_BANDS = ("sedentary", "light", "mvpa")
 # this root-mean-square distance per standardised dimension of the old centroid
 # (half a standard deviation per feature: design choice, no source).
 CENTROID_GATE_SD = 0.5
+# A refit keeps the current k unless another k's silhouette is higher by more
+# than this (design choice: demo silhouettes of neighbouring k differ by ~0.01).
+SILHOUETTE_HYSTERESIS = 0.02
 # A place cluster keeps an old ID if its centroid lies within this many place
 # radii of the old centroid, or if some of its stays lie within one radius of it
 # (a cluster's centroid can drift by up to its radius: design choice).
@@ -387,6 +390,7 @@ class CentroidCodebook:
         z = (x - scaler.mean_) / scale
         best = None
         scores = {}
+        fits = {}
         k_hi = min(self.k_max, len(x) - 1)
         for k in range(self.k_min, k_hi + 1):
             # one thread: k-means on a few thousand rows is faster without OpenMP
@@ -400,10 +404,16 @@ class CentroidCodebook:
             s = float(silhouette_score(z, km.labels_, sample_size=min(len(z), 2000),
                                        random_state=self.seed))
             scores[str(k)] = round(s, 6)
+            fits[k] = (s, k, km)
             if best is None or s > best[0] + 1e-9:
                 best = (s, k, km)
         if best is None:
             raise ValueError(f"{self.kind} codebook: features do not separate into >= 2 clusters")
+        # hysteresis: keep the current number of classes unless another k is clearly
+        # better, so near-ties in silhouette do not retire and mint IDs at every refit
+        prev = len(self.active())
+        if prev in fits and fits[prev][0] >= best[0] - SILHOUETTE_HYSTERESIS:
+            best = fits[prev]
         sil, k, km = best
         cz = km.cluster_centers_
         craw = cz * scale + scaler.mean_

@@ -598,3 +598,38 @@ def test_demo_capped_graph_is_flatter_and_within_the_cap(demo_run):
     flat = {k: round(r[k]["flatness"], 3) for k in r}
     assert flat["capped"] > flat["binary"] and flat["capped"] > flat["counts"], flat
     assert r["capped"]["ratio"] < r["counts"]["ratio"], {k: r[k]["ratio"] for k in r}
+
+
+def _fake_silhouette(table):
+    def score(z, labels, **kw):
+        return table[len(set(np.asarray(labels).tolist()))]
+    return score
+
+
+def test_refit_keeps_k_on_a_near_tie(monkeypatch):
+    import sklearn.metrics
+
+    rng = np.random.default_rng(9)
+    x = _blobs(rng, CENTRES, 30)
+    cb = CentroidCodebook("S", 3, 3, seed=0)
+    cb.fit(x, now=0.0)
+    monkeypatch.setattr(sklearn.metrics, "silhouette_score", _fake_silhouette({3: 0.50, 4: 0.51}))
+    fresh = CentroidCodebook("S", 3, 4, seed=0)
+    fresh.fit(x, now=1.0)
+    assert fresh.k == 4  # without history the best k wins
+    refit = CentroidCodebook("S", 3, 4, seed=0, state=cb.to_dict())
+    refit.fit(x, now=1.0)
+    assert refit.k == 3  # 0.51 - 0.50 is inside the hysteresis margin
+
+
+def test_refit_changes_k_when_clearly_better(monkeypatch):
+    import sklearn.metrics
+
+    rng = np.random.default_rng(10)
+    x = _blobs(rng, CENTRES, 30)
+    cb = CentroidCodebook("S", 3, 3, seed=0)
+    cb.fit(x, now=0.0)
+    monkeypatch.setattr(sklearn.metrics, "silhouette_score", _fake_silhouette({3: 0.40, 4: 0.60}))
+    refit = CentroidCodebook("S", 3, 4, seed=0, state=cb.to_dict())
+    refit.fit(x, now=1.0)
+    assert refit.k == 4
