@@ -247,10 +247,15 @@ def test_recovery_of_beta_and_tau_reaches_point_nine():
     eps = routine_episodes(14, seed=1)
     mg = ModelGraph.from_graph(CooccurrenceGraph.from_episodes(eps, None, cap_rule="strongest"))
     trials = quiz_trials(eps, 150, seed=2)
-    spec = ModelSpec(mg, reference=None, fit_theta=False, name="beta_tau")
-    rec = recover(mg, trials, n_sims=30, seed=0, spec=spec)
+    rec = recover(mg, trials, n_sims=30, seed=0, model="beta_tau")
     assert rec["params"]["beta"]["r"] >= 0.9
     assert rec["params"]["tau"]["r"] >= 0.9
+
+
+def test_recovery_rejects_unknown_model(demo):
+    _, _, mg, trials, _ = demo
+    with pytest.raises(ValueError, match="expected one of"):
+        recover(mg, trials, n_sims=3, model="everything")
 
 
 def test_recovery_needs_three_simulations(demo):
