@@ -217,3 +217,47 @@ def test_withdrawn_participant(study):
                                        {"seq": 9, "hash": "ab" * 32}, {"episodes": 60})
     register_withdrawal(study.dir, write_withdrawal_certificate(study.tmp / "w.json", cert))
     refuse(study, data, StateError, "withdrew on")
+
+
+# -- fail closed on any change -----------------------------------------------------
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+@pytest.fixture(scope="module")
+def sealed(tmp_path_factory):
+    from agent.study.card import study_card
+
+    from agent.bundle import read_bundle
+
+    s = Study(tmp_path_factory.mktemp("fuzz"))
+    good, reg, key, approved = s.seal(), Registry.load(s.dir), s.key(), study_card(s.dir).approved_policies
+    read_bundle(good, registry=reg, study_key=key, approved_policies=approved)  # the original opens
+    return s, good, reg, key, approved
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_any_flipped_bit_is_refused(sealed, data):
+    from agent.bundle import read_bundle
+    from agent.errors import LetheError
+
+    _, good, reg, key, approved = sealed
+    i = data.draw(st.integers(0, len(good) - 1))
+    bit = data.draw(st.integers(0, 7))
+    bad = bytearray(good)
+    bad[i] ^= 1 << bit
+    with pytest.raises(LetheError):
+        read_bundle(bytes(bad), registry=reg, study_key=key, approved_policies=approved)
+
+
+@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_any_truncation_is_refused(sealed, data):
+    from agent.bundle import read_bundle
+    from agent.errors import LetheError
+
+    _, good, reg, key, approved = sealed
+    n = data.draw(st.integers(0, len(good) - 1))
+    with pytest.raises(LetheError):
+        read_bundle(good[:n], registry=reg, study_key=key, approved_policies=approved)
