@@ -551,7 +551,8 @@ def preview(payload: Mapping) -> str:
     if c["dp"]:
         d = c["dp"]
         L.append(f"    These numbers carry random noise (differential privacy, epsilon {d['epsilon']:g} "
-                 f"per {d['unit']}-level protection, noise scale {d['scale']:g}).")
+                 f"per {d['unit']}-level protection, noise scale {d['scale']:g}). Each preview draws new "
+                 f"noise; the preview you confirm during an export is exactly what is sealed.")
     e = payload["edge_list"]
     if e is not None:
         relab = sorted({n.split(":")[0] for n in e["nodes"]} & set(RELABELLED))
