@@ -614,3 +614,26 @@ def test_unknown_layout_is_refused(home):
     db.close()
     with pytest.raises(IntegrityError, match=r"not a lethe vault layout \(schema version 0"):
         Vault.open(home)
+
+
+def test_two_opens_racing_on_a_first_layout_migrate_once(home):
+    _build_first_layout(home, OLD_ROWS)
+    key = Keystore(home).vault_key()
+    opened, errors = [], []
+
+    def work():
+        try:
+            opened.append(Vault(home.vault_path, key))
+        except Exception as e:  # pragma: no cover - reported below
+            errors.append(e)
+
+    threads = [threading.Thread(target=work) for _ in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors
+    assert sorted(v.migrated for v in opened) == [0, 5]  # one did the work, the other found version 2
+    assert opened[0].rids("stays") == opened[1].rids("stays") == ["1761350400", "1761354000"]
+    for v in opened:
+        v.close()
