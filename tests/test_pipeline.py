@@ -240,3 +240,19 @@ def test_exposure_percentiles_match_numpy():
     assert got["p95_s"] == pytest.approx(np.percentile(xs, 95), abs=1e-4)
     assert got["max_s"] == max(xs) and got["n"] == 7
     assert exposure_stats([])["median_s"] is None
+
+
+def test_file_past_its_deadline_is_taken_and_flagged_late(tmp_path):
+    # The agent was not running: the file is processed at once and its true
+    # exposure recorded, so the audit sees it late instead of a fresh start time.
+    from agent.intake.pipeline import drain
+    from agent.ledger import verify_ledger
+
+    h = make_home(tmp_path / "home", raw_seconds=1, settle_seconds=0.1)
+    drop(h.inbox, "m.mood.csv", b"time\n")
+    time.sleep(1.3)
+    rep = drain(h, h.load_policy(), settle_s=0.0)
+    assert our_files(h.inbox) == []
+    assert rep.over_limit == 1 and rep.exposure["max_s"] > 1.0
+    report = verify_ledger(h)
+    assert [v["check"] for v in report.violations] == ["late"]

@@ -293,3 +293,25 @@ def test_cli_rejects_bad_settle(h):
     cp = subprocess.run([sys.executable, "-m", "agent.cli", "--home", str(h.root), "run", "--settle", "-1"],
                         capture_output=True, text=True, cwd=REPO, env=env, timeout=60)
     assert cp.returncode == 2 and "--settle" in cp.stderr
+
+
+@pytest.mark.timeout(120)
+def test_cli_watch_prints_ready_takes_files_and_stops_on_sigterm(h):
+    import signal
+
+    env = dict(os.environ, LETHE_NO_KEYRING="1")
+    p = subprocess.Popen([sys.executable, "-m", "agent.cli", "--home", str(h.root), "run", "--json"],
+                         cwd=REPO, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        line = p.stderr.readline()
+        assert line.startswith("lethe: watching ") and "ready in" in line
+        drop(h.inbox, "a.mood.csv", mood_csv_bytes(h.load_policy()))
+        _wait_for(lambda: our_files(h.inbox) == [], "the watching agent to take the file")
+        p.send_signal(signal.SIGTERM)
+        out, err = p.communicate(timeout=60)
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.communicate()
+    assert p.returncode == 0, err
+    assert json.loads(out)["featurised"] == {"mood": 1}
