@@ -304,7 +304,8 @@ def researcher_opens(ctx: DemoContext) -> None:
                 f"(participant {r.pseudonym}, bundle #{r.seq}).")
     merged = merge(ctx.study_dir, ctx.workdir / "cohort")
     rep = report(ctx.study_dir, ctx.workdir / "cohort" / "report")
-    ctx.say(f"Cohort tables in {merged}; report at {rep}.")
+    tables = sorted({Path(p).stem for p in merged.values()})
+    ctx.say(f"Cohort tables ({', '.join(tables)}) in {ctx.workdir / 'cohort'}; report at {rep}.")
 
 
 def ethics_board_audits(ctx: DemoContext) -> None:
