@@ -223,7 +223,7 @@ class Vault:
                 if not names:
                     db.execute(_SCHEMA)
                     db.execute(_INDEX)
-                elif names == ["records"] and columns == _LEGACY_COLUMNS and version in (0, 1):
+                elif names == ["records"] and columns == _LEGACY_COLUMNS and version == 0:
                     self.migrated = self._migrate_legacy(db)
                     names = []
                 if not names:
