@@ -201,6 +201,7 @@ def test_intake_counts_from_ledger_and_inbox(h, policy):
     assert c["rejected"] == {"mood": 1}
     assert c["destroyed"] == {"audio": 1, "mood": 1}
     assert c["inbox"]["files"] == 1 and c["inbox"]["limit_s"] == 30.0
+    assert c["inbox"]["subdirectories"] == 0
     assert 0 <= c["inbox"]["oldest_age_s"] < 30.0
 
 

@@ -315,3 +315,17 @@ def test_cli_watch_prints_ready_takes_files_and_stops_on_sigterm(h):
             p.communicate()
     assert p.returncode == 0, err
     assert json.loads(out)["featurised"] == {"mood": 1}
+
+
+def test_cli_points_numba_cache_into_the_home(h):
+    # numba reads NUMBA_CACHE_DIR when first imported (through librosa); the handler must set it first.
+    code = ("import os, sys; os.environ.pop('NUMBA_CACHE_DIR', None)\n"
+            "from agent.cli import main\n"
+            "rc = main(['--home', sys.argv[1], 'run', '--once'])\n"
+            "print(os.environ.get('NUMBA_CACHE_DIR'))\n")
+    env = dict(os.environ, LETHE_NO_KEYRING="1")
+    env.pop("NUMBA_CACHE_DIR", None)
+    cp = subprocess.run([sys.executable, "-c", code, str(h.root)], capture_output=True, text=True, cwd=REPO,
+                        env=env, timeout=120)
+    assert cp.returncode == 0, cp.stderr
+    assert cp.stdout.strip().splitlines()[-1] == str(h.numba_cache)

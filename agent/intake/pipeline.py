@@ -653,7 +653,8 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
     dict
         ``{"received": {kind: n}, "featurised": {...}, "rejected": {...},
         "destroyed": {...}, "reasons": {reason: n}, "exposure": {...},
-        "inbox": {"files": n, "oldest_age_s": float | None, "limit_s": float}}``.
+        "inbox": {"files": n, "oldest_age_s": float | None, "limit_s": float,
+        "subdirectories": n}}``.
         Reads the ledger without a signing key and lists the inbox without
         opening any file.
     """
@@ -677,7 +678,7 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
                 if ev == "destroyed" and e.get("exposure_s") is not None:
                     exp.append(e["exposure_s"])
     now = time.time() if now is None else float(now)
-    files, oldest = 0, None
+    files, subdirs, oldest = 0, 0, None
     try:
         with os.scandir(h.inbox) as it:
             for d in it:
@@ -688,6 +689,7 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
                 except FileNotFoundError:
                     continue
                 if stat.S_ISDIR(st.st_mode):
+                    subdirs += 1  # never entered nor removed; reported so the participant can look
                     continue
                 files += 1
                 age = now - max(st.st_mtime, st.st_ctime)
@@ -703,5 +705,5 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
     out = {k: dict(v) for k, v in counts.items()}
     out.update(reasons=dict(reasons), exposure=exposure_stats(exp),
                inbox={"files": files, "oldest_age_s": None if oldest is None else round(max(oldest, 0.0), 3),
-                      "limit_s": limit})
+                      "limit_s": limit, "subdirectories": subdirs})
     return out
