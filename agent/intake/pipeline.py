@@ -241,6 +241,48 @@ class Intake:
         backfill fast.  Entries that are gone, ignored, directories or changed
         under us are left out of the result.
         """
+        return self._back(self._front(names, judged_at))
+
+    def process_groups(self, groups, on_outcome=None) -> list[Outcome]:
+        """:meth:`process_many` over several groups, the next group's reading and featurising
+        overlapping the previous group's durable half (commit, ledger, destruction).
+
+        Per file the order of steps is unchanged; only different files' steps
+        overlap.  A group whose processing fails is left in the inbox for the
+        next pass (as after a crash) and logged by its error class.
+        """
+        from concurrent.futures import ThreadPoolExecutor
+
+        outs: list[Outcome] = []
+
+        def collect(fut):
+            try:
+                got = fut.result()
+            except (OSError, ValueError) as e:
+                log.error("intake_error group error=%s", type(e).__name__)
+                return
+            outs.extend(got)
+            if on_outcome is not None:
+                for o in got:
+                    on_outcome(o)
+
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="lethe-commit") as ex:
+            fut = None
+            for names in groups:
+                try:
+                    works = self._front(names)
+                except (OSError, ValueError) as e:
+                    log.error("intake_error group error=%s", type(e).__name__)
+                    works = []
+                if fut is not None:
+                    collect(fut)
+                fut = ex.submit(self._back, works)
+            if fut is not None:
+                collect(fut)
+        return outs
+
+    def _front(self, names, judged_at: float | None = None) -> list:
+        """Steps 1-5 for a group: look, open, read, MAC, ``received``, featurise."""
         judged_at = time.time() if judged_at is None else float(judged_at)
         works: list[_Work] = []
         try:
@@ -248,11 +290,23 @@ class Intake:
                 w = self._prepare(name, judged_at)
                 if w is not None:
                     works.append(w)
+            if works:
+                self.ledger.append_many([("received", {"item": w.out.item, "kind": w.out.kind,
+                                                       "bytes": w.out.bytes, "complete_at": w.out.complete_at})
+                                         for w in works])
+                self._featurise_all(works)
+            return works
+        except BaseException:
+            for w in works:
+                if w.opened is not None:
+                    w.opened.close()
+            raise
+
+    def _back(self, works) -> list[Outcome]:
+        """Steps 6-9 for a group: vault commit, ``featurised``/``rejected``, destroy, ``destroyed``."""
+        try:
             if not works:
                 return []
-            self.ledger.append_many([("received", {"item": w.out.item, "kind": w.out.kind, "bytes": w.out.bytes,
-                                                   "complete_at": w.out.complete_at}) for w in works])
-            self._featurise_all(works)
             self._commit_all(works)
             steps = []
             for w in works:
@@ -592,10 +646,8 @@ def drain(home, policy, now: float | None = None, *, settle_s: float | None = No
             ready, settling, dirs = intake.scan(settle_s=settle_s)
             for name, why in dirs:
                 skipped[name] = f"{intake.inbox.display(name)}: {why}; never entered nor removed"
-            for group in batches(ready, intake.inbox.max_file_bytes):
-                for out in _process_safely(intake, [c.name for c in group], outcomes):
-                    if on_outcome is not None:
-                        on_outcome(out)
+            groups = ([c.name for c in g] for g in batches(ready, intake.inbox.max_file_bytes))
+            outcomes += intake.process_groups(groups, on_outcome=on_outcome)
             if not ready and not settling:
                 break
             if not ready:
