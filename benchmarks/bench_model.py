@@ -116,7 +116,8 @@ def main(argv=None):
                   f"{r['max_abs_diff']:>9.1e}")
         print()
         print("full 5-fold fit (4 restarts; model + chance, frequency, centrality, time-links)")
-        for days, n_trials, rule in ((14, 100, "arrival"), (14, 100, "strongest"), (91, 300, "strongest")):
+        for days, n_trials, rule in ((14, 100, "arrival"), (14, 100, "strongest"), (91, 300, "arrival"),
+                                     (91, 300, "strongest")):
             r = fit_time(days, n_trials, cap_rule=rule)
             lo, hi = r["agreement_ci"]
             print(f"  {days:>3} days, {n_trials} trials, cap {rule:<9}: {r['nodes']} nodes, "

@@ -44,6 +44,9 @@ from .likelihood import (LOG_TAU_BOUNDS, ActivationCache, ModelSpec, model_log_p
 # 50 is 5e-6 nats, far below anything the held-out metrics can resolve
 FTOL = 1e-7
 SCREEN = 8  # random draws screened per restart
+# line-search steps per iteration (default 20): at a jump of the piecewise-smooth
+# objective extra steps only spend evaluations without getting past it
+MAXLS = 10
 
 
 class Chance:
@@ -185,7 +188,7 @@ class EigenModel:
         best, self.runs = None, []
         for p0 in starts:
             res = minimize(f, p0, jac=True, method="L-BFGS-B", bounds=self.spec.bounds(),
-                           options={"maxiter": self.maxiter, "ftol": FTOL})
+                           options={"maxiter": self.maxiter, "ftol": FTOL, "maxls": MAXLS})
             self.runs.append({"nll": float(res.fun), "converged": bool(res.success), "nit": int(res.nit)})
             if best is None or res.fun < best.fun:
                 best = res
