@@ -4,7 +4,6 @@ import json
 import shutil
 
 import numpy as np
-import pytest
 
 from agent.cli import main
 from agent.errors import EXIT_DATA, EXIT_STATE

@@ -262,3 +262,33 @@ def test_recovery_needs_three_simulations(demo):
     _, _, mg, trials, _ = demo
     with pytest.raises(ValueError, match="at least 3"):
         recover(mg, trials, n_sims=2)
+
+
+def test_time_links_spec_zeroes_every_other_pair(demo):
+    _, _, mg, _, _ = demo
+    spec = ModelSpec.time_links(mg)
+    theta, _, _ = spec.unpack(spec.start())
+    for pair, w in zip(mg.type_pairs, theta):
+        timeish = "place" in pair and ({"hour", "weekday", "week"} & set(pair))
+        assert (w > 0) == bool(timeish), pair
+
+
+def test_frequency_without_episodes_uses_graph_counts():
+    nodes = [("hour", "9"), ("weekday", "0"), ("place", "P1"), ("place", "P2")]
+    counts = np.zeros((4, 4))
+    counts[0, 3] = counts[3, 0] = 5.0  # hour 9 with P2 five times
+    counts[0, 2] = counts[2, 0] = 1.0
+    a = (counts > 0).astype(float)
+    mg = ModelGraph(a, [k for k, _ in nodes], {v: i for i, v in enumerate(nodes)}, counts=counts)
+    trial = {"trial_id": "t", "date": "d", "hour": 9, "weekday": 0, "week": 1,
+             "options": ["P1", "P2"], "correct": "P2", "choice": "P2"}
+    f = Frequency(mg, None)
+    assert f.source == "graph counts"
+    s = f.scores(TrialDesign(mg, [trial]))
+    assert s[0, 1] > s[0, 0]
+
+
+def test_fit_notes_a_disconnected_graph(fitted):
+    # the strongest-cap 10-day graph leaves some hour nodes without edges
+    assert fitted.fit["components"] > 1
+    assert any("connected components" in n for n in fitted.notes)
