@@ -43,6 +43,7 @@ from .likelihood import (LOG_TAU_BOUNDS, ActivationCache, ModelSpec, model_log_p
 # relative change of the objective at which L-BFGS-B stops; 1e-7 of an NLL near
 # 50 is 5e-6 nats, far below anything the held-out metrics can resolve
 FTOL = 1e-7
+GTOL = 1e-4  # largest projected gradient component, in nats per log-unit
 SCREEN = 8  # random draws screened per restart
 # line-search steps per iteration (default 20): at a jump of the piecewise-smooth
 # objective extra steps only spend evaluations without getting past it
@@ -182,13 +183,14 @@ class EigenModel:
         # the objective is piecewise smooth, and a local method only finds the
         # piece it starts in.  The box centre is always one of the starts.
         draws = [self.spec.start(rng) for _ in range(SCREEN * self.restarts)]
-        values = np.array([f(q)[0] for q in draws])
+        values = np.array([negative_log_likelihood(self.spec, cache, q) + self.spec.penalty(q)[0]
+                           for q in draws])
         best_draws = [draws[i] for i in np.argsort(values)[: self.restarts - 1]]
         starts = [self.spec.start()] + best_draws
         best, self.runs = None, []
         for p0 in starts:
             res = minimize(f, p0, jac=True, method="L-BFGS-B", bounds=self.spec.bounds(),
-                           options={"maxiter": self.maxiter, "ftol": FTOL, "maxls": MAXLS})
+                           options={"maxiter": self.maxiter, "ftol": FTOL, "gtol": GTOL, "maxls": MAXLS})
             self.runs.append({"nll": float(res.fun), "converged": bool(res.success), "nit": int(res.nit)})
             if best is None or res.fun < best.fun:
                 best = res
