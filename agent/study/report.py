@@ -37,36 +37,66 @@ def _fig():
     return plt
 
 
+def _metric_table(metrics) -> dict:
+    """``{pseudonym: {source: {metric: value}}}`` for the latest bundle of each participant."""
+    out: dict = {}
+    for m in _latest(metrics):
+        out.setdefault(m["pseudonym"], {}).setdefault(m["source"], {})[m["metric"]] = m["value"]
+    return out
+
+
 def _plot_accuracy(quiz, metrics, path: Path) -> bool:
+    """Two panels per participant, each point with its 95% interval.
+
+    Left: held-out agreement with the participant's own choices (what the model
+    is fitted to), the model against each baseline.  Right: accuracy against the
+    true place, the participant's own score (Wilson interval) beside the model's
+    and the baselines'.  Chance is the red line.
+    """
     rows = [r for r in _latest(quiz) if r["answered"]]
     if not rows:
         return False
+    table = _metric_table(metrics)
     plt = _fig()
-    fig, ax = plt.subplots(figsize=(9, 0.6 * len(rows) + 1.8))
-    base = {}
-    for m in _latest(metrics):
-        if m["source"].startswith("baseline:") and m["metric"] == "accuracy":
-            base.setdefault(m["pseudonym"], {})[m["source"].split(":", 1)[1]] = m["value"]
-    markers = ["s", "^", "D", "v", "P"]
-    names = sorted({b for d in base.values() for b in d})
-    for y, r in enumerate(rows):
-        lo, hi = wilson_interval(r["correct"], r["answered"])
-        ax.errorbar(r["accuracy"], y, xerr=[[r["accuracy"] - lo], [hi - r["accuracy"]]], fmt="o",
-                    color="black", capsize=3, label="participant (95% Wilson)" if y == 0 else None)
-        if r.get("chance") is not None:
-            ax.plot([r["chance"]] * 2, [y - 0.35, y + 0.35], color="tab:red",
-                    label="chance" if y == 0 else None)
-        for i, b in enumerate(names):
-            v = base.get(r["pseudonym"], {}).get(b)
-            if v is not None:
-                ax.plot(v, y, markers[i % len(markers)], color=f"C{i}", alpha=0.8,
-                        label=f"baseline: {b}" if y == 0 else None)
-    ax.set_yticks(range(len(rows)), [r["pseudonym"] for r in rows])
-    ax.set_xlim(0, 1)
-    ax.set_xlabel("memory-test accuracy (fraction correct)")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8)
-    ax.set_title("Accuracy per participant against chance and baselines")
-    fig.tight_layout()
+    fig, axes = plt.subplots(1, 2, figsize=(12, 0.9 * len(rows) + 2.2), sharey=True)
+    sources = ["cv"] + sorted({s for d in table.values() for s in d
+                               if s.startswith("baseline:") and s != "baseline:chance_level"})
+    labels = {"cv": "model (held out)"}
+    markers = ["o", "s", "^", "D", "v", "P", "X"]
+    step = 0.7 / max(len(sources), 1)
+    for ax, metric, title in ((axes[0], "agreement", "Held-out agreement with the participant's choices"),
+                              (axes[1], "accuracy", "Accuracy against the true place")):
+        for y, r in enumerate(rows):
+            d = table.get(r["pseudonym"], {})
+            for i, src in enumerate(sources):
+                m = d.get(src, {})
+                v = m.get(metric)
+                if v is None:
+                    continue
+                lo, hi = m.get(f"{metric}_ci_low", v), m.get(f"{metric}_ci_high", v)
+                yy = y - 0.35 + (i + 0.5) * step
+                ax.errorbar(v, yy, xerr=[[max(v - lo, 0)], [max(hi - v, 0)]], fmt=markers[i % len(markers)],
+                            color=f"C{i}", capsize=2, markersize=5,
+                            label=labels.get(src, src.replace("baseline:", "baseline: ")) if y == 0 else None)
+            if metric == "accuracy":
+                lo, hi = wilson_interval(r["correct"], r["answered"])
+                ax.errorbar(r["accuracy"], y + 0.42, xerr=[[r["accuracy"] - lo], [hi - r["accuracy"]]],
+                            fmt="*", color="black", capsize=3, markersize=9,
+                            label="participant's own score" if y == 0 else None)
+            if r.get("chance") is not None:
+                ax.axvline(r["chance"], color="tab:red", lw=1, label="chance" if y == 0 else None)
+        ax.set_xlim(0, 1)
+        ax.set_xlabel(f"{metric} (fraction of answered trials, 95% intervals)")
+        ax.set_title(title, fontsize=10)
+    axes[0].set_yticks(range(len(rows)), [r["pseudonym"] for r in rows])
+    handles, names = [], []
+    for ax in axes:
+        for h, n in zip(*ax.get_legend_handles_labels()):
+            if n not in names:
+                handles.append(h)
+                names.append(n)
+    fig.legend(handles, names, loc="lower center", ncol=4, fontsize=8, bbox_to_anchor=(0.5, 0.0))
+    fig.tight_layout(rect=(0, 0.12, 1, 1))
     fig.savefig(path, dpi=100)
     plt.close(fig)
     return True
@@ -145,7 +175,7 @@ def report(study_dir, out) -> Path:
              f"sent at least one bundle; {len(t['coverage'])} bundle(s) opened. Each participant's latest "
              f"bundle is shown. lethe {html.escape(__version__)}.</p>"]
 
-    parts.append("<h2>Memory test: accuracy against chance and baselines</h2>")
+    parts.append("<h2>Memory test: the model against chance and baselines</h2>")
     if _plot_accuracy(t["quiz"], t["metrics"], out / "accuracy.png"):
         parts.append('<img src="accuracy.png" alt="accuracy per participant">')
     rows = []
