@@ -257,3 +257,23 @@ def test_file_past_its_deadline_is_taken_and_flagged_late(tmp_path):
     assert rep.over_limit == 1 and rep.exposure["max_s"] > 1.0
     report = verify_ledger(h)
     assert [v["check"] for v in report.violations] == ["late"]
+
+
+@pytest.mark.timeout(60)
+def test_drain_reports_instead_of_spinning_on_a_persistent_failure(h, policy, monkeypatch):
+    from agent.intake.pipeline import Intake, drain
+
+    it = Intake(h, policy)
+
+    def full_disk(*a, **k):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(it.ledger, "append_many", full_disk)
+    drop(h.inbox, "a.mood.csv", mood_csv_bytes(policy))
+    try:
+        rep = drain(h, policy, settle_s=0.0, intake=it)
+    finally:
+        it.close()
+    assert rep.total("received") == 0
+    assert any("a.mood.csv" in s and "could not be processed" in s for s in rep.skipped)
+    assert our_files(h.inbox) == ["a.mood.csv"]  # left for a later run, never half-handled

@@ -641,15 +641,26 @@ def drain(home, policy, now: float | None = None, *, settle_s: float | None = No
     if own:
         intake = Intake(home, policy, now=now)
     outcomes, skipped = [], {}
+    stuck = 0
     try:
         while True:
             ready, settling, dirs = intake.scan(settle_s=settle_s)
             for name, why in dirs:
                 skipped[name] = f"{intake.inbox.display(name)}: {why}; never entered nor removed"
             groups = ([c.name for c in g] for g in batches(ready, intake.inbox.max_file_bytes))
-            outcomes += intake.process_groups(groups, on_outcome=on_outcome)
+            got = intake.process_groups(groups, on_outcome=on_outcome)
+            outcomes += got
             if not ready and not settling:
                 break
+            stuck = stuck + 1 if ready and not got else 0
+            if stuck >= STUCK_PASSES:
+                # Something keeps failing (a full disk, a broken ledger): report instead of spinning.
+                for c in ready:
+                    skipped[c.name] = (f"{intake.inbox.display(c.name)}: could not be processed in "
+                                       f"{STUCK_PASSES} passes; see the agent log")
+                break
+            if stuck:
+                time.sleep(0.1 * stuck)
             if not ready:
                 wait = min(max(0.0, float(settle_s if settle_s is not None else
                                           policy.retention.settle_seconds)), 1.0)
@@ -664,6 +675,7 @@ def drain(home, policy, now: float | None = None, *, settle_s: float | None = No
 
 
 BATCH_FILES = 32            # files taken together in a backfill
+STUCK_PASSES = 3            # drain passes without progress before it gives up and reports
 BATCH_BYTES = 32 << 20      # and at most this many raw bytes in memory at once
 
 
