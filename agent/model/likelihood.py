@@ -18,6 +18,7 @@ import numpy as np
 
 from .choice import log_probabilities
 from .design import ModelGraph, TrialDesign, pair_key
+from .retrieval import TIE_RTOL
 from .secular import RankOneSolver
 
 LOG_THETA_BOUNDS = (np.log(1e-3), np.log(1e3))
@@ -169,7 +170,10 @@ class ActivationCache:
         self.n_eigh = 0
 
     def solver(self, theta) -> RankOneSolver:
-        key = np.asarray(theta, dtype=np.float64).tobytes()
+        theta = np.asarray(theta, dtype=np.float64)
+        if not np.all(np.isfinite(theta)):
+            raise ValueError(f"theta {theta.tolist()}: expected finite weights")
+        key = theta.tobytes()
         if key != self._theta_key:
             self._solver = RankOneSolver(self.graph.dense_w(theta))
             self._theta_key = key
@@ -256,13 +260,17 @@ def nll_and_grad(spec: ModelSpec, cache: ActivationCache, p):
     sec = st.secular
     if sec.any():
         dd = lam[None, :] - st.mu[sec][:, None]
-        ok = np.abs(dd) > 1e-300
+        # an eigenvalue of W tying with mu (an untouched eigenspace at the
+        # secular root) is a point where v is not differentiable: no gradient
+        # through that direction rather than an infinite one
+        ok = np.abs(dd) > TIE_RTOL * np.maximum(solver.scale, np.abs(st.mu[sec]))[:, None]
         ys = np.where(ok, r[sec] / np.where(ok, dd, 1.0), 0.0)
         ys -= (ys * c[sec]).sum(axis=1, keepdims=True) * c[sec]
         y[sec] = ys
     oth = ~sec
     if oth.any():
-        off = np.arange(n) < solver.top.start
+        off = (np.arange(n) < solver.top.start) & (
+            np.abs(lam - solver.lam_max) > TIE_RTOL * max(solver.scale, 1e-300))
         dd = np.where(off, lam - solver.lam_max, 1.0)[None, :]
         ro = np.where(off, r[oth], 0.0)
         zo = np.where(off, st.z[oth], 0.0)
@@ -270,7 +278,7 @@ def nll_and_grad(spec: ModelSpec, cache: ActivationCache, p):
         if beta > 0:
             zd = zo / dd
             den = 1.0 + beta * (zo * zd).sum(axis=1, keepdims=True)
-            den = np.where(np.abs(den) > 1e-300, den, 1e-300)
+            den = np.where(np.abs(den) > 1e-12, den, np.inf)  # singular: drop the rank-one term
             yo = yo - beta * zd * (zd * ro).sum(axis=1, keepdims=True) / den
         y[oth] = yo
     u = u_ext[:-1]
@@ -289,4 +297,6 @@ def nll_and_grad(spec: ModelSpec, cache: ActivationCache, p):
         qx = (np.take_along_axis(q_ext, d.cue_idx, axis=1) * d.cue_w).sum(axis=1)
         vx = (np.take_along_axis(v_ext, d.cue_idx, axis=1) * d.cue_w).sum(axis=1)
         grad[k] = float(-(qx * vx).sum() * beta)
+    if not np.all(np.isfinite(grad)):  # pragma: no cover - a last guard for L-BFGS-B
+        grad = np.where(np.isfinite(grad), grad, 0.0)
     return nll + pen, grad + pen_grad

@@ -91,7 +91,7 @@ class RankOneSolver:
         self.n = n
         self.tie_rtol = float(tie_rtol)
         if n:
-            lam, u = la.eigh(w, check_finite=False)
+            lam, u = la.eigh(w)
         else:
             lam, u = np.zeros(0), np.zeros((0, 0))
         self.lam = lam
