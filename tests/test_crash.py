@@ -91,11 +91,15 @@ def test_sigkill_at_random_points_during_backfill(tmp_path, monkeypatch):
     rng = random.Random(SEED)
     batches = [_batch(policy, k, rng) for k in range(ROUNDS)]
 
-    # Reference: the same files, the same arrival order, no crash.
+    # Reference: the same files, the same arrival order, no crash.  How long each
+    # round takes here sets the range of kill times, so kills land mid-run.
+    durations = []
     for files in batches:
         for name, data in files.items():
             drop(clean.inbox, name, data)
+        t = time.monotonic()
         drain(clean, policy, settle_s=0.0)
+        durations.append(time.monotonic() - t)
     expected = _vault_counts(clean)
     expected_rows = _rows_in_ledger(clean)
 
@@ -109,7 +113,7 @@ def test_sigkill_at_random_points_during_backfill(tmp_path, monkeypatch):
         try:
             assert child.stdout.readline().strip() == "ready"
             # Somewhere in the pipeline: reading, featurising, committing, destroying, or a ledger write.
-            kill_at = time.monotonic() + rng.uniform(0.0, 0.3)
+            kill_at = time.monotonic() + rng.uniform(0.0, durations[k])
             while time.monotonic() < kill_at and child.poll() is None:
                 worst_age = max(worst_age, _max_age(crash.inbox, time.time()))
                 time.sleep(0.005)
