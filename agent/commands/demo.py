@@ -18,6 +18,17 @@ def register(sub) -> None:
     add_json(p)
     p.set_defaults(func=_demo)
 
+    r = sub.add_parser("simulate", help="demo only: a simulated recorder fills an enrolled home's inbox",
+                       description="Writes the fictional scenario's raw drops (sound snippets, GPS, "
+                                   "accelerometry, mood reports) into HOME/inbox one simulated day at a "
+                                   "time, for trying lethe after 'lethe init'. The days end before today "
+                                   "and the home's study start moves back to the first of them; a home "
+                                   "that already received real data is refused.")
+    r.add_argument("--days", type=int, default=14, help="simulated days (default: 14)")
+    r.add_argument("--seed", type=int, default=7, help="random seed of the scenario (default: 7)")
+    add_json(r)
+    r.set_defaults(func=_simulate)
+
 
 def _demo(args) -> int:
     import io
@@ -36,4 +47,20 @@ def _demo(args) -> int:
     facts = run_demo(args.workdir, days=args.days, seed=args.seed, policy_path=args.policy, out=out)
     if args.json:
         emit(args, facts)
+    return 0
+
+
+def _simulate(args) -> int:
+    import os
+
+    from ..demo.record import record
+    from ._common import home_from
+
+    os.environ.setdefault("MPLBACKEND", "Agg")
+    quiet = bool(args.json)
+    totals = record(home_from(args), days=args.days, seed=args.seed,
+                    say=(lambda s: None) if quiet else print)
+    emit(args, totals, f"Wrote {totals['files']} simulated raw files; the inbox is empty again. "
+                       f"Next: 'lethe codebook' to code them into places, sounds and motion, then "
+                       f"'lethe status', 'lethe places', 'lethe quiz'.")
     return 0
