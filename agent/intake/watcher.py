@@ -112,9 +112,14 @@ class InboxWatcher:
     """
 
     def __init__(self, intake: Intake, settle_s: float | None = None, stop_event: threading.Event | None = None,
-                 on_outcome=None, after_sweep=None):
+                 on_outcome=None, after_sweep=None, maintenance=None, maintenance_every_s: float = 3600.0):
         policy = intake.policy
         self.after_sweep = after_sweep
+        # Periodic work between files (coding features into IDs, building episodes):
+        # one wake-up per interval, so an idle agent still sleeps almost all the time.
+        self.maintenance = maintenance
+        self.maintenance_every_s = float(maintenance_every_s)
+        self.next_maintenance = time.time() + self.maintenance_every_s
         self.intake = intake
         self.settle_s = float(policy.retention.settle_seconds if settle_s is None else settle_s)
         if self.settle_s < 0:
@@ -200,7 +205,17 @@ class InboxWatcher:
                 self._handle(*msg)
             self._check_pending()
             self._process_ready()
+            self._maybe_maintain()
         return self.report(t0)
+
+    def _maybe_maintain(self) -> None:
+        if self.maintenance is None or time.time() < self.next_maintenance:
+            return
+        self.next_maintenance = time.time() + self.maintenance_every_s
+        try:
+            self.maintenance()
+        except Exception as e:  # never let periodic coding stop intake
+            log.warning("periodic coding failed: %s", type(e).__name__)
 
     def report(self, t0: float) -> DrainReport:
         return DrainReport.from_outcomes(self.outcomes, self.intake.raw_seconds, skipped=list(self.skipped),
@@ -208,10 +223,13 @@ class InboxWatcher:
                                          seconds=round(time.time() - t0, 3))
 
     def _next_timeout(self) -> float | None:
-        if not self.pending:
-            return None  # nothing to wait for: block until an event
         now = time.time()
-        soonest = min(min(p.due, p.first_seen + self.force_s) for p in self.pending.values())
+        soonest = self.next_maintenance if self.maintenance is not None else None
+        if self.pending:
+            files = min(min(p.due, p.first_seen + self.force_s) for p in self.pending.values())
+            soonest = files if soonest is None else min(soonest, files)
+        if soonest is None:
+            return None  # nothing to wait for: block until an event
         return max(0.0, soonest - now)
 
     # -- events ------------------------------------------------------------------
@@ -356,9 +374,24 @@ def setup_logging(home) -> logging.Handler | None:
     return handler
 
 
+def code_features(intake) -> None:
+    """Code the stored features into IDs and build episodes (the agent runs this hourly).
+
+    Features are thereby discarded on schedule (``retention.feature_days``)
+    even when nobody runs ``lethe codebook`` by hand.  Skipped while paused.
+    """
+    from ..codebook import run_codebook
+    from ..pause import is_paused
+
+    if is_paused(intake.home):
+        return
+    rep = run_codebook(intake.home, intake.policy, intake.vault, ledger=intake.ledger)
+    log.info("coded: %s", ", ".join(f"{k} {v}" for k, v in sorted(rep.coded.items())) or "nothing")
+
+
 def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
               stop_event: threading.Event | None = None, *, now: float | None = None, warm: bool = True,
-              on_ready=None, on_outcome=None) -> DrainReport:
+              on_ready=None, on_outcome=None, maintenance_every_s: float = 3600.0) -> DrainReport:
     """Run the intake agent on a home: hold its lock, sweep, then watch (or drain and return).
 
     Parameters
@@ -380,6 +413,9 @@ def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
     on_ready : callable, optional
         Called with the start-up time in seconds once the agent is ready:
         watching after sweep and warm-up, or (``once``) about to drain.
+    maintenance_every_s : float
+        Watching: how often the stored features are coded into IDs and
+        episodes are built (:func:`code_features`); default hourly.
 
     Returns
     -------
@@ -392,14 +428,16 @@ def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
     handler = setup_logging(h)
     try:
         with h.lock("agent"):
-            return _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_outcome, t_start)
+            return _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_outcome, t_start,
+                               maintenance_every_s)
     finally:
         if handler is not None:
             logging.getLogger("lethe").removeHandler(handler)
             handler.close()
 
 
-def _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_outcome, t_start):
+def _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_outcome, t_start,
+                maintenance_every_s=3600.0):
     from .pipeline import drain
 
     intake = Intake(h, policy, now=now)
@@ -427,7 +465,8 @@ def _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_o
             report = drain(h, policy, now=now, settle_s=settle_s, intake=intake, on_outcome=on_outcome)
         else:
             watcher = InboxWatcher(intake, settle_s=settle_s, stop_event=stop_event, on_outcome=on_outcome,
-                                   after_sweep=warm_and_ready)
+                                   after_sweep=warm_and_ready, maintenance=lambda: code_features(intake),
+                                   maintenance_every_s=maintenance_every_s)
             watcher.start()
             try:
                 report = watcher.run()
