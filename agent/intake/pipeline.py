@@ -526,20 +526,16 @@ def open_items(ledger) -> dict[str, dict]:
 def exposure_stats(values) -> dict:
     """``{"n", "median_s", "p95_s", "max_s"}``; empty: None.
 
-    Percentiles interpolate linearly between order statistics (Hyndman and Fan
-    type 7, numpy's default), as the ledger verifier does, so the two agree.
+    The same statistics as the ledger verifier's (:func:`agent.ledger.exposure_stats`,
+    Hyndman and Fan type 7), so ``lethe status`` and ``lethe audit verify`` agree.
     """
-    xs = sorted(float(v) for v in values if v is not None)
-    if not xs:
+    from ..ledger import exposure_stats as ledger_stats
+
+    st = ledger_stats([float(v) for v in values if v is not None])
+    if not st.get("n"):
         return {"n": 0, "median_s": None, "p95_s": None, "max_s": None}
-
-    def q(p):
-        h = (len(xs) - 1) * p
-        lo = math.floor(h)
-        hi = min(lo + 1, len(xs) - 1)
-        return xs[lo] + (h - lo) * (xs[hi] - xs[lo])
-
-    return {"n": len(xs), "median_s": round(q(0.5), 4), "p95_s": round(q(0.95), 4), "max_s": round(xs[-1], 4)}
+    return {"n": st["n"], "median_s": round(st["median"], 4), "p95_s": round(st["p95"], 4),
+            "max_s": round(st["max"], 4)}
 
 
 @dataclass
