@@ -35,7 +35,6 @@ item id
 from __future__ import annotations
 
 import logging
-import math
 import os
 import stat
 import time
