@@ -38,3 +38,11 @@ def home(tmp_path, monkeypatch):
     root = tmp_path / "home"
     monkeypatch.setenv("LETHE_HOME", str(root))
     return Home(root).create()
+
+
+@pytest.fixture
+def h(tmp_path):
+    """A created home with the default policy copied in (the intake tests' home)."""
+    from intake_samples import make_home
+
+    return make_home(tmp_path / "home")

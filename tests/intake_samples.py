@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 
 REPO = Path(__file__).resolve().parent.parent
-T0 = 1793800800.0  # 2026-11-04T12:00:00Z, a fixed study-time origin
+T0 = 1793800800.0  # 2026-11-04T14:00:00Z, a fixed study-time origin
 
 
 def stamp(t: float) -> str:

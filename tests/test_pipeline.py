@@ -10,16 +10,6 @@ import pytest
 from intake_samples import T0, age_files, drop, make_home, mood_csv_bytes, our_files, stamp, valid_set, wav_bytes
 
 
-@pytest.fixture(autouse=True)
-def _no_keyring(monkeypatch):
-    monkeypatch.setenv("LETHE_NO_KEYRING", "1")
-
-
-@pytest.fixture
-def h(tmp_path):
-    return make_home(tmp_path / "home")
-
-
 @pytest.fixture
 def policy(h):
     return h.load_policy()

@@ -57,11 +57,6 @@ def _silent_wav() -> bytes:
     return buf.getvalue()
 
 
-@pytest.fixture(autouse=True)
-def _no_keyring(monkeypatch):
-    monkeypatch.setenv("LETHE_NO_KEYRING", "1")
-
-
 @pytest.mark.timeout(60)
 def test_bad_input_table(tmp_path):
     from agent.intake.pipeline import drain

@@ -10,16 +10,6 @@ HOME_LAT, HOME_LON = 38.53, -28.63      # a fictional dwell location
 AWAY_LAT, AWAY_LON = 38.56, -28.60      # about 4 km away
 
 
-@pytest.fixture(autouse=True)
-def _no_keyring(monkeypatch):
-    monkeypatch.setenv("LETHE_NO_KEYRING", "1")
-
-
-@pytest.fixture
-def h(tmp_path):
-    return make_home(tmp_path / "home")
-
-
 def _drain(h):
     from agent.intake.pipeline import drain
 

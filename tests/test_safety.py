@@ -11,16 +11,6 @@ import pytest
 from intake_samples import T0, drop, make_home, mood_csv_bytes, our_files, stamp, wav_bytes
 
 
-@pytest.fixture(autouse=True)
-def _no_keyring(monkeypatch):
-    monkeypatch.setenv("LETHE_NO_KEYRING", "1")
-
-
-@pytest.fixture
-def h(tmp_path):
-    return make_home(tmp_path / "home")
-
-
 @pytest.fixture
 def outside(tmp_path):
     """A participant's own file outside the inbox, with its bytes and metadata."""

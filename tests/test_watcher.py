@@ -17,16 +17,6 @@ from intake_samples import REPO, T0, age_files, drop, make_home, mood_csv_bytes,
 WAIT_S = 30.0  # upper bound for an event to show up before a test fails; never a measured figure
 
 
-@pytest.fixture(autouse=True)
-def _no_keyring(monkeypatch):
-    monkeypatch.setenv("LETHE_NO_KEYRING", "1")
-
-
-@pytest.fixture
-def h(tmp_path):
-    return make_home(tmp_path / "home")
-
-
 @pytest.fixture
 def intake(h):
     from agent.intake.pipeline import Intake
