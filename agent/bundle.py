@@ -249,7 +249,7 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
     try:
         plaintext = suite_of(header["suite"]).decrypt(parts.enc + parts.ciphertext, study_key.private_key(),
                                                       info=parts.header_bytes)
-    except (InvalidTag, ValueError) as e:
+    except (InvalidTag, ValueError):
         raise IntegrityError(f"{source}: HPKE open failed (AEAD tag does not verify): the ciphertext was not "
                              f"sealed to this study key under this header") from None
 

@@ -573,7 +573,7 @@ def preview(payload: Mapping) -> str:
         L.append(f"  * Memory test summary: {q['trials']} questions, {q['answered']} answered, {acc}{ch}.")
     g = payload["ledger_digest"]
     mx = g.get("max_exposure_s")
-    L.append(f"  * The audit log's summary: event counts, "
+    L.append("  * The audit log's summary: event counts, "
              + (f"the longest time a raw file existed ({mx:.1f} s), " if mx is not None else "")
              + f"{g['violations']} retention violation(s), and the log's last entry #{g['head']['seq']}.")
     for k, why in sorted(payload["withheld"].items()):

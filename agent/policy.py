@@ -395,22 +395,30 @@ def _nearest(key: str, fields) -> str | None:
     return m[0] if m else None
 
 
-def load_policy(path) -> Policy:
-    """Read and validate a policy file.  Errors name the file and the key."""
+def read_toml(path, error=PolicyError, what: str = "policy") -> dict:
+    """Parse a TOML file; ``error(path, key, message)`` is raised naming the file.
+
+    Shared by every TOML format of ours (policies, board limits), so that a
+    missing file, a non-UTF-8 file and a syntax error read the same everywhere.
+    """
     path = Path(path)
     try:
         data = path.read_bytes()
     except FileNotFoundError:
-        raise PolicyError(path, "<file>", "no such policy file") from None
+        raise error(path, "<file>", f"no such {what} file") from None
     except OSError as e:
-        raise PolicyError(path, "<file>", f"cannot read: {e.strerror}") from None
+        raise error(path, "<file>", f"cannot read: {e.strerror}") from None
     try:
-        raw = tomllib.loads(data.decode("utf-8"))
+        return tomllib.loads(data.decode("utf-8"))
     except UnicodeDecodeError as e:
-        raise PolicyError(path, "<file>", f"not UTF-8 text (byte {e.start})") from None
+        raise error(path, "<file>", f"not UTF-8 text (byte {e.start})") from None
     except tomllib.TOMLDecodeError as e:
-        raise PolicyError(path, "<syntax>", f"not valid TOML: {e}") from None
-    return validate(raw, str(path))
+        raise error(path, "<syntax>", f"not valid TOML: {e}") from None
+
+
+def load_policy(path) -> Policy:
+    """Read and validate a policy file.  Errors name the file and the key."""
+    return validate(read_toml(path), str(Path(path)))
 
 
 def policy_from_dict(raw: dict, source: str = "<memory>") -> Policy:

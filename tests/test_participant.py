@@ -102,7 +102,7 @@ def test_withdrawal_leaves_only_a_verifiable_certificate(enrolled):
     with Vault.open(home) as v:
         v.put("episodes", "k", {"place": "P1"})
     (home.inbox / "waiting.wav").write_bytes(b"RIFF....")
-    res = withdraw(home)
+    withdraw(home)
     left = [os.path.relpath(os.path.join(d, f), home.root) for d, _, fs in os.walk(home.root) for f in fs]
     assert left == ["withdrawal-certificate.json"]
     cert = json.loads((home.root / "withdrawal-certificate.json").read_text())

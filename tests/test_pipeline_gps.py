@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from intake_samples import T0, drop, gps_csv_bytes, make_home, stamp
+from intake_samples import T0, drop, gps_csv_bytes, stamp
 
 HOME_LAT, HOME_LON = 38.53, -28.63      # a fictional dwell location
 AWAY_LAT, AWAY_LON = 38.56, -28.60      # about 4 km away

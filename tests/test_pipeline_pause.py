@@ -7,7 +7,7 @@ import time
 
 import pytest
 
-from intake_samples import T0, drop, make_home, our_files, stamp, wav_bytes
+from intake_samples import T0, drop, our_files, stamp, wav_bytes
 
 
 @pytest.fixture

@@ -8,7 +8,7 @@ import stat
 
 import pytest
 
-from intake_samples import T0, drop, make_home, mood_csv_bytes, our_files, stamp, wav_bytes
+from intake_samples import T0, drop, mood_csv_bytes, our_files, stamp, wav_bytes
 
 
 @pytest.fixture

@@ -12,7 +12,7 @@ import time
 
 import pytest
 
-from intake_samples import REPO, T0, age_files, drop, make_home, mood_csv_bytes, our_files, stamp, wav_bytes
+from intake_samples import REPO, T0, age_files, drop, mood_csv_bytes, our_files, stamp, wav_bytes
 
 WAIT_S = 30.0  # upper bound for an event to show up before a test fails; never a measured figure
 

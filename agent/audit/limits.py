@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import difflib
 import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -229,20 +228,9 @@ def validate_limits(raw: dict, source: str = "<memory>") -> Limits:
 
 def load_limits(path) -> Limits:
     """Read and validate a board limits file; errors name the file and the key."""
-    path = Path(path)
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise LimitsError(path, "<file>", "no such limits file") from None
-    except OSError as e:
-        raise LimitsError(path, "<file>", f"cannot read: {e.strerror}") from None
-    try:
-        raw = tomllib.loads(data.decode("utf-8"))
-    except UnicodeDecodeError as e:
-        raise LimitsError(path, "<file>", f"not UTF-8 text (byte {e.start})") from None
-    except tomllib.TOMLDecodeError as e:
-        raise LimitsError(path, "<syntax>", f"not valid TOML: {e}") from None
-    return validate_limits(raw, str(path))
+    from ..policy import read_toml
+
+    return validate_limits(read_toml(path, LimitsError, "limits"), str(Path(path)))
 
 
 def _policy_value(policy: Policy, dotted: str):

@@ -751,7 +751,7 @@ def _write_accel(tl, day, t0, t1, inbox, sch, seed):
 # -- mood ---------------------------------------------------------------------------------
 def mood_ratings(tl: Timeline, t: float, emotions, lo: int, hi: int, r) -> dict[str, int]:
     """Ratings biased by where the participant is (or how they travel, or a sick day)."""
-    sc, md = tl.scenario, tl.scenario.mood
+    md = tl.scenario.mood
     seg = tl.segment_at(t)
     keys = []
     if seg is not None:

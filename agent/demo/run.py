@@ -15,8 +15,6 @@ old enough for the memory test (``quiz.min_age_days``).
 
 from __future__ import annotations
 
-import json
-import shutil
 import sys
 import tempfile
 import time

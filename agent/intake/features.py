@@ -202,8 +202,6 @@ def zero_crossing_rate(y: np.ndarray, frame_length: int, hop_length: int) -> np.
     Frames are centred with edge padding; samples within 1e-10 of zero count
     as positive zero; a crossing is a change of sign bit between neighbours.
     """
-    from numpy.lib.stride_tricks import sliding_window_view
-
     pad = frame_length // 2
     x = np.pad(np.asarray(y, dtype=np.float32), (pad, pad), mode="edge")
     x = np.where(np.abs(x) <= 1e-10, np.float32(0.0), x)
