@@ -184,7 +184,8 @@ SCHEMA: dict[str, dict[str, Field]] = {
     "graph": {
         "nodes": Field(list, list(NODE_KINDS), _subset_of(NODE_KINDS, nonempty=True)),
         "degree_cap": Field(int, 5, _range(1, 1000)),
-        "cap_rule": Field(str, "arrival", _one_of("arrival", "strongest")),
+        "cap_rule": Field(str, "strongest", _one_of("strongest", "arrival"),
+                          "which edges survive the cap; see docs/graph.md"),
     },
     "quiz": {
         "min_age_days": Field(NUM, 7.0, _range(0.0, 365.0)),
