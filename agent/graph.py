@@ -168,7 +168,7 @@ class CooccurrenceGraph:
             cap_rule = cap_rule if cap_rule is not None else policy.graph.cap_rule
         kinds = list(kinds) if kinds is not None else list(NODE_KINDS)
         degree_cap = 5 if degree_cap is None else degree_cap
-        cap_rule = "arrival" if cap_rule is None else cap_rule
+        cap_rule = "strongest" if cap_rule is None else cap_rule  # as the policy schema
         bad = [k for k in kinds if k not in NODE_KINDS]
         if bad:
             raise ValueError(f"unknown node kinds {bad}; expected a subset of {list(NODE_KINDS)}")

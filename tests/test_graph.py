@@ -120,7 +120,7 @@ def test_components_match_networkx(episodes):
     # reference: networkx connected components, for the uncapped and the capped graph
     from scipy.sparse.csgraph import connected_components
 
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=3)
+    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=3, cap_rule="arrival")
     n_unc, _ = connected_components(g.binary(), directed=False)
     assert n_unc == nx.number_connected_components(_nx_reference(episodes))
     n_cap, labels = connected_components(g.capped, directed=False)
