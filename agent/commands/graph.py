@@ -24,6 +24,12 @@ def _codebook(args) -> int:
 
     home = home_from(args).require()
     policy = home.load_policy()
+    from ..errors import StateError
+    from ..participant.status import agent_running
+
+    if agent_running(home):
+        raise StateError(f"{home.root}: the agent is running and codes the features itself every hour; "
+                         f"stop it (or 'lethe service remove') to run 'lethe codebook' by hand")
     with home.lock("codebook"), Vault.open(home) as vault:
         report = run_codebook(home, policy, vault)
     d = report.to_dict()

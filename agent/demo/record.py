@@ -33,9 +33,9 @@ def _has_received(home: Home) -> bool:
 
 
 def _agent_holds_lock(home: Home) -> bool:
-    from ..participant.status import _agent_running
+    from ..participant.status import agent_running
 
-    return bool(_agent_running(home))
+    return bool(agent_running(home))
 
 
 def record(home, days: int = 14, seed: int = 7, *, wait_s: float = 60.0, say=print) -> dict:

@@ -14,7 +14,7 @@ import time
 from ..home import Home
 
 
-def _agent_running(home: Home) -> bool | None:
+def agent_running(home: Home) -> bool | None:
     """Whether another process holds the agent lock (None when unknown)."""
     import fcntl
 
@@ -48,7 +48,7 @@ def collect_status(home, now: float | None = None, passphrase=None) -> dict:
         "study_id": cfg.get("study_id"), "pseudonym": cfg.get("pseudonym"),
         "timezone": cfg.get("timezone"),
         "enrolled": _date(cfg.get("enrolled_at")),
-        "agent": {"running": _agent_running(home), "paused": is_paused(home, now),
+        "agent": {"running": agent_running(home), "paused": is_paused(home, now),
                   "paused_until": pause.get("until") if pause.get("paused") else None},
         "policy": {"name": policy.policy.name, "version": policy.policy.version,
                    "fingerprint": policy.fingerprint, "raw_retention_s": policy.retention.raw_seconds},
