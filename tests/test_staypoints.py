@@ -131,7 +131,7 @@ def test_empty_input_gives_nothing():
     assert extract_stays([], 100.0, 20.0) == ([], [])
 
 
-# --- the block-wise search agrees with a plain transcription of the definition ---
+# --- the block-wise search agrees with a plain restatement of the definition ---
 from hypothesis import given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
 
