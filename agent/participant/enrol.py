@@ -77,14 +77,7 @@ def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | Non
                          f"'lethe withdraw' ends an enrolment")
     card = load_card(card_path)
     policy = load_policy(policy_path)
-    check_policy_approved(card, policy)
-    if policy.study.study_id != card.study_id:
-        raise StateError(f"{policy_path}: policy is for study {policy.study.study_id!r} but the card "
-                         f"{card_path} is for {card.study_id!r}")
-    bound = policy.study.key_fingerprint
-    if bound and bound != card.key_fingerprint:
-        raise StateError(f"{policy_path}: [study.key_fingerprint] {bound} does not match the study key "
-                         f"on the card ({card.key_fingerprint})")
+    check_policy_approved(card, policy)  # also: same study id, and a pinned key matches the card
     if (consent or "").strip() != card.study_id:
         raise DataError(f"consent not given: type the study id {card.study_id!r} exactly to agree "
                         f"(got {consent!r})")
