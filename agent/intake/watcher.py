@@ -194,15 +194,7 @@ class InboxWatcher:
                 break
             if msg is not None:
                 self._handle(*msg)
-            while True:  # take everything already queued before working
-                try:
-                    msg = self.q.get_nowait()
-                except queue.Empty:
-                    break
-                if msg == _STOP:
-                    self.stop_event.set()
-                    break
-                self._handle(*msg)
+            self._drain_queue()  # take everything already queued before working
             self._check_pending()
             self._process_ready()
             self._maybe_maintain()
@@ -322,15 +314,20 @@ class InboxWatcher:
                     del self.pending[n]
                 self._take(group)
                 # Events that arrived while working may make other files ready, or change these.
-                while True:
-                    try:
-                        msg = self.q.get_nowait()
-                    except queue.Empty:
-                        break
-                    if msg == _STOP:
-                        self.stop_event.set()
-                        return
-                    self._handle(*msg)
+                if not self._drain_queue():
+                    return
+
+    def _drain_queue(self) -> bool:
+        """Handle every queued event without blocking; False once a stop was asked for."""
+        while True:
+            try:
+                msg = self.q.get_nowait()
+            except queue.Empty:
+                return True
+            if msg == _STOP:
+                self.stop_event.set()
+                return False
+            self._handle(*msg)
 
     def _take(self, names) -> None:
         outs = _process_safely(self.intake, names, self.outcomes)
