@@ -89,6 +89,17 @@ def device_key_id(public_bytes: bytes) -> str:
     return hashlib.sha256(public_bytes).hexdigest()[:16]
 
 
+def _check_header(doc, fmt: str, version: int, source, what: str) -> None:
+    """Object, format and version first, so that a future document is refused as such."""
+    if not isinstance(doc, dict):
+        raise DataError(f"{source}: expected a JSON object ({what})")
+    if doc.get("format") != fmt:
+        raise DataError(f"{source}: [format] expected {fmt!r}, got {doc.get('format')!r}")
+    if doc.get("version") != version:
+        raise DataError(f"{source}: [version] {what} version {doc.get('version')!r} is not supported; "
+                        f"this lethe reads version {version}")
+
+
 def _check_fields(doc, spec: dict, source, what: str) -> None:
     if not isinstance(doc, dict):
         raise DataError(f"{source}: expected a JSON object ({what})")
@@ -123,14 +134,7 @@ def _read_json(path, what: str) -> dict:
 
 def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
     """Validate a card document strictly and return a :class:`StudyCard`."""
-    if not isinstance(doc, dict):
-        raise DataError(f"{source}: expected a JSON object (study card)")
-    # Format and version first, so a future card is refused as such.
-    if doc.get("format") != CARD_FORMAT:
-        raise DataError(f"{source}: [format] expected {CARD_FORMAT!r}, got {doc.get('format')!r}")
-    if doc.get("version") != CARD_VERSION:
-        raise DataError(f"{source}: [version] study card version {doc.get('version')!r} is not supported; "
-                        f"this lethe reads version {CARD_VERSION}")
+    _check_header(doc, CARD_FORMAT, CARD_VERSION, source, "study card")
     _check_fields(doc, CARD_FIELDS, source, "study card")
     _check_study_id(doc["study_id"], source)
     suite = doc["suite"]
@@ -289,13 +293,7 @@ def verify_enrolment(doc: dict, source="<memory>") -> dict:
     from cryptography.exceptions import InvalidSignature
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
-    if not isinstance(doc, dict):
-        raise DataError(f"{source}: expected a JSON object (enrolment)")
-    if doc.get("format") != ENROLMENT_FORMAT:
-        raise DataError(f"{source}: [format] expected {ENROLMENT_FORMAT!r}, got {doc.get('format')!r}")
-    if doc.get("version") != ENROLMENT_VERSION:
-        raise DataError(f"{source}: [version] enrolment version {doc.get('version')!r} is not supported; "
-                        f"this lethe reads version {ENROLMENT_VERSION}")
+    _check_header(doc, ENROLMENT_FORMAT, ENROLMENT_VERSION, source, "enrolment")
     _check_fields(doc, ENROLMENT_FIELDS, source, "enrolment")
     _check_study_id(doc["study_id"], source)
     if not _PSEUDONYM.match(doc["pseudonym"]):

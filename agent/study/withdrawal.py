@@ -23,7 +23,7 @@ from pathlib import Path
 from ..errors import DataError, IntegrityError, StateError
 from ..home import write_private
 from ..policy import canonical_json
-from .card import _PSEUDONYM, _check_fields, _read_json, device_key_id
+from .card import _PSEUDONYM, _check_fields, _check_header, _read_json, device_key_id
 from .keys import _check_study_id, b64d, b64e
 
 WITHDRAWAL_FORMAT = "lethe-withdrawal"
@@ -117,13 +117,7 @@ def verify_withdrawal_signature(cert: dict, public_key=None, source="<memory>") 
     from cryptography.hazmat.primitives import serialization
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
-    if not isinstance(cert, dict):
-        raise DataError(f"{source}: expected a JSON object (withdrawal certificate)")
-    if cert.get("format") != WITHDRAWAL_FORMAT:
-        raise DataError(f"{source}: [format] expected {WITHDRAWAL_FORMAT!r}, got {cert.get('format')!r}")
-    if cert.get("version") != WITHDRAWAL_VERSION:
-        raise DataError(f"{source}: [version] withdrawal certificate version {cert.get('version')!r} is not "
-                        f"supported; this lethe reads version {WITHDRAWAL_VERSION}")
+    _check_header(cert, WITHDRAWAL_FORMAT, WITHDRAWAL_VERSION, source, "withdrawal certificate")
     _check_fields(cert, FIELDS, source, "withdrawal certificate")
     _check_body(cert, source)
     pub = b64d(cert["device_public_key"], what="device_public_key", source=source)
