@@ -305,15 +305,19 @@ def study_keygen(study_dir, study_id: str, passphrase: bytes | str, suite: str =
     return pair
 
 
+def _read_key_file(p: Path, what: str) -> dict:
+    try:
+        return json.loads(p.read_text("utf-8"))
+    except FileNotFoundError:
+        raise StateError(f"{p}: no {what}; run 'lethe study keygen' first") from None
+    except (ValueError, UnicodeDecodeError) as e:
+        raise DataError(f"{p}: not valid JSON ({e})") from None
+
+
 def load_public(study_dir) -> dict:
     """``{"study_id", "suite", "public_key" (bytes), "key_fingerprint"}`` from study.pub."""
     p = pub_path(study_dir)
-    try:
-        doc = json.loads(p.read_text("utf-8"))
-    except FileNotFoundError:
-        raise StateError(f"{p}: no study public key; run 'lethe study keygen' first") from None
-    except (ValueError, UnicodeDecodeError) as e:
-        raise DataError(f"{p}: not valid JSON ({e})") from None
+    doc = _read_key_file(p, "study public key")
     if not isinstance(doc, dict) or doc.get("format") != PUB_FORMAT or doc.get("version") != KEY_VERSION:
         raise DataError(f"{p}: not a lethe study public key file (version {KEY_VERSION})")
     public = b64d(doc.get("public_key"), what="public_key", source=p)
@@ -330,12 +334,7 @@ def load_study_key(study_dir, passphrase: bytes | str) -> StudyKeyPair:
     if isinstance(passphrase, str):
         passphrase = passphrase.encode("utf-8")
     p = key_path(study_dir)
-    try:
-        doc = json.loads(p.read_text("utf-8"))
-    except FileNotFoundError:
-        raise StateError(f"{p}: no study key; run 'lethe study keygen' first") from None
-    except (ValueError, UnicodeDecodeError) as e:
-        raise DataError(f"{p}: not valid JSON ({e})") from None
+    doc = _read_key_file(p, "study key")
     return decrypt_private_key(doc, passphrase, source=p)
 
 
