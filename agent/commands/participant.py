@@ -140,9 +140,11 @@ def _quiz(args) -> int:
             pending = quiz.pending_trials(v)
             public = [{k: t[k] for k in ("trial_id", "cue_text", "options")} for t in pending]
             if args.export_trials:
+                from pathlib import Path
+
                 from ..home import write_private
 
-                write_private(__import__("pathlib").Path(args.export_trials),
+                write_private(Path(args.export_trials),
                               json.dumps({"trials": public}, indent=2).encode())
             emit(args, {"pending": public}, f"{len(pending)} trial(s) waiting for an answer.")
             return 0
