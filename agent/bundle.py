@@ -25,11 +25,10 @@ is written when any check fails.
 from __future__ import annotations
 
 import hashlib
-import json
 import os
 import re
 import struct
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -43,6 +42,10 @@ MAX_HEADER = 65536
 MAX_CIPHERTEXT = 64 * 1024 * 1024
 SIG_LEN = 64
 SUFFIX = ".lethe"
+# The largest file the framing allows: magic, version, H, header, E, enc, C, ciphertext, signature.
+# Readers check a file's size against it before reading a byte.
+MAX_BUNDLE_BYTES = 8 + 2 + 4 + MAX_HEADER + 2 + 0xFFFF + 4 + MAX_CIPHERTEXT + SIG_LEN
+MAX_PAYLOAD_DEPTH = 8  # the schema's deepest value is model.cv.folds[i].<metric>.ci[j] (depth 6)
 
 HEADER_FIELDS = ("format", "version", "suite", "study_id", "recipient", "device_key_id", "seq",
                  "created", "payload_schema")
@@ -197,6 +200,7 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
     from cryptography.exceptions import InvalidTag
 
     from .payload import validate_payload
+    from .study.bounded import loads_bounded
     from .study.keys import enc_length, suite_of
 
     parts = split_bundle(data, source)
@@ -205,10 +209,8 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
     # If it cannot be parsed, or names no enrolled device, every enrolled key is tried,
     # so a damaged header reads as a signature failure, not as "unknown device".
     claimed = None
-    try:
-        claimed = json.loads(parts.header_bytes.decode("utf-8")).get("device_key_id")
-    except (UnicodeDecodeError, ValueError, AttributeError):
-        pass
+    with suppress(DataError, AttributeError):
+        claimed = loads_bounded(parts.header_bytes, source, "bundle header", max_depth=1).get("device_key_id")
     candidate = registry.by_key_id(claimed) if isinstance(claimed, str) else None
     if candidate is not None:
         device = candidate if _verify_sig(candidate, parts) else None
@@ -228,11 +230,7 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
                          f"their bundles are no longer opened")
 
     # From here the header bytes are authentic.
-    try:
-        header = json.loads(parts.header_bytes.decode("utf-8"))
-    except (UnicodeDecodeError, ValueError) as e:
-        raise DataError(f"{source}: the signed header is not JSON ({e})") from None
-    header = check_header(header, source)
+    header = check_header(loads_bounded(parts.header_bytes, source, "the signed header", max_depth=1), source)
     if parts.header_bytes != canonical_json(header):
         raise DataError(f"{source}: header is not in canonical JSON form")
     if header["device_key_id"] != device.device_key_id:
@@ -253,10 +251,7 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
         raise IntegrityError(f"{source}: HPKE open failed (AEAD tag does not verify): the ciphertext was not "
                              f"sealed to this study key under this header") from None
 
-    try:
-        payload = json.loads(plaintext.decode("utf-8"))
-    except (UnicodeDecodeError, ValueError) as e:
-        raise DataError(f"{source}: payload is not JSON ({e})") from None
+    payload = loads_bounded(plaintext, source, "payload", max_depth=MAX_PAYLOAD_DEPTH)
     validate_payload(payload, source)
     if payload["study_id"] != header["study_id"] or payload["created"] != header["created"]:
         raise DataError(f"{source}: payload [study_id/created] disagrees with the header")
@@ -275,15 +270,24 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
 
 
 def _header_parses(parts: Parts) -> bool:
+    from .study.bounded import loads_bounded
+
     try:
-        h = json.loads(parts.header_bytes.decode("utf-8"))
+        h = loads_bounded(parts.header_bytes, "<header>", "bundle header", max_depth=1)
         return isinstance(h, dict) and set(h) == set(HEADER_FIELDS)
-    except (UnicodeDecodeError, ValueError):
+    except DataError:
         return False
 
 
 # ----------------------------------------------------------------------------- export
-def bundle_name(seq: int) -> str:
+def bundle_name(seq: int, pseudonym: str | None = None) -> str:
+    """``<pseudonym>-<seq, 6 digits>.lethe``, so bundles of many participants can share a folder.
+
+    Without a pseudonym (a home enrolled before pseudonyms were kept) the name
+    is ``bundle-<seq>.lethe`` as before.
+    """
+    if pseudonym and re.fullmatch(r"[A-Za-z0-9_-]{1,64}", pseudonym):
+        return f"{pseudonym}-{int(seq):06d}{SUFFIX}"
     return f"bundle-{int(seq):06d}{SUFFIX}"
 
 
@@ -391,7 +395,7 @@ def _export_locked(home, policy, card, now, confirm, vault):
                                             "epsilon": epsilon, "digest": digest})
             if relabel.changed:
                 relabel.save(vault)
-        path = home.outbox / bundle_name(seq)
+        path = home.outbox / bundle_name(seq, home.read_config().get("pseudonym"))
         write_private(path, data)
         Ledger(home, signing_key=device_key).append("exported", bundle_seq=seq, digest=digest)
         return path

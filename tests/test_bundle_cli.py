@@ -81,9 +81,9 @@ def test_export_asks_in_a_terminal_and_sends_on_yes(tmp_path):
     child.expect(r"This export would send the study")
     child.expect(r"Send this to the study\? \[y/N\]")
     child.sendline("y")
-    child.expect("Sealed and signed bundle-000001.lethe")
+    child.expect("Sealed and signed pX7QmN2a-000001.lethe")
     child.expect(pexpect_eof())
-    assert [p.name for p in home.outbox.iterdir()] == ["bundle-000001.lethe"]
+    assert [p.name for p in home.outbox.iterdir()] == ["pX7QmN2a-000001.lethe"]
 
 
 def test_export_in_a_terminal_declined(tmp_path):

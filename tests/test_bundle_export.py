@@ -52,7 +52,7 @@ def make_world(tmp_path, policy_text=None, pseudonym="pX7QmN2a"):
 def test_export_then_open(tmp_path):
     home, study = make_world(tmp_path)
     path = export_bundle(home, now=NOW)
-    assert path.parent == home.outbox and path.name == "bundle-000001.lethe"
+    assert path.parent == home.outbox and path.name == "pX7QmN2a-000001.lethe"
     res = open_bundles(study, [path], PASS)
     stored = json.loads((study / "received" / "pX7QmN2a" / "1.json").read_text())
     assert res[0].ok and stored["payload"]["created"] == "2025-12-03"
@@ -83,7 +83,7 @@ def test_declined_export_writes_nothing(tmp_path):
 def test_sequence_numbers_increase_and_relabelling_is_stable(tmp_path):
     home, study = make_world(tmp_path)
     a, b = export_bundle(home, now=NOW), export_bundle(home, now=NOW)
-    assert (a.name, b.name) == ("bundle-000001.lethe", "bundle-000002.lethe")
+    assert (a.name, b.name) == ("pX7QmN2a-000001.lethe", "pX7QmN2a-000002.lethe")
     open_bundles(study, [a, b], PASS)
     p1, p2 = (json.loads((study / "received" / "pX7QmN2a" / f"{i}.json").read_text())["payload"] for i in (1, 2))
     assert p1["edge_list"] == p2["edge_list"]
@@ -169,5 +169,5 @@ def test_concurrent_exports_cannot_overspend(tmp_path):
         t.start()
     for t in threads:
         t.join()
-    assert sorted(results) == ["BudgetError", "bundle-000001.lethe"]
-    assert [p.name for p in home.outbox.iterdir()] == ["bundle-000001.lethe"]
+    assert sorted(results) == ["BudgetError", "pX7QmN2a-000001.lethe"]
+    assert [p.name for p in home.outbox.iterdir()] == ["pX7QmN2a-000001.lethe"]

@@ -1,38 +1,28 @@
-"""``lethe study merge``: the opened bundles as cohort tables (CSV; Parquet too with pyarrow).
+"""``lethe study merge`` lives in :mod:`agent.study.cohort.merge` (streaming tables, data dictionary).
 
-One row per (participant, bundle, item); the column ``latest`` marks each
-participant's most recent bundle (payloads are cumulative, so cohort analyses
-normally use only those rows).  Tables, all keyed by ``pseudonym`` and ``seq``:
-
-``edges``       type pair, count (empty when withheld), withheld flag
-``parameters``  fitted parameter name (``theta:hour|place``, ``beta``, ``tau``) and value
-``metrics``     source (``cv``, ``fold:<i>``, ``baseline:<name>``), metric, value
-``quiz``        trials, answered, correct, accuracy, chance, p_value, agreement
-``coverage``    hours observed, total and per kind
-``compliance``  ledger head, violations, raw exposure statistics, event counts
+This module keeps the name importable and holds :func:`cohort_rows`, the
+in-memory wide rows the HTML report reads (withdrawn participants left out).
 """
 
 from __future__ import annotations
 
-import csv
-import io
 import os
 from pathlib import Path
 
-from ..home import fsync_dir
-from .registry import Registry
+from .cohort.merge import TABLES, merge
+from .cohort.source import as_source
 
-TABLES = ("edges", "parameters", "metrics", "quiz", "coverage", "compliance")
+__all__ = ["TABLES", "cohort_rows", "merge"]
+
+_OLD_TABLES = ("edges", "parameters", "metrics", "quiz", "coverage", "compliance")
 
 
 def cohort_rows(study_dir) -> dict[str, list[dict]]:
-    """The cohort tables as lists of row dicts (what :func:`merge` writes)."""
-    received = list(Registry.load(study_dir).received())
-    latest = {}
-    for name, seq, _ in received:
-        latest[name] = max(seq, latest.get(name, 0))
-    t: dict[str, list[dict]] = {k: [] for k in TABLES}
-    for name, seq, doc in received:
+    """The cohort as lists of row dicts (wide coverage and compliance rows), for the report."""
+    src = as_source(study_dir)
+    latest = {p["pseudonym"]: p["latest_seq"] for p in src.participants()}
+    t: dict[str, list[dict]] = {k: [] for k in _OLD_TABLES}
+    for name, seq, doc in src.records():
         p = doc["payload"]
         base = {"pseudonym": name, "seq": seq, "created": p["created"], "latest": seq == latest[name],
                 "policy_fingerprint": p["policy_fingerprint"]}
@@ -69,15 +59,6 @@ def cohort_rows(study_dir) -> dict[str, list[dict]]:
     return t
 
 
-def _columns(rows: list[dict]) -> list[str]:
-    cols: list[str] = []
-    for r in rows:
-        for k in r:
-            if k not in cols:
-                cols.append(k)
-    return cols
-
-
 def _write_atomic(path: Path, data: bytes) -> None:
     tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
     with open(tmp, "wb") as f:
@@ -87,31 +68,3 @@ def _write_atomic(path: Path, data: bytes) -> None:
     os.replace(tmp, path)
 
 
-def merge(study_dir, out) -> dict[str, Path]:
-    """Write the cohort tables into ``out``; returns ``{table: path}`` (CSV, and ``<table>.parquet``)."""
-    out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
-    tables = cohort_rows(study_dir)
-    written: dict[str, Path] = {}
-    try:
-        import pyarrow as pa
-        import pyarrow.parquet as pq
-    except ImportError:
-        pa = None
-    for name, rows in tables.items():
-        cols = _columns(rows) or ["pseudonym", "seq"]
-        buf = io.StringIO()
-        w = csv.DictWriter(buf, fieldnames=cols, lineterminator="\n")
-        w.writeheader()
-        for r in rows:
-            w.writerow({k: ("" if r.get(k) is None else r.get(k)) for k in cols})
-        path = out / f"{name}.csv"
-        _write_atomic(path, buf.getvalue().encode("utf-8"))
-        written[name] = path
-        if pa is not None:
-            ppath = out / f"{name}.parquet"
-            pq.write_table(pa.Table.from_pylist([{k: r.get(k) for k in cols} for r in rows]) if rows
-                           else pa.table({c: [] for c in cols}), ppath)
-            written[f"{name}.parquet"] = ppath
-    fsync_dir(out)
-    return written
