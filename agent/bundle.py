@@ -25,14 +25,14 @@ is written when any check fails.
 from __future__ import annotations
 
 import hashlib
-import os
 import re
 import struct
-from contextlib import contextmanager, suppress
+from contextlib import suppress
 from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import DataError, IntegrityError, StateError
+from .fsutil import file_lock
 from .policy import canonical_json
 
 MAGIC = b"\x89LETHE\r\n"
@@ -351,22 +351,13 @@ def export_bundle(home, policy=None, now: float | None = None, confirm=lambda pr
         return _export_locked(home, policy, card, now, confirm, vault)
 
 
-@contextmanager
 def _export_lock(home):
-    import fcntl
-
-    home.state.mkdir(parents=True, exist_ok=True, mode=0o700)
-    fd = os.open(home.state / "export.lock", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o600)
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX)
-        yield
-    finally:
-        os.close(fd)
+    return file_lock(home.state / "export.lock")
 
 
 def _export_locked(home, policy, card, now, confirm, vault):
     from .disclosure import check_budget
-    from .home import write_private
+    from .fsutil import write_private
     from .keystore import Keystore
     from .ledger import Ledger
     from .payload import build_payload_and_relabel, preview

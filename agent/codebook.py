@@ -36,11 +36,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-# Mean Earth radius R1 = 6,371,008.8 m of the GRS 80 ellipsoid (Moritz 2000,
-# "Geodetic Reference System 1980", J. Geodesy 74).  Over short distances the
-# spherical haversine distance differs from the WGS 84 geodesic by -0.45 % to
-# +0.56 % (the ellipsoid's radii of curvature span 6,335 to 6,400 km).
-EARTH_RADIUS_M = 6371008.8
+from .geo import EARTH_RADIUS_M, haversine_m
 
 # ENMO cut-points for the non-dominant wrist in adults, in milli-g.
 # Sedentary below 44.8 mg: Hildebrand M, Hansen BH, van Hees VT, Ekelund U (2017)
@@ -70,15 +66,6 @@ PLACE_GATE_RADII = 2.0
 
 
 # -- geometry ---------------------------------------------------------------------
-
-def haversine_m(lat1, lon1, lat2, lon2) -> np.ndarray:
-    """Great-circle distance in metres on the sphere of radius :data:`EARTH_RADIUS_M`."""
-    p1, p2 = np.radians(lat1), np.radians(lat2)
-    dphi = p2 - p1
-    dlmb = np.radians(np.asarray(lon2) - np.asarray(lon1))
-    a = np.sin(dphi / 2) ** 2 + np.cos(p1) * np.cos(p2) * np.sin(dlmb / 2) ** 2
-    return 2 * EARTH_RADIUS_M * np.arcsin(np.sqrt(np.clip(a, 0.0, 1.0)))
-
 
 def _to_xyz(lat, lon) -> np.ndarray:
     la, lo = np.radians(lat), np.radians(lon)

@@ -21,18 +21,20 @@ Directories are created 0700 and files 0600 so no other local user can read them
 
 from __future__ import annotations
 
-import errno
 import json
 import os
 import shutil
 import stat
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from pathlib import Path
 
 from .errors import StateError
+from .fsutil import DIR_MODE, FILE_MODE, LockHeld, file_lock, fsync_dir, write_private
 
-DIR_MODE = 0o700
-FILE_MODE = 0o600
+# write_private and fsync_dir live in agent.fsutil; the names stay importable
+# from here for modules not yet switched.
+__all__ = ["DIR_MODE", "FILE_MODE", "SUBDIRS", "Home", "default_home_path", "fsync_dir",
+           "overwrite_and_unlink", "write_private"]
 
 SUBDIRS = ("inbox", "outbox", "keys", "logs", "state", "cache", "cache/numba")
 
@@ -79,7 +81,7 @@ class Home:
         return self.config_path.exists()
 
     # -- creation ----------------------------------------------------------
-    def create(self) -> "Home":
+    def create(self) -> Home:
         """Create the directory tree with private permissions (idempotent)."""
         old = os.umask(0o077)
         try:
@@ -93,7 +95,7 @@ class Home:
             os.umask(old)
         return self
 
-    def require(self) -> "Home":
+    def require(self) -> Home:
         if not self.exists():
             raise StateError(f"{self.root}: no lethe home here; run 'lethe init' first "
                              f"(or set LETHE_HOME / --home to an existing home)")
@@ -134,37 +136,20 @@ class Home:
     @contextmanager
     def lock(self, what: str = "agent"):
         """Hold an exclusive lock on the home; a second agent gets a clear error."""
-        import fcntl
-
-        self.state.mkdir(parents=True, exist_ok=True, mode=DIR_MODE)
-        fd = os.open(self.lock_path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, FILE_MODE)
         try:
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except OSError as e:
-                if e.errno in (errno.EWOULDBLOCK, errno.EACCES):
-                    try:
-                        holder = os.pread(fd, 200, 0).decode(errors="replace").strip()
-                    except OSError:
-                        holder = "?"
-                    raise StateError(f"{self.root}: another lethe process holds this home ({holder}); "
-                                     f"stop it first or use a different --home") from None
-                raise
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, f"pid {os.getpid()} ({what})".encode(), 0)
-            yield self
-        finally:
-            os.close(fd)  # closing releases the flock
+            with file_lock(self.lock_path, blocking=False, note=f"pid {os.getpid()} ({what})"):
+                yield self
+        except LockHeld as e:
+            raise StateError(f"{self.root}: another lethe process holds this home ({e.holder or '?'}); "
+                             f"stop it first or use a different --home") from None
 
     # -- disk use -----------------------------------------------------------
     def disk_usage(self) -> int:
         total = 0
         for dirpath, _dirs, files in os.walk(self.root):
             for f in files:
-                try:
+                with suppress(OSError):
                     total += os.lstat(os.path.join(dirpath, f)).st_size
-                except OSError:
-                    pass
         return total
 
     def destroy_everything(self, keep=()) -> int:
@@ -183,34 +168,6 @@ class Home:
                 if not any(k.is_relative_to(p) for k in keep):
                     shutil.rmtree(p, ignore_errors=True)
         return removed
-
-
-def write_private(path: Path, data: bytes) -> None:
-    """Write ``data`` atomically to ``path`` with mode 0600 (temp file, fsync, rename)."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True, mode=DIR_MODE)
-    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, FILE_MODE)
-    try:
-        os.write(fd, data)
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-    os.replace(tmp, path)
-    fsync_dir(path.parent)
-
-
-def fsync_dir(path: Path) -> None:
-    try:
-        fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
 
 
 def overwrite_and_unlink(path: Path) -> None:

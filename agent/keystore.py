@@ -47,7 +47,9 @@ from cryptography.hazmat.primitives.ciphers.aead import AESGCM
 from cryptography.hazmat.primitives.kdf.scrypt import Scrypt
 
 from .errors import IntegrityError, StateError, UsageError
-from .home import DIR_MODE, Home, overwrite_and_unlink, write_private
+from .fsutil import DIR_MODE, write_private
+from .identity import device_key_id  # noqa: F401  (re-exported: part of this module's contract)
+from .home import Home, overwrite_and_unlink
 
 KEY_BYTES = 32
 KEYFILE_VERSION = 1
@@ -71,18 +73,6 @@ DEVICE_KDF_FILE = "device.ed25519.kdf"
 
 class PassphraseError(StateError):
     """The key files need a passphrase that was not given, or the one given is wrong."""
-
-
-def device_key_id(public_key) -> str:
-    """First 16 hex digits of SHA-256 of the raw 32-byte Ed25519 public key.
-
-    Parameters
-    ----------
-    public_key : Ed25519PublicKey or bytes
-        The key, or its raw 32 bytes.
-    """
-    raw = _raw_public(public_key)
-    return hashlib.sha256(raw).hexdigest()[:16]
 
 
 def content_mac(key: bytes, data: bytes) -> str:

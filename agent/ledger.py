@@ -29,7 +29,6 @@ items are named by their keyed content MAC and reasons are short codes.
 from __future__ import annotations
 
 import errno
-import fcntl
 import hashlib
 import json
 import math
@@ -42,7 +41,9 @@ from pathlib import Path
 from typing import Callable, Iterable, Iterator
 
 from .errors import IntegrityError, StateError
-from .home import FILE_MODE, Home, fsync_dir
+from .fsutil import FILE_MODE, fsync_dir, lock_fd
+from .home import Home
+from .stats import quantile_type7
 
 ENTRY_VERSION = 1
 ZERO_HASH = "0" * 64
@@ -274,7 +275,7 @@ class Ledger:
             created = not self.path.exists()
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_APPEND | os.O_NOFOLLOW, FILE_MODE)
             try:
-                fcntl.flock(fd, fcntl.LOCK_EX)  # other processes (pause, withdraw) append too
+                lock_fd(fd)  # other processes (pause, withdraw) append too
                 st = os.fstat(fd)
                 from_cache = self._tail is not None and self._tail[:2] == (st.st_ino, st.st_size)
                 seq, prev, torn, whole = self._tail_state(fd)
@@ -516,21 +517,12 @@ class LedgerReport:
         return "\n".join(lines)
 
 
-def _percentile(sorted_values: list[float], q: float) -> float:
-    """Linear interpolation between order statistics (Hyndman and Fan type 7)."""
-    n = len(sorted_values)
-    h = (n - 1) * q
-    lo = math.floor(h)
-    hi = min(lo + 1, n - 1)
-    return sorted_values[lo] + (h - lo) * (sorted_values[hi] - sorted_values[lo])
-
-
 def exposure_stats(exposures) -> dict:
     """``{"n", "median", "p95", "max"}`` in seconds (None when there are none)."""
     xs = sorted(float(x) for x in exposures)
     if not xs:
         return {"n": 0, "median": None, "p95": None, "max": None}
-    return {"n": len(xs), "median": _percentile(xs, 0.5), "p95": _percentile(xs, 0.95), "max": xs[-1]}
+    return {"n": len(xs), "median": quantile_type7(xs, 0.5), "p95": quantile_type7(xs, 0.95), "max": xs[-1]}
 
 
 class _Problems:

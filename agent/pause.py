@@ -16,7 +16,8 @@ import math
 import time
 
 from .errors import StateError
-from .home import Home, write_private
+from .fsutil import write_private
+from .home import Home
 
 
 def _home(home) -> Home:

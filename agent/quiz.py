@@ -273,7 +273,7 @@ def _read_answer_rows(path: Path):
 # --------------------------------------------------------------------------- scoring
 def score(vault, policy) -> dict:
     """The participant's score against chance (one-sided exact binomial test)."""
-    from scipy.stats import binomtest
+    from .stats import binomial_upper_tail
 
     trials = {rid: t for rid, t in vault.items("trials")}
     answers = [a for _, a in vault.items("answers")]
@@ -285,7 +285,7 @@ def score(vault, policy) -> dict:
            "correct": correct, "chance": chance,
            "accuracy": (correct / len(answered)) if answered else None, "p_value": None}
     if answered:
-        out["p_value"] = float(binomtest(correct, len(answered), chance, alternative="greater").pvalue)
+        out["p_value"] = binomial_upper_tail(correct, len(answered), chance)
     return out
 
 

@@ -52,7 +52,8 @@ from cryptography.hazmat.primitives.ciphers.aead import AESGCM
 from cryptography.hazmat.primitives.kdf.hkdf import HKDF
 
 from .errors import IntegrityError, StateError, UsageError
-from .home import FILE_MODE, Home, fsync_dir, overwrite_and_unlink
+from .fsutil import FILE_MODE, fsync_dir
+from .home import Home, overwrite_and_unlink
 
 NONCE_BYTES = 12
 ADDR_BYTES = 32

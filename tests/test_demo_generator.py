@@ -24,7 +24,7 @@ import pytest
 
 from agent.demo import Scenario, load_truth, simulate_days, write_day, write_truth
 from agent.demo.answers import simulate_answers, simulate_place_names, true_place_map
-from agent.demo.generator import accel_signal, nmea_checksum, stamp_utc
+from agent.demo.generator import accel_signal, stamp_utc
 from agent.demo.scenario import destination
 from agent.demo.soundscapes import synthesize
 from agent.errors import DataError
@@ -155,17 +155,6 @@ def test_every_written_fix_is_on_open_ocean(inbox):
 
 
 # -- NMEA 0183 ----------------------------------------------------------------------
-def test_nmea_checksum_of_reference_sentence():
-    # Widely reproduced NMEA 0183 GGA example (from memory); checksum 47.
-    s = "$GPGGA,123519,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47"
-    assert nmea_checksum(s) == "47"
-
-
-def test_nmea_checksum_changes_with_content():
-    s = "$GPGGA,123519,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47"
-    assert nmea_checksum(s.replace("545.4", "545.5")) != "47"
-
-
 def _xor(body: str) -> str:
     # Independent re-implementation of the NMEA 0183 rule for the check below.
     return "%02X" % functools.reduce(operator.xor, body.encode("ascii"), 0)

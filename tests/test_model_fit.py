@@ -5,13 +5,12 @@ import json
 import numpy as np
 import pytest
 from scipy.optimize import approx_fprime
-from scipy.stats import binomtest
 
 from agent.errors import DataError
 from agent.graph import CooccurrenceGraph
 from agent.model.baselines import Frequency
 from agent.model.choice import argmax_credit, log_probabilities
-from agent.model.crossval import bootstrap_mean_by_group, day_folds, wilson_interval
+from agent.model.crossval import day_folds
 from agent.model.design import ModelGraph, TrialDesign, join_answers
 from agent.model.fit import fit_model
 from agent.model.likelihood import (ActivationCache, ModelSpec, negative_log_likelihood,
@@ -111,23 +110,6 @@ def test_tau_must_be_positive():
 
 
 # ----------------------------------------------------------------------- intervals
-@pytest.mark.parametrize("k,n", [(0, 10), (3, 10), (37, 80), (80, 80)])
-def test_wilson_interval_matches_scipy(k, n):
-    # reference: scipy.stats.binomtest(...).proportion_ci(method="wilson")
-    ref = binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
-    lo, hi = wilson_interval(k, n)
-    assert lo == pytest.approx(ref.low, abs=1e-9)
-    assert hi == pytest.approx(ref.high, abs=1e-9)
-
-
-def test_bootstrap_interval_brackets_the_mean():
-    rng = np.random.default_rng(0)
-    vals = rng.normal(-1.0, 0.3, 200)
-    days = np.repeat([f"d{i}" for i in range(20)], 10)
-    lo, hi = bootstrap_mean_by_group(vals, days, rng)
-    assert lo < vals.mean() < hi
-
-
 # ----------------------------------------------------------------------- folds
 def test_folds_keep_days_together(demo):
     _, _, mg, _, rows = demo

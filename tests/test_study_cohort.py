@@ -7,13 +7,12 @@ import json
 
 import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
-from scipy.stats import binomtest
 
 from agent.study.card import make_enrolment
 from agent.study.merge import merge
 from agent.study.open import open_bundles
 from agent.study.registry import enroll
-from agent.study.report import report, wilson_interval
+from agent.study.report import report
 
 from _bundle_fixtures import PASS, Study, make_payload
 
@@ -87,13 +86,6 @@ def test_merge_leaves_out_withdrawn(cohort, tmp_path):
         assert cohort.pseudonym not in {r["pseudonym"] for r in read_csv(out[t])}, t
     page = report(cohort.dir, tmp_path / "report").read_text()
     assert "pZ1kW9cc" in page
-
-
-def test_wilson_interval_against_scipy():
-    # scipy's binomtest Wilson interval; 9 of 18 is symmetric around 0.5.
-    lo, hi = wilson_interval(9, 18)
-    ci = binomtest(9, 18).proportion_ci(method="wilson")
-    assert (lo, hi) == (ci.low, ci.high) and lo == pytest.approx(1 - hi)
 
 
 def test_report_html_and_plots(cohort, tmp_path):

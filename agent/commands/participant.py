@@ -142,7 +142,7 @@ def _quiz(args) -> int:
             if args.export_trials:
                 from pathlib import Path
 
-                from ..home import write_private
+                from ..fsutil import write_private
 
                 write_private(Path(args.export_trials),
                               json.dumps({"trials": public}, indent=2).encode())

@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import time
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
@@ -31,11 +30,13 @@ from typing import Iterable
 import numpy as np
 
 from ..errors import DataError
+from ..fsutil import atomic_write
+from ..intake.readers.gps import nmea_checksum
 from .scenario import Scenario, destination, offset_latlon
 from .soundscapes import synthesize
 
 __all__ = ["Scenario", "Timeline", "simulate_days", "write_day", "write_days", "write_truth",
-           "load_truth", "nmea_checksum", "stamp_utc"]
+           "load_truth", "stamp_utc"]
 
 TRUTH_FORMAT = "lethe-demo-truth"
 TRUTH_VERSION = 1
@@ -400,10 +401,8 @@ def simulate_days(scenario: Scenario, start_utc: float, days: int, seed: int) ->
 
 # -- writing files -------------------------------------------------------------------------
 def _atomic_bytes(path: Path, data: bytes) -> None:
-    part = path.with_name(path.name + ".part")
-    with open(part, "wb") as fh:
-        fh.write(data)
-    os.replace(part, path)
+    # A hidden temporary name (ignored by intake until renamed); demo data need not be durable.
+    atomic_write(path, data, mode=0o644, durable=False, make_parents=False)
 
 
 def _atomic_audio(path: Path, x: np.ndarray, sr: int) -> None:
@@ -579,19 +578,8 @@ def _gpx(f) -> bytes:
     return "\n".join(lines).encode("utf-8")
 
 
-def nmea_checksum(body: str) -> str:
-    """XOR of the characters between ``$`` and ``*``, as two upper-case hex digits (NMEA 0183)."""
-    if body.startswith("$"):
-        body = body[1:]
-    body = body.split("*", 1)[0]
-    c = 0
-    for b in body.encode("ascii"):
-        c ^= b
-    return f"{c:02X}"
-
-
 def _sentence(body: str) -> str:
-    return f"${body}*{nmea_checksum(body)}\r\n"
+    return f"${body}*{nmea_checksum(body):02X}\r\n"
 
 
 def _nmea_coord(value: float, deg_digits: int, pos: str, neg: str) -> str:

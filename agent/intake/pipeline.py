@@ -43,6 +43,7 @@ from dataclasses import dataclass, field
 
 from ..errors import RejectedInput
 from ..home import Home
+from ..stats import exposure_summary
 from .item import classify, ignored
 from .safety import InboxDir, UnsafeEntry, entry_type
 
@@ -523,18 +524,13 @@ def open_items(ledger) -> dict[str, dict]:
 
 # -- reports --------------------------------------------------------------------
 def exposure_stats(values) -> dict:
-    """``{"n", "median_s", "p95_s", "max_s"}``; empty: None.
+    """``{"n", "median_s", "p95_s", "max_s"}`` rounded to 0.1 ms; empty: None.
 
-    The same statistics as the ledger verifier's (:func:`agent.ledger.exposure_stats`,
+    The same statistics as the ledger verifier's (:func:`agent.stats.exposure_summary`,
     Hyndman and Fan type 7), so ``lethe status`` and ``lethe audit verify`` agree.
     """
-    from ..ledger import exposure_stats as ledger_stats
-
-    st = ledger_stats([float(v) for v in values if v is not None])
-    if not st.get("n"):
-        return {"n": 0, "median_s": None, "p95_s": None, "max_s": None}
-    return {"n": st["n"], "median_s": round(st["median"], 4), "p95_s": round(st["p95"], 4),
-            "max_s": round(st["max"], 4)}
+    st = exposure_summary(values)
+    return {k: (round(v, 4) if isinstance(v, float) else v) for k, v in st.items()}
 
 
 @dataclass

@@ -23,37 +23,11 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import DataError
+from ..stats import bootstrap_mean_by_day, wilson_interval
 from .choice import argmax_credit
 from .design import TrialDesign
 
-Z95 = 1.959963984540054  # standard normal 97.5 % quantile
 N_BOOT = 2000
-
-
-def wilson_interval(k: float, n: int, z: float = Z95) -> tuple[float, float]:
-    """Wilson (1927) score interval for a binomial proportion ``k / n``."""
-    if n <= 0:
-        return (float("nan"), float("nan"))
-    p = k / n
-    denom = 1 + z * z / n
-    centre = (p + z * z / (2 * n)) / denom
-    half = z / denom * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
-    return (float(max(0.0, centre - half)), float(min(1.0, centre + half)))
-
-
-def bootstrap_mean_by_group(values, groups, rng, n_boot: int = N_BOOT, level: float = 0.95):
-    """Percentile interval of ``sum(values) / count`` with groups (days) resampled."""
-    values = np.asarray(values, dtype=np.float64)
-    uniq, inv = np.unique(np.asarray(groups, dtype=str), return_inverse=True)
-    g = len(uniq)
-    if g == 0:
-        return (float("nan"), float("nan"))
-    sums = np.bincount(inv, weights=values, minlength=g)
-    counts = np.bincount(inv, minlength=g).astype(np.float64)
-    draws = rng.integers(0, g, size=(n_boot, g))
-    stat = sums[draws].sum(axis=1) / counts[draws].sum(axis=1)
-    a = (1 - level) / 2
-    return (float(np.quantile(stat, a)), float(np.quantile(stat, 1 - a)))
 
 
 def day_folds(design: TrialDesign, k: int, seed: int = 0) -> list[np.ndarray]:
@@ -93,7 +67,8 @@ def metrics(logp, design: TrialDesign, rng, rows=None) -> dict:
         "agreement": _prop(agree.sum(), n),
         "accuracy": _prop(acc.sum(), n),
         "loglik": {"value": float(ll.mean()) if n else float("nan"),
-                   "ci": list(bootstrap_mean_by_group(ll, dates, rng)) if n else [float("nan")] * 2},
+                   "ci": list(bootstrap_mean_by_day(ll, dates, n_boot=N_BOOT, rng=rng)[1:]) if n
+                   else [float("nan")] * 2},
         "_per_trial": {"agree": agree, "acc": acc, "ll": ll, "dates": dates},
     }
 

@@ -23,7 +23,8 @@ import time
 from pathlib import Path
 
 from ..errors import DataError, StateError
-from ..home import Home, write_private
+from ..fsutil import write_private
+from ..home import Home
 
 PSEUDONYM_ALPHABET = "abcdefghjkmnpqrstuvwxyz23456789"  # no look-alikes (0/o, 1/l/i)
 

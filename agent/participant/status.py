@@ -8,29 +8,15 @@ ages, fingerprints, dates.
 from __future__ import annotations
 
 import datetime as _dt
-import os
 import time
 
+from ..fsutil import is_locked
 from ..home import Home
 
 
 def agent_running(home: Home) -> bool | None:
     """Whether another process holds the agent lock (None when unknown)."""
-    import fcntl
-
-    if not home.lock_path.exists():
-        return False
-    try:
-        fd = os.open(home.lock_path, os.O_RDONLY | os.O_NOFOLLOW)
-    except OSError:
-        return None
-    try:
-        fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
-    except OSError:
-        return True
-    finally:
-        os.close(fd)
-    return False
+    return is_locked(home.lock_path)
 
 
 def collect_status(home, now: float | None = None, passphrase=None) -> dict:

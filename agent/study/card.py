@@ -25,7 +25,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import DataError, IntegrityError, StateError
-from ..home import write_private
+from ..fsutil import write_private
+from ..identity import device_key_id
 from ..policy import canonical_json
 from .keys import PUBLIC_KEY_BYTES, SUITES, _check_study_id, b64d, b64e, key_fingerprint, load_public
 
@@ -80,13 +81,6 @@ class StudyCard:
             "key_fingerprint": self.key_fingerprint, "approved_policies": list(self.approved_policies),
             "contact": self.contact, "consent_text": self.consent_text, "issued": self.issued,
         }
-
-
-def device_key_id(public_bytes: bytes) -> str:
-    """First 16 hex digits of SHA-256(raw Ed25519 public key) (architecture contract)."""
-    import hashlib
-
-    return hashlib.sha256(public_bytes).hexdigest()[:16]
 
 
 def _check_header(doc, fmt: str, version: int, source, what: str) -> None:

@@ -29,7 +29,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import DataError, IntegrityError, StateError, UsageError
-from ..home import DIR_MODE, write_private
+from ..fsutil import DIR_MODE, write_private
 from ..policy import canonical_json
 
 KEY_FORMAT = "lethe-study-key"

@@ -6,8 +6,6 @@ in-memory wide rows the HTML report reads (withdrawn participants left out).
 
 from __future__ import annotations
 
-import os
-from pathlib import Path
 
 from .cohort.merge import TABLES, merge
 from .cohort.source import as_source
@@ -57,14 +55,5 @@ def cohort_rows(study_dir) -> dict[str, list[dict]]:
                                 "p95_exposure_s": g.get("p95_exposure_s"),
                                 **{f"count:{k}": v for k, v in sorted(g["counts"].items())}})
     return t
-
-
-def _write_atomic(path: Path, data: bytes) -> None:
-    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
 
 

@@ -17,13 +17,11 @@ from __future__ import annotations
 
 import base64
 import json
-import os
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import DataError, StateError
-from ..home import DIR_MODE, write_private
+from ..fsutil import file_lock, write_private
 from .card import load_enrolment
 from .keys import load_public
 
@@ -135,19 +133,9 @@ class Registry:
                 yield pdir.name, int(f.stem), json.loads(f.read_text("utf-8"))
 
 
-@contextmanager
 def locked(study_dir):
     """Exclusive lock on the study directory's registry for a read-modify-write."""
-    import fcntl
-
-    study_dir = Path(study_dir)
-    study_dir.mkdir(parents=True, exist_ok=True, mode=DIR_MODE)
-    fd = os.open(study_dir / "registry.lock", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o600)
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX)
-        yield
-    finally:
-        os.close(fd)
+    return file_lock(Path(study_dir) / "registry.lock")
 
 
 def enroll(study_dir, enrolment_path) -> Device:

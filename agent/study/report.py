@@ -1,7 +1,7 @@
 """``lethe study report``: one self-contained HTML page with PNG plots of the cohort.
 
 Sections: per-participant memory-test accuracy against chance and the
-baselines (95% Wilson intervals, from ``scipy.stats.binomtest``), the fitted
+baselines (95% Wilson intervals, :func:`agent.stats.wilson_interval`), the fitted
 parameter distributions per type pair, coverage, and each participant's
 compliance digest.  Uses each participant's latest bundle.  Plots are drawn
 with matplotlib's Agg backend and saved next to the page; the page loads no
@@ -13,19 +13,13 @@ from __future__ import annotations
 import html
 from pathlib import Path
 
-from .merge import _write_atomic, cohort_rows
+from ..fsutil import atomic_write
+from ..stats import wilson_interval
+from .merge import cohort_rows
 
 
 def _latest(rows):
     return [r for r in rows if r["latest"]]
-
-
-def wilson_interval(correct: int, n: int, level: float = 0.95) -> tuple[float, float]:
-    """Wilson score interval for a proportion (``scipy.stats.binomtest(...).proportion_ci``)."""
-    from scipy.stats import binomtest
-
-    ci = binomtest(int(correct), int(n)).proportion_ci(confidence_level=level, method="wilson")
-    return float(ci.low), float(ci.high)
 
 
 def _fig():
@@ -218,5 +212,5 @@ def report(study_dir, out) -> Path:
             "td,th{border:1px solid #ccc;padding:2px 6px;text-align:right}"
             "img{max-width:100%}</style></head><body>\n" + "\n".join(parts) + "\n</body></html>\n")
     path = out / "report.html"
-    _write_atomic(path, page.encode("utf-8"))
+    atomic_write(path, page.encode("utf-8"))
     return path

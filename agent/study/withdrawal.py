@@ -21,9 +21,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import DataError, IntegrityError, StateError
-from ..home import write_private
+from ..fsutil import write_private
 from ..policy import canonical_json
-from .card import _PSEUDONYM, _check_fields, _check_header, _read_json, device_key_id
+from ..identity import device_key_id
+from .card import _PSEUDONYM, _check_fields, _check_header, _read_json
 from .keys import _check_study_id, b64d, b64e
 
 WITHDRAWAL_FORMAT = "lethe-withdrawal"
@@ -128,7 +129,7 @@ def verify_withdrawal_signature(cert: dict, public_key=None, source="<memory>") 
             serialization.Encoding.Raw, serialization.PublicFormat.Raw)
         if given != pub:
             raise IntegrityError(f"{source}: [device_public_key] is not the expected device key "
-                                 f"(certificate names {cert['device_key_id']}, expected {device_key_id(given)})")
+                                 f"(certificate names {cert['device_key_id']}, expected {device_key_id(given) if len(given) == 32 else 'a key of ' + str(len(given)) + ' bytes'})")
     sig = b64d(cert["signature"], what="signature", source=source)
     body = canonical_json({k: v for k, v in cert.items() if k != "signature"})
     try:
