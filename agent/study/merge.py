@@ -55,5 +55,3 @@ def cohort_rows(study_dir) -> dict[str, list[dict]]:
                                 "p95_exposure_s": g.get("p95_exposure_s"),
                                 **{f"count:{k}": v for k, v in sorted(g["counts"].items())}})
     return t
-
-
