@@ -11,36 +11,34 @@ co-occurrence
 counts
     The symmetric matrix of co-occurrence counts (zero diagonal), no cap.
 degree cap
-    No node keeps more than ``m = policy.graph.degree_cap`` edges.  Edges are
-    admitted greedily, each only while both ends still have spare degree, in one
-    of two documented orders (``policy.graph.cap_rule``):
-
-    ``"arrival"``
-        episodes in time order (``utc``), and within an episode the node pairs
-        in index order; an edge is considered at its first co-occurrence.  As
-        degrees only grow, a pair refused at its first co-occurrence can never
-        be admitted later, so this is a greedy pass over distinct pairs sorted
-        by first co-occurrence.
-    ``"strongest"``
-        distinct pairs by decreasing count; ties by first co-occurrence (the
-        arrival order above), which is total, so the result is deterministic.
+    No node keeps more than ``m = policy.graph.degree_cap`` edges.  Which edges
+    survive is the cap rule (``policy.graph.cap_rule``), one of the rules of
+    :mod:`agent.caps`: ``"strongest"``, ``"arrival"``, ``"mutual"``,
+    ``"bmatching"``, ``"quota"``, ``"routine"``.  The first co-occurrence order ("arrival") is
+    episodes in time order (``utc``), and within an episode the node pairs in
+    index order.
+edge weights
+    Kept links weigh 1 (``"binary"``) or ``1 + ln(count)`` (``"log_count"``),
+    ``policy.graph.edge_weight``.
 
 Everything is :mod:`scipy.sparse`; construction is vectorised with numpy except
-for the greedy cap, which loops once over the distinct pairs.
+for the greedy caps, which loop once over the distinct pairs.
 """
 
 from __future__ import annotations
 
 import re
-from typing import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 
 import numpy as np
 import scipy.sparse as sp
 
+from . import caps
+from .caps import CAP_RULES, EDGE_WEIGHTS, greedy_degree_cap  # noqa: F401  (re-exported)
 from .policy import NODE_KINDS
 
 TIME_KINDS = ("hour", "weekday", "week")
-CAP_RULES = ("arrival", "strongest")
+DEFAULT_CAP_RULE = "strongest"
 
 
 def _label_key(label: str):
@@ -66,36 +64,6 @@ def episode_nodes(episode: Mapping, kinds: Sequence[str] = NODE_KINDS) -> list[t
             continue
         out.append((kind, str(value)))
     return list(dict.fromkeys(out))  # de-duplicate, keep order
-
-
-def _cap_order_arrival(first: np.ndarray, count: np.ndarray) -> np.ndarray:
-    return np.argsort(first, kind="stable")
-
-
-def _cap_order_strongest(first: np.ndarray, count: np.ndarray) -> np.ndarray:
-    return np.lexsort((first, -count))
-
-
-def greedy_degree_cap(rows: np.ndarray, cols: np.ndarray, order: np.ndarray, n_nodes: int,
-                      degree_cap: int) -> np.ndarray:
-    """Admit pairs ``(rows[k], cols[k])`` in ``order`` while both ends have spare degree.
-
-    Returns a boolean mask over the pairs.
-    """
-    if degree_cap < 1:
-        raise ValueError(f"degree_cap must be a positive integer, got {degree_cap!r}")
-    deg = np.zeros(n_nodes, dtype=np.int64)
-    keep = np.zeros(len(rows), dtype=bool)
-    r = rows.tolist()
-    c = cols.tolist()
-    d = deg.tolist()
-    for k in order.tolist():
-        i, j = r[k], c[k]
-        if d[i] < degree_cap and d[j] < degree_cap:
-            d[i] += 1
-            d[j] += 1
-            keep[k] = True
-    return keep
 
 
 def _theta_key(key) -> tuple[str, str]:
@@ -126,11 +94,17 @@ class CooccurrenceGraph:
     type_pairs : list of (str, str)
         Kind pairs (each pair alphabetically sorted, list sorted) with at least
         one capped edge.
-    degree_cap, cap_rule : int, str
+    weights : scipy.sparse.csr_matrix
+        The capped links with their weights (``edge_weight``): 1, or ``1 + ln(count)``.
+    degree_cap, cap_rule, edge_weight : int, str, str
+    cap_info : dict
+        What the cap rule reports (``{"rule", "method"}`` for b-matching: ``"milp"``
+        or the ``"greedy"`` fallback; ``"quota"`` for quotas).
     n_episodes : int
     """
 
-    def __init__(self, nodes, counts, capped, degree_cap, cap_rule, n_episodes):
+    def __init__(self, nodes, counts, capped, degree_cap, cap_rule, n_episodes, *,
+                 edge_weight: str = "binary", cap_info: dict | None = None):
         self.nodes = list(nodes)
         self.index = {n: i for i, n in enumerate(self.nodes)}
         self.kinds = np.array([k for k, _ in self.nodes], dtype=str)
@@ -139,19 +113,27 @@ class CooccurrenceGraph:
         self.degree_cap = int(degree_cap)
         self.cap_rule = cap_rule
         self.n_episodes = int(n_episodes)
+        self.edge_weight = edge_weight
+        self.cap_info = dict(cap_info or {"rule": cap_rule})
+        w = self.capped.multiply(self.counts).tocsr()
+        w.data = caps.edge_weights(w.data, edge_weight)
+        self.weights = w
         upper = sp.triu(self.capped, k=1).tocoo()
         self._edge_rows = upper.row.astype(np.int64)
         self._edge_cols = upper.col.astype(np.int64)
         pairs = [tuple(sorted((self.kinds[i], self.kinds[j])))
-                 for i, j in zip(self._edge_rows.tolist(), self._edge_cols.tolist())]
+                 for i, j in zip(self._edge_rows.tolist(), self._edge_cols.tolist(), strict=False)]
         self.type_pairs = sorted(set(pairs))
         pid = {p: k for k, p in enumerate(self.type_pairs)}
         self._edge_pair = np.array([pid[p] for p in pairs], dtype=np.int64)
+        self._edge_w = (np.asarray(self.weights[self._edge_rows, self._edge_cols]).ravel()
+                        if len(self._edge_rows) else np.zeros(0))
 
     # -- construction ------------------------------------------------------
     @classmethod
     def from_episodes(cls, episodes: Iterable[Mapping], policy=None, *, kinds=None,
-                      degree_cap=None, cap_rule=None) -> "CooccurrenceGraph":
+                      degree_cap=None, cap_rule=None, edge_weight=None,
+                      quota=None) -> CooccurrenceGraph:
         """Build the graph from episode records (``docs/architecture.md``, Episodes).
 
         Parameters
@@ -159,16 +141,24 @@ class CooccurrenceGraph:
         episodes : iterable of dict
             Episode records; order does not matter (they are sorted by ``utc``).
         policy : Policy, optional
-            Supplies ``graph.nodes``, ``graph.degree_cap`` and ``graph.cap_rule``;
-            keyword arguments override it.
+            Supplies ``graph.nodes``, ``graph.degree_cap``, ``graph.cap_rule``,
+            ``graph.edge_weight`` and ``graph.type_quota``; keyword arguments
+            override it.
         """
         if policy is not None:
-            kinds = kinds if kinds is not None else list(policy.graph.nodes)
-            degree_cap = degree_cap if degree_cap is not None else policy.graph.degree_cap
-            cap_rule = cap_rule if cap_rule is not None else policy.graph.cap_rule
+            gp = policy.graph
+            kinds = kinds if kinds is not None else list(gp.nodes)
+            degree_cap = degree_cap if degree_cap is not None else gp.degree_cap
+            cap_rule = cap_rule if cap_rule is not None else gp.cap_rule
+            edge_weight = edge_weight if edge_weight is not None else getattr(gp, "edge_weight", None)
+            quota = quota if quota is not None else getattr(gp, "type_quota", None)
         kinds = list(kinds) if kinds is not None else list(NODE_KINDS)
         degree_cap = 5 if degree_cap is None else degree_cap
-        cap_rule = "strongest" if cap_rule is None else cap_rule  # as the policy schema
+        cap_rule = DEFAULT_CAP_RULE if cap_rule is None else cap_rule  # as the policy schema
+        edge_weight = "binary" if edge_weight is None else edge_weight
+        quota = caps.DEFAULT_QUOTA if quota is None else quota
+        if edge_weight not in EDGE_WEIGHTS:
+            raise ValueError(f"edge_weight {edge_weight!r}: expected one of {list(EDGE_WEIGHTS)}")
         bad = [k for k in kinds if k not in NODE_KINDS]
         if bad:
             raise ValueError(f"unknown node kinds {bad}; expected a subset of {list(NODE_KINDS)}")
@@ -215,13 +205,16 @@ class CooccurrenceGraph:
         counts = sp.coo_matrix((np.concatenate([count, count]).astype(np.float64),
                                 (np.concatenate([rows, cols]), np.concatenate([cols, rows]))),
                                shape=(n_nodes, n_nodes)).tocsr()
-        pick = _cap_order_arrival if cap_rule == "arrival" else _cap_order_strongest
-        keep = greedy_degree_cap(rows, cols, pick(first, count), n_nodes, int(degree_cap))
+        node_kind = np.array([kind_rank[k] for k, _ in nodes], dtype=np.int64)
+        keep, info = caps.select_edges(rows, cols, count, first, n_nodes, int(degree_cap), cap_rule,
+                                       node_kind=node_kind, quota=int(quota),
+                                       node_kind_name=[k for k, _ in nodes])
         kr, kc = rows[keep], cols[keep]
         ones = np.ones(2 * len(kr), dtype=np.float64)
         capped = sp.coo_matrix((ones, (np.concatenate([kr, kc]), np.concatenate([kc, kr]))),
                                shape=(n_nodes, n_nodes)).tocsr()
-        return cls(nodes, counts, capped, int(degree_cap), cap_rule, n_eps)
+        return cls(nodes, counts, capped, int(degree_cap), cap_rule, n_eps,
+                   edge_weight=edge_weight, cap_info=info)
 
     # -- views -------------------------------------------------------------
     @property
@@ -244,7 +237,7 @@ class CooccurrenceGraph:
         return np.asarray((mat != 0).sum(axis=1)).ravel().astype(np.int64)
 
     def weighted(self, theta: Mapping) -> sp.csr_matrix:
-        """W(θ): each capped edge weighted by θ of its kind pair.
+        """W(θ): each capped edge's weight times θ of its kind pair.
 
         ``theta`` maps a kind pair, as a tuple in either order or a string
         ``"hour|place"``, to a weight.  Pairs not given weigh 0.
@@ -258,7 +251,7 @@ class CooccurrenceGraph:
                     raise ValueError(f"theta key {key!r}: unknown node kind {kind!r}")
             if p in pid:
                 vals[pid[p]] = float(w)
-        w = vals[self._edge_pair]
+        w = vals[self._edge_pair] * self._edge_w
         n = self.n_nodes
         return sp.coo_matrix((np.concatenate([w, w]),
                               (np.concatenate([self._edge_rows, self._edge_cols]),
@@ -288,7 +281,7 @@ class CooccurrenceGraph:
         """Capped edges as ``(node_a, node_b, count)`` with ``a`` before ``b`` in index order."""
         c = self.counts
         return [(self.nodes[i], self.nodes[j], int(c[i, j]))
-                for i, j in zip(self._edge_rows.tolist(), self._edge_cols.tolist())]
+                for i, j in zip(self._edge_rows.tolist(), self._edge_cols.tolist(), strict=False)]
 
 
 def graph_summary(g: CooccurrenceGraph) -> dict:
@@ -300,7 +293,7 @@ def graph_summary(g: CooccurrenceGraph) -> dict:
     hist = np.bincount(deg, minlength=g.degree_cap + 1) if len(deg) else np.zeros(g.degree_cap + 1, int)
     udeg = g.degrees("binary")
     pairs: dict[str, int] = {}
-    for p, k in zip(*np.unique(g._edge_pair, return_counts=True)):
+    for p, k in zip(*np.unique(g._edge_pair, return_counts=True), strict=False):
         a, b = g.type_pairs[int(p)]
         pairs[f"{a}|{b}"] = int(k)
     binary_edges = int(g.counts.nnz // 2)
@@ -309,6 +302,8 @@ def graph_summary(g: CooccurrenceGraph) -> dict:
         "n_nodes": g.n_nodes,
         "nodes_per_kind": sizes,
         "cap_rule": g.cap_rule,
+        "cap_info": dict(g.cap_info),
+        "edge_weight": g.edge_weight,
         "degree_cap": g.degree_cap,
         "edges_capped": g.n_edges,
         "edges_uncapped": binary_edges,
@@ -317,3 +312,76 @@ def graph_summary(g: CooccurrenceGraph) -> dict:
         "degree_histogram": {str(d): int(n) for d, n in enumerate(hist.tolist()) if n},
         "edges_per_type_pair": dict(sorted(pairs.items())),
     }
+
+
+def _hop_distances(g: CooccurrenceGraph, sources) -> np.ndarray:
+    """Unweighted shortest-path lengths (links) in the capped graph from ``sources``."""
+    from scipy.sparse.csgraph import shortest_path
+
+    if not len(sources):
+        return np.zeros((0, g.n_nodes))
+    return shortest_path(g.capped, method="D", directed=False, unweighted=True,
+                         indices=np.asarray(sources, dtype=np.int64))
+
+
+def routine_diagnostics(g: CooccurrenceGraph, trials=None) -> dict:
+    """Does the capped graph keep the routine?  (``docs/graph.md``, diagnostics.)
+
+    Returns
+    -------
+    dict
+        ``isolated``: nodes with no capped link (``"kind:label"``);
+        ``hours_without_place_2``: hours that co-occur with a place but reach no
+        place within two links; ``hour_place_within_2``: share of co-occurring
+        (hour, place) pairs whose place is within two links of the hour;
+        ``hour_place_linked``: share joined by a direct link; with ``trials``
+        (Quiz contract), ``trials_reachable``: share of trials whose correct place
+        is reachable from a cue node (hour, weekday, week), and
+        ``trials_mean_distance``: the mean shortest distance (links) from the
+        nearest cue node over those reachable, ``trials_neighbour``: share at
+        distance 1.
+    """
+    deg = g.degrees("capped")
+    isolated = [f"{k}:{lab}" for (k, lab), d in zip(g.nodes, deg.tolist(), strict=False) if d == 0]
+    hours = g.nodes_of("hour")
+    places = np.array(g.nodes_of("place"), dtype=np.int64)
+    out: dict = {"isolated": isolated, "n_isolated": len(isolated)}
+    dist = _hop_distances(g, hours)
+    counts = g.counts.tocsr()
+    no_place, pairs, within2, linked = [], 0, 0, 0
+    for r, h in enumerate(hours):
+        visited = [p for p in places.tolist() if counts[h, p] > 0]
+        if not visited:
+            continue
+        d = dist[r, visited]
+        pairs += len(visited)
+        within2 += int((d <= 2).sum())
+        linked += int((d <= 1).sum())
+        if not len(places) or not (dist[r, places] <= 2).any():
+            no_place.append(g.nodes[h][1])
+    out["hours_without_place_2"] = no_place
+    out["hour_place_within_2"] = within2 / pairs if pairs else None
+    out["hour_place_linked"] = linked / pairs if pairs else None
+    if trials is not None:
+        trials = list(trials)
+        cue_sets, targets = [], []
+        for t in trials:
+            cue = [g.index.get((k, str(t.get(k)))) for k in TIME_KINDS if t.get(k) is not None]
+            cue_sets.append([i for i in cue if i is not None])
+            targets.append(g.index.get(("place", str(t.get("correct")))))
+        src = sorted({i for c in cue_sets for i in c})
+        row = {s_: r for r, s_ in enumerate(src)}
+        dd = _hop_distances(g, src)
+        best = []
+        for cue, tgt in zip(cue_sets, targets, strict=False):
+            if tgt is None or not cue:
+                best.append(np.inf)
+                continue
+            best.append(min(dd[row[c], tgt] for c in cue))
+        b = np.array(best, dtype=np.float64)
+        ok = np.isfinite(b)
+        out["n_trials"] = len(trials)
+        out["trials_reachable"] = float(ok.mean()) if len(b) else None
+        out["trials_neighbour"] = float((b == 1).mean()) if len(b) else None
+        out["trials_mean_distance"] = float(b[ok].mean()) if ok.any() else None
+    return out

@@ -184,8 +184,13 @@ SCHEMA: dict[str, dict[str, Field]] = {
     "graph": {
         "nodes": Field(list, list(NODE_KINDS), _subset_of(NODE_KINDS, nonempty=True)),
         "degree_cap": Field(int, 5, _range(1, 1000)),
-        "cap_rule": Field(str, "strongest", _one_of("strongest", "arrival"),
+        "cap_rule": Field(str, "strongest",
+                          _one_of("strongest", "arrival", "mutual", "bmatching", "quota", "routine"),
                           "which edges survive the cap; see docs/graph.md"),
+        "edge_weight": Field(str, "binary", _one_of("binary", "log_count"),
+                             "weight of a kept link: 1, or 1 + ln(count)"),
+        "type_quota": Field(int, 2, _range(1, 1000),
+                            "cap_rule 'quota': links a node keeps to any one neighbouring kind"),
     },
     "quiz": {
         "min_age_days": Field(NUM, 7.0, _range(0.0, 365.0)),

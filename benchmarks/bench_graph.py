@@ -7,8 +7,9 @@ Two workloads, both synthetic and seeded:
   11 moods);
 * the 14-day demo shape (336 episodes, about 60 nodes).
 
-For each we time :meth:`CooccurrenceGraph.from_episodes` (counts + arrival-rule
-degree cap) and :func:`spectrum_report` (three dense ``eigh``), measure peak
+For each we time :meth:`CooccurrenceGraph.from_episodes` (counts + the arrival
+rule, which the networkx reference re-implements; every other cap rule is timed
+beside it) and :func:`spectrum_report` (three dense ``eigh``), measure peak
 Python heap with :mod:`tracemalloc` in a separate run (tracing slows the code,
 so it is not timed), and compare with a networkx reference that builds the same
 counts and the same capped graph edge by edge and takes the spectra with
@@ -113,7 +114,9 @@ def _peak(fn) -> float:
 
 
 def bench(name, episodes, cap, repeat):
-    t_build, g = _best(lambda: CooccurrenceGraph.from_episodes(episodes, degree_cap=cap), repeat)
+    # the reference implements "arrival"; the library default is another rule
+    t_build, g = _best(lambda: CooccurrenceGraph.from_episodes(episodes, degree_cap=cap,
+                                                               cap_rule="arrival"), repeat)
     t_spec, rep = _best(lambda: spectrum_report(g), repeat)
     from threadpoolctl import threadpool_limits
 
@@ -121,7 +124,7 @@ def bench(name, episodes, cap, repeat):
         t_ref, (G, H, spectra) = _best(lambda: networkx_reference(episodes, cap), max(1, repeat // 2))
     assert g.n_edges == H.number_of_edges() and g.counts.nnz // 2 == G.number_of_edges()
     assert np.allclose(np.sort(rep["capped"]["eigenvalues"]), spectra[2])
-    mem_build = _peak(lambda: CooccurrenceGraph.from_episodes(episodes, degree_cap=cap))
+    mem_build = _peak(lambda: CooccurrenceGraph.from_episodes(episodes, degree_cap=cap, cap_rule="arrival"))
     mem_spec = _peak(lambda: spectrum_report(g))
     ours = t_build + t_spec
     print(f"{name}: {len(episodes)} episodes, {g.n_nodes} nodes, {G.number_of_edges()} co-occurring pairs, "
@@ -130,6 +133,12 @@ def bench(name, episodes, cap, repeat):
           f"total {ours * 1e3:8.1f} ms")
     print(f"  peak traced heap: construction {mem_build:6.1f} MiB, spectrum {mem_spec:6.1f} MiB")
     print(f"  networkx reference (build + cap + eigvalsh) {t_ref * 1e3:8.1f} ms   ratio {t_ref / ours:5.1f}x")
+    from agent.caps import CAP_RULES
+
+    for rule in CAP_RULES:
+        t_rule, gr = _best(lambda rule=rule: CooccurrenceGraph.from_episodes(
+            episodes, degree_cap=cap, cap_rule=rule), repeat)
+        print(f"  cap rule {rule:9s} construction {t_rule * 1e3:8.1f} ms  {gr.n_edges} edges  {gr.cap_info}")
     for k in ("counts", "binary", "capped"):
         r = rep[k]
         print(f"  {k:7s} lambda1 {r['lambda1']:10.2f}  lambda1/|lambda2| {r['ratio']:6.2f}  "

@@ -256,6 +256,7 @@ def _alternatives(section: str, key: str, value):
         if key == "key_fingerprint":
             return ["ab" * 32]
         choices = {"motion_method": ["kmeans"], "cap_rule": ["strongest", "arrival"], "foils": ["frequency"],
+                   "edge_weight": ["log_count", "binary"],
                    "time_granularity": ["week"], "small_cell_rule": ["merge"], "unit": ["day"]}
         return [c for c in choices.get(key, []) if c != value] + [value + " (revised)"]
     raise TypeError(type(value))

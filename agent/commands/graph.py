@@ -11,9 +11,14 @@ def register(sub) -> None:
     add_json(p)
     p.set_defaults(func=_codebook)
 
-    g = sub.add_parser("graph", help="sizes, degree histogram, edge counts and spectrum of the "
-                                      "degree-capped co-occurrence graph")
+    g = sub.add_parser("graph", help="sizes, degree histogram, edge counts, routine diagnostics and "
+                                      "spectrum of the degree-capped co-occurrence graph")
     add_json(g)
+    g.add_argument("--cap-rule", metavar="RULE", default=None,
+                   help="try another cap rule than the policy's (strongest, arrival, mutual, bmatching, "
+                        "quota, routine)")
+    g.add_argument("--degree-cap", metavar="M", type=int, default=None,
+                   help="try another degree cap than the policy's")
     g.add_argument("--plot", metavar="FILE", help="write a PNG of the three spectra to FILE")
     g.set_defaults(func=_graph)
 
@@ -52,7 +57,7 @@ def _codebook(args) -> int:
 
 def _graph(args) -> int:
     from ..episodes import load_episodes
-    from ..graph import CooccurrenceGraph, graph_summary
+    from ..graph import CooccurrenceGraph, graph_summary, routine_diagnostics
     from ..spectrum import plot_spectra, spectrum_report, spectrum_summary
     from ..vault import Vault
 
@@ -60,8 +65,17 @@ def _graph(args) -> int:
     policy = home.load_policy()
     with Vault.open(home) as vault:
         episodes = load_episodes(vault)
-    g = CooccurrenceGraph.from_episodes(episodes, policy)
+        trials = [obj for _, obj in vault.items("trials")]
+    try:
+        g = CooccurrenceGraph.from_episodes(episodes, policy, cap_rule=args.cap_rule,
+                                            degree_cap=args.degree_cap)
+    except ValueError as exc:
+        from ..errors import UsageError
+
+        raise UsageError(f"lethe graph: {exc}") from None
     summary = graph_summary(g)
+    diag = routine_diagnostics(g, trials)
+    summary["diagnostics"] = diag
     spec = spectrum_report(g)
     summary["spectrum"] = spectrum_summary(spec)
     if args.plot:
@@ -77,6 +91,21 @@ def _graph(args) -> int:
                                                        summary["degree_histogram"].items()),
              "edges per type pair: " + ", ".join(f"{k} {v}" for k, v in
                                                  summary["edges_per_type_pair"].items())]
+    lines.append(f"isolated nodes: {diag['n_isolated']}"
+                 + (f" ({', '.join(diag['isolated'])})" if diag["isolated"] else ""))
+    lines.append("hours with no place within two links: "
+                 + (", ".join(diag["hours_without_place_2"]) or "none"))
+    if diag["hour_place_within_2"] is not None:
+        lines.append(f"visited (hour, place) pairs within two links: {diag['hour_place_within_2']:.3f} "
+                     f"(directly linked {diag['hour_place_linked']:.3f})")
+    if diag.get("n_trials"):
+        md = diag["trials_mean_distance"]
+        lines.append(f"memory-test trials: correct place reachable from the cue in "
+                     f"{diag['trials_reachable']:.3f} of {diag['n_trials']}, a neighbour of a cue node in "
+                     f"{diag['trials_neighbour']:.3f}, mean distance "
+                     + ("-" if md is None else f"{md:.2f}") + " links")
+    if "unmet" in g.cap_info:
+        lines.append(f"routine requirements the cap rule could not meet: {g.cap_info['unmet']}")
     for name in ("counts", "binary", "capped"):
         r = s[name]
         ratio = "inf" if r["ratio"] is None else f"{r['ratio']:.2f}"

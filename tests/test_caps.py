@@ -1,0 +1,175 @@
+"""Degree-cap rules (agent/caps.py): b-matching against networkx and brute force, the other rules
+against their definitions, and the routine diagnostics of the graph."""
+
+from __future__ import annotations
+
+import itertools
+
+import networkx as nx
+import numpy as np
+import pytest
+
+from agent import caps
+from agent.graph import CooccurrenceGraph, routine_diagnostics
+
+
+def _random_graph(n, p, seed, wmax=9):
+    rng = np.random.default_rng(seed)
+    pairs = [(i, j) for i in range(n) for j in range(i + 1, n) if rng.random() < p]
+    rows = np.array([i for i, _ in pairs], dtype=np.int64)
+    cols = np.array([j for _, j in pairs], dtype=np.int64)
+    w = rng.integers(1, wmax + 1, size=len(pairs)).astype(float)
+    return rows, cols, w
+
+
+def _brute_force_b_matching(rows, cols, w, n, b):
+    """Best total weight over every subset of edges with all degrees <= b (exhaustive)."""
+    best = 0.0
+    e = len(rows)
+    for mask in itertools.product((0, 1), repeat=e):
+        deg = np.zeros(n, dtype=int)
+        m = np.array(mask, dtype=bool)
+        np.add.at(deg, rows[m], 1)
+        np.add.at(deg, cols[m], 1)
+        if deg.max(initial=0) <= b:
+            best = max(best, float(w[m].sum()))
+    return best
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_b_matching_with_b_1_equals_networkx_max_weight_matching(seed):
+    # networkx.max_weight_matching: Edmonds' blossom algorithm (Galil 1986), the
+    # reference for b = 1 (a b-matching with b = 1 is a matching)
+    rows, cols, w = _random_graph(12, 0.35, seed)
+    keep, method = caps.b_matching(rows, cols, w, 12, 1)
+    assert method == "milp"
+    G = nx.Graph()
+    for i, j, x in zip(rows.tolist(), cols.tolist(), w.tolist(), strict=True):
+        G.add_edge(i, j, weight=x)
+    ref = nx.max_weight_matching(G)
+    ref_w = sum(G[a][b]["weight"] for a, b in ref)
+    assert w[keep].sum() == pytest.approx(ref_w)
+    deg = np.bincount(np.concatenate([rows[keep], cols[keep]]), minlength=12)
+    assert deg.max() <= 1
+
+
+@pytest.mark.parametrize("seed,b", [(0, 1), (1, 2), (2, 2), (3, 3), (4, 2)])
+def test_b_matching_equals_brute_force_on_tiny_graphs(seed, b):
+    rows, cols, w = _random_graph(6, 0.6, seed)
+    assert len(rows) <= 15  # 2^15 subsets at most
+    keep, method = caps.b_matching(rows, cols, w, 6, b)
+    assert method == "milp"
+    assert w[keep].sum() == pytest.approx(_brute_force_b_matching(rows, cols, w, 6, b))
+
+
+@pytest.mark.parametrize("seed,b", [(0, 1), (1, 2), (5, 2), (6, 3)])
+def test_greedy_fallback_is_within_half_of_the_optimum(seed, b):
+    # greedy on a 2-extendible system: at least half the optimum (Mestre 2006, from memory)
+    rows, cols, w = _random_graph(6, 0.7, seed)
+    greedy = caps.greedy_degree_cap(rows, cols, caps.order_strongest(np.arange(len(w)), w), 6, b)
+    opt = _brute_force_b_matching(rows, cols, w, 6, b)
+    assert w[greedy].sum() >= 0.5 * opt - 1e-9
+
+
+def test_greedy_bound_is_tight_on_the_path_example():
+    # path a-b-c-d, weights 1, 1+e, 1, b = 1: greedy takes the middle edge only
+    rows, cols, w = np.array([0, 1, 2]), np.array([1, 2, 3]), np.array([1.0, 1.01, 1.0])
+    greedy = caps.greedy_degree_cap(rows, cols, caps.order_strongest(np.arange(3), w), 4, 1)
+    keep, _ = caps.b_matching(rows, cols, w, 4, 1)
+    assert greedy.tolist() == [False, True, False]
+    assert keep.tolist() == [True, False, True]
+
+
+def test_mutual_top_m_keeps_pairs_in_both_top_lists():
+    rows, cols, w = _random_graph(10, 0.6, 3)
+    first = np.arange(len(w))
+    keep = caps.mutual_top_m(rows, cols, w, first, 10, 2)
+    # definition, written out independently: rank each pair at each end
+    for k, (i, j) in enumerate(zip(rows.tolist(), cols.tolist(), strict=True)):
+        def top(v):
+            inc = [q for q in range(len(w)) if v in (rows[q], cols[q])]
+            inc.sort(key=lambda q: (-w[q], first[q]))
+            return set(inc[:2])
+        assert keep[k] == (k in top(i) and k in top(j))
+
+
+def test_quota_limits_links_per_neighbouring_kind():
+    rows, cols, w = _random_graph(12, 0.8, 4)
+    kind = np.arange(12) % 3
+    keep = caps.greedy_degree_cap(rows, cols, caps.order_strongest(np.arange(len(w)), w), 12, 5,
+                                  node_kind=kind, quota=1)
+    for v in range(12):
+        nb = [int(cols[k]) if rows[k] == v else int(rows[k]) for k in np.flatnonzero(keep)
+              if v in (rows[k], cols[k])]
+        assert len(nb) <= 5
+        assert max(np.bincount(kind[nb], minlength=3)) <= 1
+
+
+def test_log_count_weights():
+    assert caps.edge_weights([1, 2, 10], "log_count").tolist() == pytest.approx(
+        [1.0, 1 + np.log(2), 1 + np.log(10)])
+    assert caps.edge_weights([1, 7], "binary").tolist() == [1.0, 1.0]
+
+
+def test_unknown_cap_rule_is_refused():
+    with pytest.raises(ValueError, match="expected one of"):
+        caps.select_edges(np.array([0]), np.array([1]), np.array([1.0]), np.array([0]), 2, 1, "widest")
+
+
+def test_unknown_edge_weight_is_refused():
+    with pytest.raises(ValueError, match="edge_weight"):
+        caps.edge_weights([1], "sqrt")
+
+
+def test_zero_degree_cap_is_refused():
+    with pytest.raises(ValueError, match="positive integer"):
+        caps.mutual_top_m(np.array([0]), np.array([1]), np.array([1.0]), np.array([0]), 2, 0)
+
+
+def _routine_episodes(days=14):
+    from tests.test_graph import demo_like_episodes
+
+    return demo_like_episodes(days=days)
+
+
+@pytest.mark.parametrize("rule", caps.CAP_RULES)
+def test_every_rule_respects_the_cap(rule):
+    g = CooccurrenceGraph.from_episodes(_routine_episodes(), degree_cap=6, cap_rule=rule)
+    assert g.degrees("capped").max() <= 6
+
+
+def test_routine_rule_keeps_hours_within_two_links_of_their_places():
+    eps = _routine_episodes()
+    g = CooccurrenceGraph.from_episodes(eps, degree_cap=6, cap_rule="routine")
+    d = routine_diagnostics(g)
+    assert g.cap_info["unmet"] == 0
+    assert d["n_isolated"] == 0 and d["hours_without_place_2"] == []
+    assert d["hour_place_within_2"] == 1.0
+
+
+def test_diagnostics_match_networkx_distances():
+    eps = _routine_episodes()
+    g = CooccurrenceGraph.from_episodes(eps, degree_cap=5, cap_rule="strongest")
+    trials = [{"hour": e["hour"], "weekday": e["weekday"], "week": e["week"], "correct": e["place"]}
+              for e in eps[::7] if e["place"] is not None]
+    d = routine_diagnostics(g, trials)
+    G = nx.from_scipy_sparse_array(g.capped)
+    dist = []
+    for t in trials:
+        tgt = g.index[("place", t["correct"])]
+        cues = [g.index[(k, str(t[k]))] for k in ("hour", "weekday", "week")]
+        ds = [nx.shortest_path_length(G, c, tgt) for c in cues if nx.has_path(G, c, tgt)]
+        dist.append(min(ds) if ds else np.inf)
+    dist = np.array(dist)
+    assert d["trials_reachable"] == pytest.approx(np.isfinite(dist).mean())
+    assert d["trials_mean_distance"] == pytest.approx(dist[np.isfinite(dist)].mean())
+    iso = [f"{k}:{lab}" for (k, lab), v in zip(g.nodes, G.nodes, strict=True) if G.degree(v) == 0]
+    assert d["isolated"] == iso
+
+
+def test_weights_follow_the_edge_weight_scheme():
+    eps = _routine_episodes()
+    g = CooccurrenceGraph.from_episodes(eps, degree_cap=5, cap_rule="strongest", edge_weight="log_count")
+    i, j = g.capped.nonzero()
+    expect = 1 + np.log(np.asarray(g.counts[i, j]).ravel())
+    assert np.asarray(g.weights[i, j]).ravel() == pytest.approx(expect)
