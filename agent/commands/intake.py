@@ -14,6 +14,8 @@ def register(sub) -> None:
     p.add_argument("--settle", type=float, metavar="S", default=None,
                    help="seconds a file's size and mtime must stay unchanged to count as complete "
                         "(default: the policy's retention.settle_seconds)")
+    p.add_argument("--no-page", action="store_true",
+                   help="do not serve the participant's page or raise mood-prompt notifications")
     add_json(p)
     p.set_defaults(func=_run)
 
@@ -43,11 +45,22 @@ def _run(args) -> int:
         stop.set()
 
     def _ready(seconds):
-        if not args.once:
-            # On stderr, so --json output stays clean; a supervisor can wait for this line.
-            print(f"lethe: watching {home.inbox} (ready in {seconds:.2f} s; stop with Ctrl-C)",
+        nonlocal companion
+        if args.once:
+            return
+        # On stderr, so --json output stays clean; a supervisor can wait for this line.
+        print(f"lethe: watching {home.inbox} (ready in {seconds:.2f} s; stop with Ctrl-C)",
+              file=sys.stderr, flush=True)
+        if not args.no_page:
+            # The participant's page and the mood prompts (agent/participant/companion.py),
+            # started once this process holds the home.
+            from ..participant.companion import Companion
+
+            companion = Companion(home, policy, stop).start()
+            print(f"lethe: your page is served on 127.0.0.1:{companion.server.port}; 'lethe open' opens it",
                   file=sys.stderr, flush=True)
 
+    companion = None
     old = {s: signal.signal(s, _stop) for s in (signal.SIGTERM, signal.SIGINT)}
     try:
         report = run_agent(home, policy, once=args.once, settle_s=args.settle, stop_event=stop,
@@ -55,5 +68,7 @@ def _run(args) -> int:
     finally:
         for s, h in old.items():
             signal.signal(s, h)
+        if companion is not None:
+            companion.close()
     emit(args, report.as_dict(), report.text())
     return 0

@@ -54,6 +54,16 @@ def register(sub) -> None:
     add_json(p)
     p.set_defaults(func=_withdraw)
 
+    p = sub.add_parser("open", help="open your own page in the browser (a fresh private link)",
+                       description="Open the participant's page: today, your places, the memory test, how you "
+                                   "feel, what leaves, pause and withdraw. The running agent serves it; if the "
+                                   "agent is not running, this command serves it until you press Ctrl-C.")
+    p.add_argument("--page", choices=("today", "places", "test", "feel", "leaves", "pause"), default="today",
+                   help="which page to open first")
+    p.add_argument("--print-url", action="store_true",
+                   help="print the private link instead of starting a browser (it works once, for 2 minutes)")
+    p.set_defaults(func=_open)
+
     p = sub.add_parser("service", help="install or remove the background service")
     ps = p.add_subparsers(dest="service_command", metavar="ACTION", required=True)
     for name, helptext in (("install", "write and enable a per-user service"),
@@ -217,6 +227,46 @@ def _withdraw(args) -> int:
     res = withdraw(home)
     emit(args, res, f"Withdrawn. Everything was destroyed; send the certificate to the study team: "
                     f"{res['certificate']}")
+    return 0
+
+
+_PAGE_PATHS = {"today": "/", "places": "/places", "test": "/test", "feel": "/feel", "leaves": "/leaves",
+               "pause": "/pause"}
+
+
+def _open(args) -> int:
+    import signal
+    import threading
+
+    from ..participant.web import PageServer, login_url, open_browser, read_page_info
+
+    home = home_from(args).require()
+    path = _PAGE_PATHS[args.page]
+    info = read_page_info(home)
+
+    def show(url: str) -> None:
+        if args.print_url or not open_browser(url):
+            print(url, flush=True)
+            if not args.print_url:
+                print("Could not start a browser: open the link above in yours (it works once, for 2 minutes).")
+
+    if info:
+        show(login_url(home, info["port"], path))
+        return 0
+    stop = threading.Event()
+    old = {s: signal.signal(s, lambda *_: stop.set()) for s in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        with PageServer(home) as server:
+            print("lethe is not running in the background, so this terminal serves your page until you "
+                  "press Ctrl-C.", file=sys.stderr, flush=True)
+            show(server.url(path))
+            while not stop.is_set() and not server.withdrawn.is_set():
+                stop.wait(0.5)
+            if server.withdrawn.is_set():
+                stop.wait(1.0)  # let the last page reach the browser
+    finally:
+        for s, h in old.items():
+            signal.signal(s, h)
     return 0
 
 

@@ -82,7 +82,7 @@ def _vault_part(v, policy, now: float) -> dict:
 def _date(t) -> str | None:
     if t is None:
         return None
-    return _dt.datetime.fromtimestamp(float(t), _dt.timezone.utc).date().isoformat()
+    return _dt.datetime.fromtimestamp(float(t), _dt.UTC).date().isoformat()
 
 
 def _n(d: dict, kind: str) -> int:
@@ -93,7 +93,7 @@ def status_text(st: dict) -> str:
     a = st["agent"]
     state = "paused" if a["paused"] else ("running" if a["running"] else "not running")
     if a["paused"] and a.get("paused_until"):
-        until = _dt.datetime.fromtimestamp(a["paused_until"], _dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+        until = _dt.datetime.fromtimestamp(a["paused_until"], _dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
         state += f" until {until}"
     p = st["policy"]
     lines = [

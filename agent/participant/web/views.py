@@ -1,0 +1,270 @@
+"""What the participant's page shows, in plain words, as plain data for the templates.
+
+No function here touches the web: each takes the home (and an open vault where
+needed) and returns dicts and strings the templates print.  Internal terms
+(codebook, episodes, ledger, featurised...) stay out of every string.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+import secrets
+import time
+from collections import Counter, defaultdict
+
+from ...home import Home
+
+KIND_WORDS = {"audio": "sound snippets", "gps": "location files", "accel": "movement files",
+              "mood": "mood answers", "unknown": "unrecognised files"}
+MOTION_WORDS = {"sedentary": "mostly sitting or still", "light": "light activity, such as walking about",
+                "mvpa": "brisk activity, such as fast walking or sport"}
+WEEKDAY_WORDS = ("Mondays", "Tuesdays", "Wednesdays", "Thursdays", "Fridays", "Saturdays", "Sundays")
+DURATIONS = (("30m", "30 minutes", 1800.0), ("2h", "2 hours", 7200.0), ("8h", "8 hours", 28800.0),
+             ("1d", "a day", 86400.0), ("3d", "3 days", 3 * 86400.0), ("open", "until I resume", None))
+
+
+def local_text(t: float | None, zone, with_date: bool = True) -> str:
+    """``"Wed 2 Dec, 14:05"`` in the participant's zone (or ``"-"``)."""
+    if t is None:
+        return "-"
+    d = _dt.datetime.fromtimestamp(float(t), zone)
+    return d.strftime("%a %-d %b, %H:%M") if with_date else d.strftime("%H:%M")
+
+
+# ----------------------------------------------------------------------------- today
+def today(home: Home, now: float | None = None) -> dict:
+    from ..prompts import PromptBook
+    from ..status import collect_status
+
+    now = time.time() if now is None else float(now)
+    st = collect_status(home, now=now)
+    zone = home.timezone()
+    ic = st["intake"]
+    kinds = []
+    for kind in ("audio", "gps", "accel", "mood", "unknown"):
+        got = ic["received"].get(kind, 0)
+        if got or kind != "unknown":
+            kinds.append({"what": KIND_WORDS[kind], "arrived": got,
+                          "destroyed": ic["destroyed"].get(kind, 0),
+                          "unreadable": ic["rejected"].get(kind, 0)})
+    a = st["agent"]
+    if a["paused"]:
+        state = ("paused until " + local_text(a["paused_until"], zone)) if a.get("paused_until") else \
+            "paused until you resume"
+    elif a["running"]:
+        state = "running"
+    else:
+        state = "not running in the background"
+    book = PromptBook(home)
+    pc = book.counts(now)
+    attention, due = [], []
+    if book.open_prompt(now):
+        attention.append(("A mood question is waiting for your answer.", "/feel"))
+    inbox = ic["inbox"]
+    if inbox["files"] and inbox["oldest_age_s"] and inbox["oldest_age_s"] > inbox["limit_s"]:
+        attention.append((f"{inbox['files']} file(s) have waited in the inbox longer than the "
+                          f"{inbox['limit_s']:g} seconds allowed. Is lethe running?", None))
+    if not a["running"] and not a["paused"]:
+        attention.append(("lethe is not running in the background, so nothing arriving is taken in. "
+                          "Start it with 'lethe service install' (or 'lethe run' in a terminal).", None))
+    v = st.get("vault") or {}
+    q = v.get("quiz") or {}
+    if q.get("pending"):
+        attention.append((f"{q['pending']} memory test question(s) are waiting.", "/test"))
+    ex = v.get("exports") or {}
+    if ex.get("next_due") == "now":
+        attention.append(("Your first summary for the study can be prepared.", "/leaves"))
+    elif ex.get("next_due"):
+        due.append(f"Next summary for the study: from {ex['next_due']}.")
+    if pc["next"]:
+        due.append(f"Next mood question: {local_text(pc['next'], zone)}.")
+    return {"state": state, "paused": bool(a["paused"]), "running": bool(a["running"]), "kinds": kinds,
+            "waiting": inbox["files"], "limit_s": inbox["limit_s"], "attention": attention, "due": due,
+            "prompts": pc, "places": v.get("places", 0), "named": v.get("named_places", 0),
+            "quiz": q, "study_id": st["study_id"], "zone": st["timezone"]}
+
+
+# ----------------------------------------------------------------------------- places
+def hour_ranges(h: Counter, share_of_peak: float = 0.5) -> list[tuple[int, int]]:
+    """Clock-hour ranges ``[(start, end), ...]`` (end exclusive) of the hours with at least
+    ``share_of_peak`` of the busiest hour's visits; a range through midnight is one range."""
+    if not h:
+        return []
+    peak = max(h.values())
+    picked = sorted(k for k, n in h.items() if n >= share_of_peak * peak)
+    ranges: list[list[int]] = []
+    for k in picked:
+        if ranges and ranges[-1][1] == k:
+            ranges[-1][1] = k + 1
+        else:
+            ranges.append([k, k + 1])
+    if len(ranges) > 1 and ranges[0][0] == 0 and ranges[-1][1] == 24:
+        first = ranges.pop(0)
+        ranges[-1][1] = first[1]  # 19 to 24 and 0 to 9 -> 19 to 9, overnight
+    return [(a, b) for a, b in ranges]
+
+
+def hours_words(h: Counter) -> str:
+    """``"from 09:00 to 17:00"``, ``"from 19:00 to 09:00"`` (overnight), or ``"-"``."""
+    rs = hour_ranges(h)
+    if not rs:
+        return "-"
+    if rs == [(0, 24)]:
+        return "at any hour"
+    return " and ".join(f"from {a:02d}:00 to {b % 24:02d}:00" for a, b in rs)
+
+
+def days_words(d: Counter, share: float = 0.1) -> str:
+    total = sum(d.values())
+    if not total:
+        return "-"
+    days = [i for i in range(7) if d[i] >= share * total]
+    if days == list(range(5)):
+        return "weekdays"
+    if days == [5, 6]:
+        return "weekends"
+    if days == list(range(7)):
+        return "every day of the week"
+    return ", ".join(WEEKDAY_WORDS[i] for i in days)
+
+
+def places(vault) -> list[dict]:
+    """Each place with its name and what helps recognise it without a map."""
+    from ...places import list_places
+
+    rows = list_places(vault)
+    hours: dict[str, Counter] = defaultdict(Counter)
+    days: dict[str, Counter] = defaultdict(Counter)
+    sounds: dict[str, Counter] = defaultdict(Counter)
+    motions: dict[str, Counter] = defaultdict(Counter)
+    for _, e in vault.items("episodes"):
+        pid = e.get("place")
+        if not pid:
+            continue
+        hours[pid][e["hour"]] += 1
+        days[pid][e["weekday"]] += 1
+        if e.get("sound"):
+            sounds[pid][e["sound"]] += 1
+        if e.get("motion"):
+            motions[pid][e["motion"]] += 1
+    names = {r["id"]: r["name"] for r in rows}
+    # a sound kind is described by the places where it is usual, in the participant's own names
+    usual_at: dict[str, list[str]] = defaultdict(list)
+    for pid, c in sounds.items():
+        if c:
+            usual_at[c.most_common(1)[0][0]].append(pid)
+    letters = {sid: chr(ord("A") + i) if i < 26 else sid
+               for i, sid in enumerate(sorted({s for c in sounds.values() for s in c}, key=_num))}
+    out = []
+    for r in rows:
+        pid = r["id"]
+        sc, mc = sounds.get(pid, Counter()), motions.get(pid, Counter())
+        if sc:
+            sid, n = sc.most_common(1)[0]
+            others = [names[p] or _unnamed(p) for p in usual_at[sid] if p != pid]
+            sound = f"sound kind {letters[sid]} ({100 * n / sum(sc.values()):.0f}% of your hours here)"
+            if others:
+                sound += "; the same kind is usual at " + ", ".join(others[:3])
+        else:
+            sound = "not known"
+        if mc:
+            mid, n = mc.most_common(1)[0]
+            motion = f"{MOTION_WORDS.get(mid, 'activity kind ' + str(mid))} ({100 * n / sum(mc.values()):.0f}%)"
+        else:
+            motion = "not known"
+        out.append({**r, "label": r["name"] or _unnamed(pid), "days": days_words(days.get(pid, Counter())),
+                    "hours": hours_words(hours.get(pid, Counter())), "sound": sound, "motion": motion,
+                    "visits": r["hours_seen"]})
+    return out
+
+
+def _num(s: str):
+    digits = "".join(c for c in s if c.isdigit())
+    return (int(digits) if digits else 0, s)
+
+
+def _unnamed(pid: str) -> str:
+    return f"unnamed place {pid.lstrip('P')}"
+
+
+def option_label(pid: str, rows: dict[str, dict]) -> str:
+    """How a memory-test option is shown: the participant's name, else when they are usually there."""
+    r = rows.get(pid)
+    if r is None:
+        return _unnamed(pid)
+    if r.get("name"):
+        return r["name"]
+    return f"{_unnamed(pid)}: usually {r['days']}, {r['hours']}"
+
+
+# ----------------------------------------------------------------------------- mood answers
+def write_mood_answer(home: Home, policy, ratings: dict[str, int], now: float | None = None) -> str:
+    """Write one mood report into the inbox as ``*.mood.json`` (docs/inbox-formats.md).
+
+    Written beside the inbox first and renamed in, so the agent never sees half
+    a file.  Returns the file name.
+    """
+    from ...errors import DataError
+    from ...home import write_private
+
+    s = policy.schedule
+    emotions = list(s.emotions)
+    if sorted(ratings) != sorted(emotions):
+        raise DataError(f"a mood answer rates exactly {', '.join(emotions)}; got {', '.join(sorted(ratings))}")
+    for k, val in ratings.items():
+        if not isinstance(val, int) or isinstance(val, bool) or not s.mood_scale_min <= val <= s.mood_scale_max:
+            raise DataError(f"mood answer: {k} = {val!r} is not a whole number from {s.mood_scale_min} "
+                            f"to {s.mood_scale_max}")
+    now = time.time() if now is None else float(now)
+    when = _dt.datetime.fromtimestamp(now, _dt.UTC)
+    doc = {"reports": [{"time": when.isoformat(timespec="seconds").replace("+00:00", "Z"),
+                        "ratings": {k: int(ratings[k]) for k in emotions}}]}
+    name = f"page-{when.strftime('%Y%m%dT%H%M%S')}-{secrets.token_hex(4)}.mood.json"
+    tmp = home.state / f".{name}.part"
+    write_private(tmp, json.dumps(doc).encode())
+    os.replace(tmp, home.inbox / name)
+    return name
+
+
+def mood_counts(home: Home) -> dict:
+    from ...intake.pipeline import intake_counts
+
+    ic = intake_counts(home)
+    return {k: int(ic[k].get("mood", 0)) for k in ("received", "featurised", "rejected", "destroyed")}
+
+
+def answer_fate(home: Home, last: dict | None) -> str | None:
+    """What became of the last answer the page wrote: waiting, taken in, or unreadable."""
+    if not last:
+        return None
+    if (home.inbox / last["file"]).exists():
+        return "waiting"
+    now, base = mood_counts(home), last.get("baseline", {})
+    if now["rejected"] > base.get("rejected", 0) and now["destroyed"] > base.get("destroyed", 0):
+        return "unreadable"
+    if now["featurised"] > base.get("featurised", 0) and now["destroyed"] > base.get("destroyed", 0):
+        return "taken"
+    return "moving"
+
+
+# ----------------------------------------------------------------------------- what leaves
+def outbox(home: Home) -> list[dict]:
+    """Bundles in the outbox: prepared, not sent (this build has no uploader yet)."""
+    zone = home.timezone()
+    rows = []
+    if home.outbox.exists():
+        for p in sorted(home.outbox.iterdir()):
+            if p.is_file() and p.suffix == ".lethe":
+                st = p.stat()
+                rows.append({"name": p.name, "bytes": st.st_size, "when": local_text(st.st_mtime, zone),
+                             "state": "prepared (in the outbox, not sent yet)"})
+    return rows
+
+
+def withdraw_counts(home: Home) -> dict:
+    """What a withdrawal would destroy, counted without opening any content."""
+    n_out = sum(1 for p in home.outbox.iterdir() if p.is_file()) if home.outbox.exists() else 0
+    n_in = sum(1 for p in home.inbox.iterdir() if p.is_file()) if home.inbox.exists() else 0
+    return {"outbox": n_out, "inbox": n_in}
