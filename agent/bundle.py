@@ -388,7 +388,8 @@ def _export_locked(home, policy, card, now, confirm, vault):
                 relabel.save(vault)
         path = home.outbox / bundle_name(seq, home.read_config().get("pseudonym"))
         write_private(path, data)
-        Ledger(home, signing_key=device_key).append("exported", bundle_seq=seq, digest=digest)
+        log_size = {"log_size": payload["log"]["size"]} if "log" in payload else {}
+        Ledger(home, signing_key=device_key).append("exported", bundle_seq=seq, digest=digest, **log_size)
         return path
     finally:
         if own_vault:

@@ -225,7 +225,8 @@ def edge_list_from(edges: Iterable, kinds: Sequence[str], relabel: Relabeller, d
 
 def payload_from_parts(policy, *, episodes: Iterable[Mapping], edges: Iterable | None,
                        fit: Mapping | None, quiz_score: Mapping | None, ledger_digest: Mapping,
-                       relabel: Relabeller, created: str, software_version: str) -> dict:
+                       relabel: Relabeller, created: str, software_version: str,
+                       log: Mapping | None = None) -> dict:
     """Assemble a payload from already-loaded parts (pure; the tests' entry point).
 
     Parameters
@@ -237,6 +238,8 @@ def payload_from_parts(policy, *, episodes: Iterable[Mapping], edges: Iterable |
     quiz_score : :func:`agent.quiz.score` output or None
     ledger_digest : :func:`agent.ledger.digest` output
     relabel : Relabeller
+    log : :func:`agent.ledger.log_section` output, optional
+        The ledger's Merkle tree head and consistency proofs (``docs/ledger.md``).
     created : str
         Coarse date (:func:`coarse_date`).
     """
@@ -280,6 +283,8 @@ def payload_from_parts(policy, *, episodes: Iterable[Mapping], edges: Iterable |
         "kinds": list(kinds), "counts": counts, "edge_list": edge_list, "model": model, "quiz": quiz,
         "ledger_digest": project_ledger_digest(ledger_digest), "withheld": withheld,
     }
+    if log is not None:
+        payload["log"] = dict(log)
     validate_payload(payload)
     return payload
 
@@ -298,7 +303,7 @@ def build_payload_and_relabel(home, policy, vault, now: float | None = None):
     """:func:`build_payload` plus the (possibly grown) :class:`Relabeller` to save on export."""
     from . import __version__
     from .home import Home
-    from .ledger import digest, verify_ledger
+    from .ledger import digest, log_section, verify_ledger
 
     home = home if isinstance(home, Home) else Home(home)
     episodes = [e for _, e in vault.items("episodes")]
@@ -319,9 +324,10 @@ def build_payload_and_relabel(home, policy, vault, now: float | None = None):
     except Exception:  # a home without a policy copy: fall back to UTC dates
         tz = None
     created = coarse_date(now, policy.export.time_granularity, tz)
+    report = verify_ledger(home, policy=policy, keep_leaves=True)
     payload = payload_from_parts(policy, episodes=episodes, edges=edges, fit=fit, quiz_score=quiz_score,
-                                 ledger_digest=digest(verify_ledger(home, policy=policy)),
-                                 relabel=relabel, created=created, software_version=__version__)
+                                 ledger_digest=digest(report), relabel=relabel, created=created,
+                                 software_version=__version__, log=log_section(report))
     return payload, relabel
 
 
@@ -474,6 +480,20 @@ def _ledger(v, p):
           "p95_exposure_s": _nullable(_numv)})
 
 
+_HEXH = re.compile(r"^[0-9a-f]{64}$")
+
+
+def _log(v, p):
+    # The ledger's Merkle log (docs/ledger.md): at most 8 proofs of at most 64 hashes each.
+    _obj(v, p, {"size": _int(0), "root": _str_rx(_HEXH, "64 hex digits"),
+                "origin": _nullable(_str_rx(_HEXH, "64 hex digits")),
+                "head": lambda d, q: _obj(d, q, {"seq": _int(-1), "hash": _str_rx(_HEXH, "64 hex digits")}),
+                "counts": _map(_NAME, "an event counter name", _int(0)),
+                "proofs": _list(lambda d, q: _obj(d, q, {
+                    "from_size": _int(1), "from_root": _str_rx(_HEXH, "64 hex digits"),
+                    "proof": _list(_str_rx(_HEXH, "64 hex digits"), 64)}), 8)})
+
+
 def validate_payload(payload: Any, source: str | None = None) -> dict:
     """Check a payload against schema version 1; :class:`DataError` names the field.
 
@@ -501,7 +521,7 @@ def validate_payload(payload: Any, source: str | None = None) -> dict:
             "ledger_digest": _ledger,
             "withheld": _map(re.compile(r"^(edge_list|model|quiz)$"), "edge_list, model or quiz",
                              lambda v, p: None if isinstance(v, str) and len(v) < 300 else _fail(p, "expected a short reason")),
-        })
+        }, {"log": _log})
         check_coarse(payload["created"], payload["time_granularity"], "created")
     except DataError as e:
         if source:

@@ -347,6 +347,7 @@ def test_run_codebook_with_a_real_ledger_appends_counts(home, default_policy):
     rng = np.random.default_rng(2)
     ks = Keystore(home).ensure()
     lg = Ledger(home, signing_key=ks.device_key())
+    lg.append("agent_start")  # a ledger is never started over a vault that holds data (issue 12, finding 3)
     with Vault.open(home) as v:
         _fill(v, rng, days=1)
         r = run_codebook(home, default_policy, v, now=T0 + 3 * 86400, ledger=lg, episodes=False)

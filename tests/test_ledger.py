@@ -256,14 +256,48 @@ def test_whole_entry_missing_only_its_newline_is_kept(home, ledger):
     assert verify_ledger(home, policy=30).ok
 
 
-def test_corrupt_last_complete_line_blocks_append(home, ledger):
-    from agent.errors import IntegrityError
+# -- a damaged ledger never stops appending (issue 12, finding 6) ----------------------
 
+def test_garbage_last_line_does_not_block_append(home, ledger):
+    # Finding 6: one garbage line used to stop every later append (and so all destruction).
     ledger.append("agent_start")
     with open(home.ledger_path, "ab") as f:
         f.write(b"garbage\n")
-    with pytest.raises(IntegrityError, match="last complete entry is not a valid ledger entry"):
-        Ledger(home, Keystore(home).device_key()).append("resumed")
+    lg = Ledger(home, Keystore(home).device_key())
+    e = lg.append("resumed")
+    assert e["seq"] == 2  # 0 agent_start, 1 alarm, 2 resumed
+    assert lg.damaged == 1
+
+
+def test_garbage_line_is_recorded_as_an_alarm_once(home, ledger):
+    ledger.append("agent_start")
+    with open(home.ledger_path, "ab") as f:
+        f.write(b"garbage\n")
+    lg = Ledger(home, Keystore(home).device_key())
+    lg.append("resumed")
+    Ledger(home, Keystore(home).device_key()).append("paused", until=None)  # a later process
+    events = [x["event"] for x in Ledger(home).entries()]
+    assert events == ["agent_start", "alarm", "resumed", "paused"]
+    alarm = next(x for x in Ledger(home).entries() if x["event"] == "alarm")
+    assert (alarm["check"], alarm["lines"]) == ("damaged_line", 1)
+
+
+def test_garbage_line_is_reported_by_the_verifier(home, ledger):
+    ledger.append("agent_start")
+    with open(home.ledger_path, "ab") as f:
+        f.write(b"garbage\n")
+    Ledger(home, Keystore(home).device_key()).append("resumed")
+    r = verify_ledger(home, policy=30)
+    assert not r.ok and r.messages("json") == ["line 2: not valid JSON"]
+    assert r.damaged_lines == 1 and r.alarms[0]["lines"] == 1
+
+
+def test_garbage_line_in_the_middle_does_not_block_reading(home, ledger):
+    ledger.append("agent_start")
+    with open(home.ledger_path, "ab") as f:
+        f.write(b"{\"not\": \"an entry\"}\n")
+    ledger.append("resumed")
+    assert [x["event"] for x in Ledger(home).entries()] == ["agent_start", "alarm", "resumed"]
 
 
 def test_verify_needs_no_passphrase(home, monkeypatch):

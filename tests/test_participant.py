@@ -120,3 +120,12 @@ def test_duration_parsing():
     assert parse_duration("90s") == 90 and parse_duration("2h") == 7200 and parse_duration("1.5d") == 129600
     with pytest.raises(UsageError, match="expected a number and a unit"):
         parse_duration("soon")
+
+
+def test_enrolment_carries_the_ledger_origin(enrolled):
+    # Issue 12, finding 3: the study learns where this device's ledger begins.
+    from agent.ledger import Ledger
+    from agent.study.card import load_enrolment
+
+    first = next(Ledger(enrolled["home"]).entries())
+    assert load_enrolment(enrolled["enrolment"])["log_origin"] == first["hash"]

@@ -94,10 +94,16 @@ def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | Non
     shutil.copyfile(policy_path, home.policy_path)
     home.policy_path.chmod(0o600)
     write_private(home.root / "study-card.json", Path(card_path).read_bytes())
+    # The ledger's first entry comes before anything else is recorded: its hash
+    # (the log's origin) goes into the enrolment, so the study can tell a
+    # ledger started again from the one this device began with.
+    first = Ledger(home, signing_key=ks.device_key()).append(
+        "policy", fingerprint=policy.fingerprint, name=policy.policy.name, version=policy.policy.version)
     pseudonym = new_pseudonym()
     text = consent_text(card, policy)
     out = Path(enrolment_out) if enrolment_out else home.root / "enrolment.json"
-    write_enrolment(home, card, policy, pseudonym, out, device_private_key=ks.device_key())
+    write_enrolment(home, card, policy, pseudonym, out, device_private_key=ks.device_key(),
+                    log_origin=first["hash"])
     home.write_config({
         "format": "lethe-home", "version": 1,
         "study_id": card.study_id, "pseudonym": pseudonym, "timezone": tz,
@@ -105,10 +111,8 @@ def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | Non
         "card_key_fingerprint": card.key_fingerprint,
         "consent": {"study_id": card.study_id, "text_sha256": hashlib.sha256(text.encode()).hexdigest(),
                     "at": now},
-        "enrolment_file": str(out),
+        "enrolment_file": str(out), "log_origin": first["hash"],
     })
-    Ledger(home, signing_key=ks.device_key()).append(
-        "policy", fingerprint=policy.fingerprint, name=policy.policy.name, version=policy.policy.version)
     kid = device_key_id(ks.device_public())
     return {"pseudonym": pseudonym, "device_key_id": kid, "enrolment": str(out), "home": str(home.root),
             "study_id": card.study_id, "policy_fingerprint": policy.fingerprint, "timezone": tz}

@@ -49,6 +49,8 @@ ENROLMENT_FIELDS = {
     "format": str, "version": int, "study_id": str, "pseudonym": str, "device_public_key": str,
     "device_key_id": str, "policy_fingerprint": str, "created": str, "signature": str,
 }
+# Optional: the device ledger's origin (its first entry's hash; docs/ledger.md), signed with the rest.
+ENROLMENT_OPTIONAL = {"log_origin": str}
 
 
 @dataclass(frozen=True)
@@ -94,12 +96,17 @@ def _check_header(doc, fmt: str, version: int, source, what: str) -> None:
                         f"this lethe reads version {version}")
 
 
-def _check_fields(doc, spec: dict, source, what: str) -> None:
+def _check_fields(doc, spec: dict, source, what: str, optional: dict | None = None) -> None:
     if not isinstance(doc, dict):
         raise DataError(f"{source}: expected a JSON object ({what})")
-    unknown = sorted(set(doc) - set(spec))
+    optional = optional or {}
+    unknown = sorted(set(doc) - set(spec) - set(optional))
     if unknown:
-        raise DataError(f"{source}: [{unknown[0]}] unknown field in a {what}; allowed: {', '.join(spec)}")
+        raise DataError(f"{source}: [{unknown[0]}] unknown field in a {what}; "
+                        f"allowed: {', '.join([*spec, *optional])}")
+    for k, t in optional.items():
+        if k in doc and not isinstance(doc[k], t):
+            raise DataError(f"{source}: [{k}] expected {t.__name__}, got {type(doc[k]).__name__}")
     for k, t in spec.items():
         if k not in doc:
             raise DataError(f"{source}: [{k}] required field is missing from the {what}")
@@ -240,7 +247,7 @@ def _raw_public(device_private_key) -> bytes:
 
 
 def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, *,
-                   created: _dt.date | None = None) -> dict:
+                   created: _dt.date | None = None, log_origin: str | None = None) -> dict:
     """The signed enrolment document for this device.
 
     Parameters
@@ -252,8 +259,13 @@ def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, 
         4-64 characters from ``[A-Za-z0-9_-]``.
     device_private_key : Ed25519PrivateKey
         The device key (``Keystore(home).device_key()``).
+    log_origin : str, optional
+        The hash of the device ledger's first entry (64 hex digits); the study
+        checks every bundle's log against it (``docs/ledger.md``).
     """
     check_policy_approved(card, policy)
+    if log_origin is not None and not _HEX64.match(log_origin):
+        raise DataError(f"[log_origin] {log_origin!r}: expected 64 lower-case hex digits")
     if not isinstance(pseudonym, str) or not _PSEUDONYM.match(pseudonym):
         raise DataError(f"[pseudonym] {pseudonym!r}: expected 4-64 characters from A-Z a-z 0-9 _ -")
     pub = _raw_public(device_private_key)
@@ -261,18 +273,20 @@ def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, 
     doc = {"format": ENROLMENT_FORMAT, "version": ENROLMENT_VERSION, "study_id": card.study_id,
            "pseudonym": pseudonym, "device_public_key": b64e(pub), "device_key_id": device_key_id(pub),
            "policy_fingerprint": policy.fingerprint, "created": created}
+    if log_origin is not None:
+        doc["log_origin"] = log_origin
     doc["signature"] = b64e(device_private_key.sign(canonical_json(doc)))
     return doc
 
 
 def write_enrolment(home, card: StudyCard, policy, pseudonym: str, out_path, *,
-                    device_private_key=None) -> Path:
+                    device_private_key=None, log_origin: str | None = None) -> Path:
     """Write the enrolment file for ``home``'s device key to ``out_path`` (atomic, 0600)."""
     if device_private_key is None:
         from ..keystore import Keystore
 
         device_private_key = Keystore(home).device_key()
-    doc = make_enrolment(card, policy, pseudonym, device_private_key)
+    doc = make_enrolment(card, policy, pseudonym, device_private_key, log_origin=log_origin)
     out = Path(out_path)
     write_private(out, (json.dumps(doc, indent=2, sort_keys=True) + "\n").encode())
     return out
@@ -288,7 +302,9 @@ def verify_enrolment(doc: dict, source="<memory>") -> dict:
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
     _check_header(doc, ENROLMENT_FORMAT, ENROLMENT_VERSION, source, "enrolment")
-    _check_fields(doc, ENROLMENT_FIELDS, source, "enrolment")
+    _check_fields(doc, ENROLMENT_FIELDS, source, "enrolment", ENROLMENT_OPTIONAL)
+    if "log_origin" in doc and not _HEX64.match(doc["log_origin"]):
+        raise DataError(f"{source}: [log_origin] expected 64 lower-case hex digits")
     _check_study_id(doc["study_id"], source)
     if not _PSEUDONYM.match(doc["pseudonym"]):
         raise DataError(f"{source}: [pseudonym] expected 4-64 characters from A-Z a-z 0-9 _ -")
@@ -309,7 +325,7 @@ def verify_enrolment(doc: dict, source="<memory>") -> dict:
         raise IntegrityError(f"{source}: [signature] the enrolment is not signed by the device key it names") from None
     return {"study_id": doc["study_id"], "pseudonym": doc["pseudonym"], "device_public_key": pub,
             "device_key_id": doc["device_key_id"], "policy_fingerprint": doc["policy_fingerprint"],
-            "created": doc["created"]}
+            "created": doc["created"], "log_origin": doc.get("log_origin")}
 
 
 def load_enrolment(path) -> dict:

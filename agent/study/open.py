@@ -130,6 +130,42 @@ def open_bundle_bytes(study_dir, data: bytes, study_key, source: str) -> OpenRes
     return _open_many(study_dir, [(source, lambda: data)], study_key, strict=True)[0]
 
 
+def previous_log(reg, pseudonym: str, seq: int) -> dict | None:
+    """The ``log`` section of the latest bundle opened from ``pseudonym`` before ``seq`` (None if none)."""
+    dev = reg.devices.get(pseudonym)
+    earlier = sorted((int(s) for s in (dev.seen if dev else {}) if int(s) < seq), reverse=True)
+    for s in earlier:
+        try:
+            stored = json.loads(reg.received_path(pseudonym, s).read_text("utf-8"))
+        except (OSError, ValueError):
+            continue
+        return stored.get("payload", {}).get("log")
+    return None
+
+
+def check_continuity(reg, pseudonym: str, seq: int, payload: dict, source: str) -> None:
+    """Refuse a bundle whose ledger does not extend the one seen before (docs/ledger.md).
+
+    Compares the bundle's ``log`` section with the last opened bundle of the
+    same device and with the log origin in its enrolment
+    (:func:`agent.ledger.verify_log_continuity`); a reset, a rollback, a
+    rewrite or counts that go down raise :class:`~agent.errors.IntegrityError`.
+    """
+    from ..errors import IntegrityError
+    from ..ledger.verify import verify_log_continuity
+
+    prev = previous_log(reg, pseudonym, seq)
+    current = payload.get("log")
+    dev = reg.devices.get(pseudonym)
+    origin = getattr(dev, "log_origin", None)
+    if current is None and prev is None and origin is None:
+        return  # a device whose bundles never carried a log section (before ledger format 2)
+    problems = verify_log_continuity(prev, current, origin=origin)
+    if problems:
+        raise IntegrityError(f"{source}: the device's ledger does not continue the one seen before: "
+                             + "; ".join(problems))
+
+
 def open_bundles(study_dir, paths, passphrase, *, strict: bool = True) -> list[OpenResult]:
     """Open bundle files for the study in ``study_dir``.
 
@@ -166,6 +202,7 @@ def _open_many(study_dir, items, study_key, *, strict: bool) -> list[OpenResult]
                 try:
                     opened = read_bundle(read(), registry=reg, study_key=study_key,
                                          approved_policies=card.approved_policies, source=source)
+                    check_continuity(reg, opened.pseudonym, opened.header["seq"], opened.payload, source)
                     try:
                         dest = _store(reg, opened, sync=False)
                     except StateError as e:

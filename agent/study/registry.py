@@ -38,6 +38,7 @@ class Device:
     enrolled: str
     seen: dict = field(default_factory=dict)  # str(seq) -> sha256 hex of the bundle
     withdrawn: str | None = None
+    log_origin: str | None = None  # the enrolment's ledger origin (docs/ledger.md)
 
     def public_key(self):
         from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
@@ -47,7 +48,8 @@ class Device:
     def to_json(self) -> dict:
         return {"device_public_key": base64.b64encode(self.public_bytes).decode(),
                 "device_key_id": self.device_key_id, "policy_fingerprint": self.policy_fingerprint,
-                "enrolled": self.enrolled, "seen": dict(self.seen), "withdrawn": self.withdrawn}
+                "enrolled": self.enrolled, "seen": dict(self.seen), "withdrawn": self.withdrawn,
+                "log_origin": self.log_origin}
 
 
 class Registry:
@@ -77,7 +79,7 @@ class Registry:
         for name, d in doc["devices"].items():
             devices[name] = Device(name, base64.b64decode(d["device_public_key"]), d["device_key_id"],
                                    d["policy_fingerprint"], d["enrolled"], dict(d.get("seen", {})),
-                                   d.get("withdrawn"))
+                                   d.get("withdrawn"), d.get("log_origin"))
         return cls(study_dir, doc["study_id"], devices)
 
     def save(self) -> None:
@@ -113,7 +115,8 @@ class Registry:
             raise StateError(f"{source}: device key {enrolment['device_key_id']} is already enrolled as "
                              f"{other.pseudonym!r}")
         dev = Device(name, enrolment["device_public_key"], enrolment["device_key_id"],
-                     enrolment["policy_fingerprint"], enrolment["created"])
+                     enrolment["policy_fingerprint"], enrolment["created"],
+                     log_origin=enrolment.get("log_origin"))
         self.devices[name] = dev
         return dev
 
