@@ -100,3 +100,16 @@ def test_crlf_line_ends_and_a_byte_order_mark_are_accepted(default_policy):
 
 def test_header_without_samples_is_too_short(default_policy):
     assert reason(b"# unit=g\ntime,x,y,z\n", default_policy) == "too_short"
+
+
+def test_exponent_and_crlf_files_read_as_the_plain_file(default_policy):
+    # The general parser (numpy.loadtxt) takes what the plain-decimal reader declines;
+    # both give float()'s values, so the records are identical.
+    plain = accel()
+    crlf = plain.replace(b"\n", b"\r\n")
+    head, body = plain.split(b"\n", 2)[:2], plain.split(b"\n", 2)[2]
+    exp = b"\n".join(head) + b"\n" + body.replace(b",0.01000,", b",1.000e-2,")
+    a = read_accel(NAME, plain, default_policy, now=NOW)
+    for other in (crlf, exp):
+        b = read_accel(NAME, other, default_policy, now=NOW)
+        assert np.array_equal(a.t, b.t) and np.array_equal(a.xyz_g, b.xyz_g)

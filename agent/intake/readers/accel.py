@@ -7,8 +7,10 @@ Format (``docs/inbox-formats.md``)::
     1793800800.000,0.012,-0.031,0.998
     ...
 
-The body is parsed by :func:`numpy.loadtxt`, whose C parser (numpy >= 1.23) was
-the fastest option measured here (see ``docs/features.md``).  Values in m/s²
+The body is read by :func:`~agent.intake.readers.plaincsv.parse_plain`, a
+vectorised reader for plain decimals that returns exactly what :func:`float`
+gives; a body it does not handle (an exponent, a carriage return, ...) goes to
+:func:`numpy.loadtxt`, which also words the errors (see ``docs/features.md``).  Values in m/s²
 are converted to g with standard gravity g_n = 9.80665 m/s² (3rd CGPM, 1901).
 """
 
@@ -22,6 +24,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._common import now_or, plausible_time, reject
+from .plaincsv import parse_plain
 
 STANDARD_GRAVITY = 9.80665  # m/s², 3rd CGPM (1901)
 UNITS = {"g": 1.0, "m/s^2": 1.0 / STANDARD_GRAVITY}
@@ -68,6 +71,25 @@ def parse_unit_line(path, line: bytes) -> tuple[float, float | None]:
     return UNITS[unit], rate
 
 
+def _loadtxt(path, body: bytes) -> np.ndarray:
+    """The general parser: any number form :func:`float` accepts; words the errors."""
+    try:
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
+            arr = np.loadtxt(io.BytesIO(body), delimiter=",", dtype=np.float64, ndmin=2,
+                             comments=None)
+    except ValueError as e:
+        m = re.search(r"row (\d+)", str(e))
+        where = f" at data row {int(m.group(1))}" if m else ""
+        reject(path, "bad_value", f"a row is not four numbers{where}")
+    if arr.shape[0] >= 2:  # fewer is too_short, checked first by the caller
+        if arr.shape[1] != 4:
+            reject(path, "bad_value", f"rows have {arr.shape[1]} columns, expected 4")
+        if not np.isfinite(arr).all():
+            reject(path, "bad_value", "a value is NaN or infinite")
+    return arr
+
+
 def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelRecord:
     """Parse and validate one burst."""
     now = now_or(now)
@@ -80,21 +102,12 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
     header = tuple(h.strip().lower() for h in parts[1].decode("utf-8", "replace").strip().split(","))
     if header != ("time", "x", "y", "z"):
         reject(path, "bad_header", "expected the header 'time,x,y,z'")
-    try:
-        with _warnings.catch_warnings():
-            _warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
-            arr = np.loadtxt(io.BytesIO(parts[2]), delimiter=",", dtype=np.float64, ndmin=2,
-                             comments=None)
-    except ValueError as e:
-        m = re.search(r"row (\d+)", str(e))
-        where = f" at data row {int(m.group(1))}" if m else ""
-        reject(path, "bad_value", f"a row is not four numbers{where}")
+    # Plain decimals are always finite and four to a row; anything else goes to loadtxt.
+    arr = parse_plain(parts[2], 4)
+    if arr is None:
+        arr = _loadtxt(path, parts[2])
     if arr.shape[0] < 2:
         reject(path, "too_short", f"{arr.shape[0]} sample(s); at least two are needed")
-    if arr.shape[1] != 4:
-        reject(path, "bad_value", f"rows have {arr.shape[1]} columns, expected 4")
-    if not np.isfinite(arr).all():
-        reject(path, "bad_value", "a value is NaN or infinite")
     t = arr[:, 0]
     dt = np.diff(t)
     if not (dt > 0).all():
