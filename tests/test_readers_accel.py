@@ -7,7 +7,7 @@ import pytest
 
 from agent.errors import RejectedInput
 from agent.intake import featurise
-from agent.intake.readers.accel import STANDARD_GRAVITY, read_accel
+from agent.intake.readers.accel import PLAIN_MIN_BYTES, STANDARD_GRAVITY, read_accel
 
 T0 = 1793793600.0
 NOW = T0 + 3600.0
@@ -104,8 +104,10 @@ def test_header_without_samples_is_too_short(default_policy):
 
 def test_exponent_and_crlf_files_read_as_the_plain_file(default_policy):
     # The general parser (numpy.loadtxt) takes what the plain-decimal reader declines;
-    # both give float()'s values, so the records are identical.
-    plain = accel()
+    # both give float()'s values, so the records are identical.  3,000 rows: a body
+    # long enough for the plain reader.
+    plain = accel(n=3000)
+    assert len(plain) > PLAIN_MIN_BYTES
     crlf = plain.replace(b"\n", b"\r\n")
     head, body = plain.split(b"\n", 2)[:2], plain.split(b"\n", 2)[2]
     exp = b"\n".join(head) + b"\n" + body.replace(b",0.01000,", b",1.000e-2,")

@@ -271,6 +271,14 @@ def enmo_g(xyz_g: np.ndarray) -> np.ndarray:
     return np.maximum(mag - 1.0, 0.0)
 
 
+@lru_cache(maxsize=16)
+def _welch_window(nperseg: int) -> tuple[np.ndarray, float]:
+    """Periodic Hann window of ``nperseg`` samples and the sum of its squares."""
+    win = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(nperseg) / nperseg)
+    win.flags.writeable = False
+    return win, float(np.sum(win * win))
+
+
 def welch_psd(x: np.ndarray, fs: float, nperseg: int) -> tuple[np.ndarray, np.ndarray]:
     """Welch's PSD estimate along the last axis, as ``scipy.signal.welch`` computes it.
 
@@ -278,13 +286,20 @@ def welch_psd(x: np.ndarray, fs: float, nperseg: int) -> tuple[np.ndarray, np.nd
     scaling, mean over segments; written in numpy because scipy's general
     machinery costs more than the transform for windows of a hundred samples.
     """
-    from numpy.lib.stride_tricks import sliding_window_view
+    from numpy.lib.stride_tricks import as_strided
 
+    x = np.ascontiguousarray(x, dtype=np.float64)
     step = nperseg - nperseg // 2
-    seg = sliding_window_view(x, nperseg, axis=-1)[..., ::step, :]
-    seg = seg - seg.mean(axis=-1, keepdims=True)
-    win = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(nperseg) / nperseg)
-    spec = np.abs(np.fft.rfft(seg * win, axis=-1)) ** 2 / (fs * np.sum(win * win))
+    n = x.shape[-1]
+    n_seg = (n - nperseg) // step + 1
+    # Overlapping segments as a read-only view: (..., n_seg, nperseg).
+    seg = as_strided(x, shape=x.shape[:-1] + (n_seg, nperseg),
+                     strides=x.strides[:-1] + (step * x.strides[-1], x.strides[-1]), writeable=False)
+    win, win_ss = _welch_window(nperseg)
+    seg = (seg - seg.mean(axis=-1, keepdims=True)) * win
+    spec = np.abs(np.fft.rfft(seg, axis=-1))
+    spec *= spec
+    spec /= fs * win_ss
     if nperseg % 2:
         spec[..., 1:] *= 2.0
     else:
@@ -292,18 +307,19 @@ def welch_psd(x: np.ndarray, fs: float, nperseg: int) -> tuple[np.ndarray, np.nd
     return np.fft.rfftfreq(nperseg, 1.0 / fs), spec.mean(axis=-2)
 
 
-def dominant_hz(mag: np.ndarray, rate_hz: float) -> np.ndarray:
+def dominant_hz(mag: np.ndarray, rate_hz: float, sd_g: np.ndarray | None = None) -> np.ndarray:
     """Dominant frequency of each row of ``mag`` (windows x samples) by Welch.
 
     The DC bin is excluded; a window whose magnitude SD is below
-    :data:`STILL_SD_G` has no dominant frequency and gets 0.
+    :data:`STILL_SD_G` has no dominant frequency and gets 0.  ``sd_g`` is each
+    row's SD if the caller has it.
     """
     mag = np.atleast_2d(np.asarray(mag, dtype=np.float64))
     n = mag.shape[-1]
     nperseg = min(n, max(4, int(round(WELCH_SEGMENT_S * rate_hz))))
     f, pxx = welch_psd(mag, rate_hz, nperseg)
     dom = f[1:][np.argmax(pxx[:, 1:], axis=-1)] if len(f) > 1 else np.zeros(mag.shape[0])
-    still = mag.std(axis=-1) < STILL_SD_G
+    still = (mag.std(axis=-1) if sd_g is None else sd_g) < STILL_SD_G
     return np.where(still, 0.0, dom)
 
 
@@ -331,20 +347,25 @@ def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: fl
         mag_mean = mag_sum / counts
         sd = np.sqrt(np.maximum(mag_sq / counts - mag_mean**2, 0.0))
     dom = np.zeros(n_win)
-    # Batch the windows of equal length through one Welch call.
-    by_len: dict[int, list[int]] = {}
-    for w in keep:
-        by_len.setdefault(int(counts[w]), []).append(int(w))
-    for length, ws in by_len.items():
-        first = starts[ws[0]]
-        if len(ws) > 1 and np.all(starts[ws] == first + length * np.arange(len(ws))):
-            block = mag[first:first + length * len(ws)].reshape(len(ws), length)  # contiguous: a view
+    if keep.size:
+        lengths = counts[keep]
+        length = int(lengths[0])
+        if (lengths == length).all() and (starts[keep] == starts[keep[0]] + length * (keep - keep[0])).all():
+            # The usual burst: every kept window full and back to back, one reshape.
+            first = int(starts[keep[0]])
+            block = mag[first:first + length * keep.size].reshape(keep.size, length)
+            dom[keep] = dominant_hz(block, rate_hz, sd_g=sd[keep])
         else:
-            block = np.stack([mag[starts[w]:starts[w] + length] for w in ws])
-        dom[ws] = dominant_hz(block, rate_hz)
+            # Batch the windows of equal length through one Welch call each.
+            by_len: dict[int, list[int]] = {}
+            for w in keep:
+                by_len.setdefault(int(counts[w]), []).append(int(w))
+            for length, ws in by_len.items():
+                block = np.stack([mag[starts[w]:starts[w] + length] for w in ws])
+                dom[ws] = dominant_hz(block, rate_hz, sd_g=sd[ws])
     table = np.column_stack([t[0] + keep * window_s, enmo_mean[keep], sd[keep], dom[keep]]).tolist()
     active = (enmo_mean[keep] >= ACTIVE_ENMO_G).astype(int).tolist()
-    rows = [r + [a] for r, a in zip(table, active)]
+    rows = [r + [a] for r, a in zip(table, active, strict=True)]
     return rows, int(n_win - len(keep))
 
 
@@ -368,7 +389,7 @@ def accel_features(rec, policy) -> ItemResult:
         "t0": float(rec.t[0]),
         "window_s": window_s,
         "windows": rows,
-        "active_fraction": float(np.mean(active)),
+        "active_fraction": sum(active) / len(active),
     }
     return ItemResult(kind="accel", rows={"accel_features": [("", payload)]},
                       warnings=warnings, n_samples=int(len(rec.t)), dropped=dropped,

@@ -31,6 +31,9 @@ UNITS = {"g": 1.0, "m/s^2": 1.0 / STANDARD_GRAVITY}
 # A sensor that includes gravity reads about 1 g at rest; a median magnitude far
 # from that means the declared unit is wrong (m/s² labelled g reads ~9.8).
 MAGNITUDE_RANGE_G = (0.3, 3.0)
+# Bodies at least this long go to the vectorised plain-decimal reader (measured
+# break-even with numpy.loadtxt between 20 and 100 KB; docs/features.md).
+PLAIN_MIN_BYTES = 64 * 1024
 # An interval longer than this many nominal sample periods is a gap.
 GAP_FACTOR = 2.0
 
@@ -102,8 +105,9 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
     header = tuple(h.strip().lower() for h in parts[1].decode("utf-8", "replace").strip().split(","))
     if header != ("time", "x", "y", "z"):
         reject(path, "bad_header", "expected the header 'time,x,y,z'")
-    # Plain decimals are always finite and four to a row; anything else goes to loadtxt.
-    arr = parse_plain(parts[2], 4)
+    # Plain decimals are always finite and four to a row; anything else goes to loadtxt,
+    # as do short bodies, where loadtxt's single C call is the faster (docs/features.md).
+    arr = parse_plain(parts[2], 4) if len(parts[2]) >= PLAIN_MIN_BYTES else None
     if arr is None:
         arr = _loadtxt(path, parts[2])
     if arr.shape[0] < 2:
