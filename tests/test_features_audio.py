@@ -208,3 +208,21 @@ def test_featurise_does_not_import_librosa_or_numba():
             "print('librosa' in sys.modules, 'numba' in sys.modules)\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.split() == ["False", "False"]
+
+
+@pytest.mark.parametrize("n, sr", [(48000, 16000), (48001, 16000), (1000, 8000), (300, 16000), (144000, 48000)])
+def test_one_pass_zero_crossing_mean_equals_the_framed_mean(n, sr):
+    # The framed rate is checked against librosa above; the one-pass mean must equal its mean.
+    rng = np.random.default_rng(n)
+    y = rng.standard_normal(n).astype(np.float32)
+    y[::7] = 0.0                      # exact zeros read as positive
+    y[5::11] = np.float32(-1e-12)     # within 1e-10 of zero: also positive
+    n_fft, hop = F.frame_params(sr)
+    framed = F.zero_crossing_rate(y, n_fft, hop).mean()
+    assert F.zero_crossing_rate_mean(y, n_fft, hop) == pytest.approx(framed, rel=1e-12)
+
+
+def test_a_weighted_level_of_50hz_sine_is_attenuated_as_the_table_says():
+    # IEC 61672-1 table: A(50 Hz) = -30.2 dB (from memory).  Spectrogram bins of
+    # 31 Hz would read this tone 2.4 dB too loud; the snippet's own spectrum does not.
+    assert F.level_dba(tone(50.0), SR) == pytest.approx(-30.2, abs=0.1)

@@ -72,10 +72,17 @@ def a_weighting_db(f_hz) -> np.ndarray:
 
 @lru_cache(maxsize=16)
 def _a_weight_power(n: int, sr: int) -> np.ndarray:
-    """Linear power weights |A(f)|² on the ``rfft`` grid of length ``n``."""
+    """Linear power weights |A(f)|² on the ``rfft`` grid of length ``n``.
+
+    Doubled for the bins that stand for two of a real signal's spectrum (every
+    bin but DC and, for even ``n``, Nyquist), so a plain dot product with the
+    one-sided power spectrum gives the weighted power.
+    """
     f = np.fft.rfftfreq(n, 1.0 / sr)
     w = np.zeros_like(f)
     w[1:] = 10.0 ** (a_weighting_db(f[1:]) / 10.0)
+    w[1:(n + 1) // 2] *= 2.0
+    w.flags.writeable = False
     return w
 
 
@@ -90,14 +97,19 @@ def level_dba(y: np.ndarray, sr: int) -> float:
 
     The weighting is applied to the power spectrum of the whole snippet; by
     Parseval's theorem the weighted power sum is the mean square of the
-    A-filtered signal (zero-phase, circular).
+    A-filtered signal (zero-phase, circular).  The snippet's own spectrum, not
+    the 32 ms frames of the spectrogram: a frame's bins are ``sr / n_fft``
+    (31 Hz) wide, and the window's leakage across bins where the weighting is
+    steep reads a 100 Hz tone 0.4 dB and a 50 Hz tone 2.4 dB too loud
+    (measured; ``docs/features.md``).  One single-precision transform.
     """
-    y = np.asarray(y, dtype=np.float64)
+    import scipy.fft
+
+    y = np.asarray(y, dtype=np.float32)
     n = len(y)
-    X = np.fft.rfft(y)
-    p = np.abs(X) ** 2
-    # One-sided spectrum: every bin except DC (and Nyquist for even n) counts twice.
-    p[1:(n + 1) // 2] *= 2.0
+    p = np.abs(scipy.fft.rfft(y))
+    p *= p
+    # An elementwise product and a sum rather than np.dot: no multi-threaded BLAS call.
     ms = float(np.sum(p * _a_weight_power(n, sr))) / (n * n)
     return 10.0 * float(np.log10(max(2.0 * ms, 1e-20)))
 
@@ -164,12 +176,33 @@ def _mel_basis(sr: int, n_fft: int):
     return scipy.sparse.csr_matrix(mel_filterbank(sr, n_fft))
 
 
-@lru_cache(maxsize=8)
-def _dct_matrix(n_mels: int, n_mfcc: int) -> np.ndarray:
+def _mfcc(log_mel: np.ndarray) -> np.ndarray:
+    """The first :data:`N_MFCC` coefficients of the orthonormal DCT-II over the mel axis.
+
+    As librosa.feature.mfcc computes them; scipy's transform rather than a
+    matrix product, because products of this size wake a multi-threaded BLAS
+    whose threads cost more than the arithmetic on a busy 2-core machine
+    (measured; ``docs/features.md``).  The other products in this module are
+    elementwise for the same reason.
+    """
     import scipy.fft
 
-    # DCT-II, orthonormal, as librosa.feature.mfcc uses.
-    return scipy.fft.dct(np.eye(n_mels), type=2, norm="ortho", axis=0)[:n_mfcc]
+    return scipy.fft.dct(log_mel, type=2, norm="ortho", axis=0)[:N_MFCC]
+
+
+def _stft_frames(y: np.ndarray, n_fft: int, hop_length: int) -> np.ndarray:
+    """Magnitude spectrogram as ``(frames, 1 + n_fft // 2)`` float32 (frames in rows)."""
+    from numpy.lib.stride_tricks import as_strided
+
+    pad = n_fft // 2
+    yp = np.zeros(len(y) + 2 * pad, dtype=np.float32)
+    yp[pad:pad + len(y)] = y
+    n_frames = 1 + (len(yp) - n_fft) // hop_length
+    frames = as_strided(yp, shape=(n_frames, n_fft), strides=(hop_length * 4, 4), writeable=False)
+    import scipy.fft
+
+    # scipy's float32 transform (complex64 out) is about twice numpy's speed here.
+    return np.abs(scipy.fft.rfft(frames * _hann(n_fft), axis=-1))
 
 
 def stft_magnitude(y: np.ndarray, n_fft: int, hop_length: int) -> np.ndarray:
@@ -179,21 +212,19 @@ def stft_magnitude(y: np.ndarray, n_fft: int, hop_length: int) -> np.ndarray:
     side (librosa's default ``pad_mode="constant"``).  Written in numpy so the
     hot path needs no numba compilation.
     """
-    from numpy.lib.stride_tricks import sliding_window_view
-
-    pad = n_fft // 2
-    yp = np.pad(np.asarray(y, dtype=np.float32), (pad, pad))
-    frames = sliding_window_view(yp, n_fft)[::hop_length]
-    import scipy.fft
-
-    # scipy's float32 transform (complex64 out) is about twice numpy's speed here.
-    return np.abs(scipy.fft.rfft(frames * _hann(n_fft), axis=-1)).T
+    return _stft_frames(np.asarray(y, dtype=np.float32), n_fft, hop_length).T
 
 
 @lru_cache(maxsize=8)
 def _hann(n: int) -> np.ndarray:
     # Periodic ("fftbins") Hann, as scipy.signal.get_window("hann", n) gives.
     return (0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(n) / n)).astype(np.float32)
+
+
+def _signs(y: np.ndarray) -> np.ndarray:
+    """Sign bits, with samples within 1e-10 of zero read as positive zero (librosa's threshold)."""
+    y = np.asarray(y, dtype=np.float32)
+    return np.signbit(y) & (np.abs(y) > 1e-10)
 
 
 def zero_crossing_rate(y: np.ndarray, frame_length: int, hop_length: int) -> np.ndarray:
@@ -203,47 +234,86 @@ def zero_crossing_rate(y: np.ndarray, frame_length: int, hop_length: int) -> np.
     as positive zero; a crossing is a change of sign bit between neighbours.
     """
     pad = frame_length // 2
-    x = np.pad(np.asarray(y, dtype=np.float32), (pad, pad), mode="edge")
-    x = np.where(np.abs(x) <= 1e-10, np.float32(0.0), x)
-    s = np.signbit(x)
+    s = _signs(np.pad(np.asarray(y, dtype=np.float32), (pad, pad), mode="edge"))
     change = (s[1:] != s[:-1]).astype(np.int32)
     # change[i] compares x[i] and x[i+1]; a frame starting at j holds j..j+L-1.
     csum = np.concatenate([[0], np.cumsum(change)])
-    starts = np.arange(0, len(x) - frame_length + 1, hop_length)
+    starts = np.arange(0, len(s) - frame_length + 1, hop_length)
     counts = csum[starts + frame_length - 1] - csum[starts]
     return counts / frame_length
 
 
+@lru_cache(maxsize=8)
+def _zcr_weights(n: int, frame_length: int, hop_length: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """Where a neighbour pair of an ``n``-sample signal counts other than twice, and the frame count.
+
+    In :func:`zero_crossing_rate`'s padded signal the pair ``(i, i + 1)`` is in
+    frame ``j`` when ``j hop <= i <= j hop + frame_length - 2``; the edge padding
+    repeats the end samples, so pairs in the padding never cross.  With frames
+    overlapping by half, most pairs are in two frames; returns the pairs in one
+    frame and the pairs in none (by index into the signal's ``n - 1`` pairs).
+    """
+    pad = frame_length // 2
+    n_frames = (n + 2 * pad - frame_length) // hop_length + 1
+    i = np.arange(pad, pad + n - 1)
+    j_max = np.minimum(i // hop_length, n_frames - 1)
+    j_min = np.maximum(-((frame_length - 2 - i) // hop_length), 0)
+    w = np.maximum(j_max - j_min + 1, 0)
+    if w.max(initial=0) > 2:
+        raise ValueError(f"frames overlap by more than half (frame_length={frame_length}, hop={hop_length})")
+    once, never = np.flatnonzero(w == 1), np.flatnonzero(w == 0)
+    once.flags.writeable = never.flags.writeable = False
+    return once, never, n_frames
+
+
+def zero_crossing_rate_mean(y: np.ndarray, frame_length: int, hop_length: int) -> float:
+    """``zero_crossing_rate(y, frame_length, hop_length).mean()`` in one pass, without framing.
+
+    Each crossing is counted once, times the number of frames that hold it
+    (:func:`_zcr_weights`); integer counts, so the result equals the framed
+    mean.  Requires ``hop_length >= frame_length / 2``, as :func:`frame_params` gives.
+    """
+    s = _signs(y)
+    once, never, n_frames = _zcr_weights(len(s), frame_length, hop_length)
+    change = s[1:] != s[:-1]
+    crossings = (2 * np.count_nonzero(change) - np.count_nonzero(change[once])
+                 - 2 * np.count_nonzero(change[never]))
+    return crossings / (frame_length * n_frames)
+
+
 def audio_vector(y: np.ndarray, sr: int) -> np.ndarray:
-    """The feature vector of a mono signal, in :data:`AUDIO_FEATURE_NAMES` order."""
+    """The feature vector of a mono signal, in :data:`AUDIO_FEATURE_NAMES` order.
+
+    One magnitude spectrogram serves every spectral feature (frames in rows, so
+    the per-frame sums run along contiguous memory); the zero-crossing rate is
+    one pass over the samples with the spectrogram's framing.
+    """
     y = np.asarray(y, dtype=np.float32)
     n_fft, hop = frame_params(sr)
-    mag = stft_magnitude(y, n_fft, hop)
+    mag = _stft_frames(y, n_fft, hop)          # (frames, bins), float32
     power = mag * mag
     freqs = np.fft.rfftfreq(n_fft, 1.0 / sr)
 
-    mel = _mel_basis(sr, n_fft) @ power
+    mel = _mel_basis(sr, n_fft) @ power.T      # (mels, frames)
     # power_to_db(ref=1, amin=1e-10, top_db=80), as librosa.feature.mfcc does.
     log_mel = 10.0 * np.log10(np.maximum(mel.astype(np.float64), 1e-10))
     log_mel = np.maximum(log_mel, log_mel.max() - 80.0)
-    mfcc = _dct_matrix(N_MELS, N_MFCC) @ log_mel
-    bands = log_mel.reshape(N_MEL_BANDS, N_MELS // N_MEL_BANDS, -1).mean(axis=(1, 2))
+    mfcc = _mfcc(log_mel)
+    bands = log_mel.reshape(N_MEL_BANDS, -1).mean(axis=1)
 
-    mag = mag.astype(np.float64)
-    power = power.astype(np.float64)
-    mag_sum = mag.sum(axis=0)
-    centroid = (freqs @ mag) / np.maximum(mag_sum, 1e-10)
+    mag_sum = mag.sum(axis=1, dtype=np.float64)
+    centroid = (mag * freqs.astype(np.float32)).sum(axis=1, dtype=np.float64) / np.maximum(mag_sum, 1e-10)
     # Flatness on the power spectrum with amin = 1e-10 (librosa's definition).
-    pw = np.maximum(power, 1e-10)
-    flatness = np.exp(np.mean(np.log(pw), axis=0)) / np.mean(pw, axis=0)
-    cum = np.cumsum(mag, axis=0)
-    idx = np.argmax(cum >= ROLL_PERCENT * cum[-1][None, :], axis=0)
+    pw = np.maximum(power, np.float32(1e-10))
+    flatness = np.exp(np.log(pw).mean(axis=1, dtype=np.float64)) / pw.mean(axis=1, dtype=np.float64)
+    cum = np.cumsum(mag, axis=1)   # single precision, as librosa's spectral_rolloff sums
+    idx = np.argmax(cum >= ROLL_PERCENT * cum[:, -1:], axis=1)
     rolloff = freqs[idx]
-    zcr = zero_crossing_rate(y, n_fft, hop)
+    zcr = zero_crossing_rate_mean(y, n_fft, hop)
 
     return np.concatenate([
         mfcc.mean(axis=1), mfcc.std(axis=1), bands,
-        [centroid.mean(), flatness.mean(), rolloff.mean(), zcr.mean()],
+        [centroid.mean(), flatness.mean(), rolloff.mean(), zcr],
     ])
 
 
