@@ -34,7 +34,7 @@ from collections import Counter
 import numpy as np
 from scipy.optimize import minimize, minimize_scalar
 
-from .choice import log_probabilities, uniform_log_probabilities
+from .choice import log_probabilities, ratio_scores, uniform_log_probabilities
 from .design import PLACE, ModelGraph, TrialDesign
 from .likelihood import (LOG_TAU_BOUNDS, ActivationCache, ModelSpec, model_log_probabilities,
                          negative_log_likelihood, nll_and_grad)
@@ -153,7 +153,8 @@ class Centrality(_ScoreBaseline):
     def scores(self, design: TrialDesign) -> np.ndarray:
         if self._last[0] is not design:  # identity, not id(): ids are reused after collection
             cache = ActivationCache(self.graph, design)
-            self._last = (design, cache.activations(np.ones(len(self.graph.type_pairs)), 0.0))
+            act = cache.activations(np.ones(len(self.graph.type_pairs)), 0.0)
+            self._last = (design, ratio_scores(act, design.opt_mask)[0])
         return self._last[1]
 
 

@@ -16,6 +16,33 @@ import numpy as np
 
 # activations closer than this count as a tie for the argmax metrics
 TIE_ATOL = 1e-12
+# ratio scores: an option with no activation keeps this share of the options' mean
+RATIO_EPS = 1e-3
+_TINY = 1e-300  # all options at zero activation: equal scores (uniform choice)
+
+
+def ratio_scores(act, mask):
+    """Scale-free option scores ``s_k = ln(a_k + eps * mean_j a_j)`` over the trial's options.
+
+    Adding a constant to every score of a trial does not change a softmax, so
+    ``s`` depends on the activation only through the *ratios* ``a_k / mean_j
+    a_j``: multiplying the activation vector by any factor (the norm of the
+    eigenvector, ``sqrt(n)``, the size of W) leaves the choice probabilities
+    unchanged, and the Luce rule becomes ``p_k ∝ (a_k + eps mean)^(1/tau)``.
+    Negative components (rounding) are clipped at 0.
+
+    Returns
+    -------
+    score, den, mean : ndarrays
+        ``score`` (0 outside ``mask``), ``den = a_k + eps * mean`` and the
+        options' mean activation (for the gradient).
+    """
+    mask = np.asarray(mask, dtype=bool)
+    a = np.where(mask, np.maximum(np.asarray(act, dtype=np.float64), 0.0), 0.0)
+    m = np.maximum(mask.sum(axis=1, keepdims=True), 1)
+    mean = a.sum(axis=1, keepdims=True) / m
+    den = a + RATIO_EPS * mean + _TINY
+    return np.where(mask, np.log(den), 0.0), den, mean
 
 
 def log_probabilities(scores, mask, tau: float) -> np.ndarray:

@@ -95,7 +95,7 @@ class ModelGraph:
         for attr in ("capped", "kinds", "index"):
             if not hasattr(g, attr):
                 raise TypeError(f"graph of type {type(g).__name__}: expected an attribute {attr!r}")
-        return cls(g.capped, list(g.kinds), g.index, getattr(g, "counts", None))
+        return cls(getattr(g, "weights", g.capped), list(g.kinds), g.index, getattr(g, "counts", None))
 
     @classmethod
     def from_networkx(cls, G, kind_attr: str = "kind", default_kind: str = "node",
@@ -152,15 +152,34 @@ class ModelGraph:
         return sp.csr_matrix((np.concatenate([vals, vals]), (r, c)), shape=(self.n, self.n))
 
     def cue(self, hour, weekday, week) -> np.ndarray:
-        """Unit-norm cue over the present time nodes; the zero vector if none is present."""
+        """Unit-norm cue over the present time nodes, weighted by kind (:func:`cue_kind_weights`)."""
         x = np.zeros(self.n)
+        w = cue_kind_weights(self)
         for i in cue_nodes(self.index, hour, weekday, week):
-            x[i] = 1.0
-        k = np.count_nonzero(x)
-        return x / np.sqrt(k) if k else x
+            x[i] = w[self.kinds[i]]
+        nrm = np.linalg.norm(x)
+        return x / nrm if nrm > 0 else x
 
     def nodes_of_kind(self, kind: str) -> np.ndarray:
         return np.flatnonzero(self.kinds == kind)
+
+
+def cue_kind_weights(graph: ModelGraph) -> dict[str, float]:
+    """Weight of each cue kind: ``ln(number of nodes of that kind)``.
+
+    The argument (fixed, not fitted): a cue node should count by how much it
+    narrows down *when* the probed hour was.  Naming one of ``n`` equally
+    likely values carries ``ln n`` nats, so an hour (24 values) weighs ln 24 =
+    3.18, a weekday ln 7 = 1.95 and a study week ln W (0 in a one-week study,
+    0.69 in a two-week one): the week node, linked to every hour of its week,
+    no longer counts as much as the hour.  The cue vector is normalised to unit
+    length afterwards.
+    """
+    out = {}
+    for kind in TIME_KINDS:
+        k = int(np.count_nonzero(graph.kinds == kind))
+        out[kind] = float(np.log(k)) if k > 1 else 0.0
+    return out
 
 
 def as_model_graph(g) -> ModelGraph:
@@ -186,7 +205,7 @@ class TrialDesign:
     ----------
     cue_idx, cue_w : (T, 3) int, float
         Cue node indices (padding: ``n``, a virtual all-zero row) and weights
-        (``1/sqrt(k)`` over the ``k`` present cue nodes, 0 for padding).
+        (:func:`cue_kind_weights` of the present cue nodes, unit norm; 0 for padding).
     opt_idx : (T, m) int
         Node index of every option place (``n`` when the place is not in the
         graph, or for padding); ``opt_mask`` marks real options.
@@ -215,6 +234,7 @@ class TrialDesign:
         self.weekdays = np.zeros(t_count, dtype=np.int64)
         self.options: list[list[str]] = []
         self.missing_options = 0
+        kind_w = cue_kind_weights(graph)
         for t, tr in enumerate(trials):
             tid = tr.get("trial_id", t)
             opts = [str(o) for o in (tr.get("options") or [])]
@@ -229,9 +249,11 @@ class TrialDesign:
             self.hours[t], self.weekdays[t] = hour, weekday
             self.dates[t] = str(tr.get("date", ""))
             cue = cue_nodes(graph.index, hour, weekday, tr.get("week"))
-            if cue:
+            cw = np.array([kind_w[graph.kinds[i]] for i in cue])
+            nrm = float(np.linalg.norm(cw)) if len(cw) else 0.0
+            if nrm > 0:
                 self.cue_idx[t, : len(cue)] = cue
-                self.cue_w[t, : len(cue)] = 1.0 / np.sqrt(len(cue))
+                self.cue_w[t, : len(cue)] = cw / nrm
             for j, o in enumerate(opts):
                 i = graph.index.get((PLACE, o))
                 if i is None:

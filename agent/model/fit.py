@@ -17,7 +17,7 @@ from scipy.sparse.csgraph import connected_components
 from ..errors import DataError
 from .baselines import default_predictors
 from .crossval import chance_metrics, cross_validate
-from .design import TrialDesign, as_model_graph
+from .design import TrialDesign, as_model_graph, cue_kind_weights
 
 DEFAULT_FOLDS = 5
 DEFAULT_RESTARTS = 4
@@ -130,7 +130,10 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
                               rng=np.random.default_rng([seed, 12345]))
     theta, beta, tau = full.unpacked()
     params = {"theta": full.spec.theta_dict(theta), "beta": beta, "tau": tau,
-              "reference_pair": _ref_name(full.spec), "activation": "sqrt(n) * unit-norm eigenvector"}
+              "theta_groups": full.spec.group_dict(full.p), "weights": full.spec.weights,
+              "reference_pair": _ref_name(full.spec),
+              "activation": "unit-norm eigenvector; scores ln(a_k + eps mean a) over the options",
+              "cue_weights": dict(cue_kind_weights(mg))}
     t_full = time.perf_counter() - t0
 
     cv_all = cross_validate(preds, design, k, seed)
@@ -172,7 +175,7 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
 
 
 def _ref_name(spec):
-    return None if spec.reference is None else "|".join(spec.graph.type_pairs[spec.reference])
+    return spec.reference
 
 
 def _fmt_prop(m) -> str:

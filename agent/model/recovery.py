@@ -24,8 +24,8 @@ from .choice import simulate_choices
 from .design import TrialDesign, as_model_graph
 from .likelihood import ActivationCache, ModelSpec, model_log_probabilities
 
-RANGES = {"theta": (np.log(0.3), np.log(3.0)), "beta": (np.log(0.5), np.log(8.0)),
-          "tau": (np.log(0.05), np.log(0.5))}
+RANGES = {"theta": (np.log(0.3), np.log(3.0)), "beta": (np.log(0.1), np.log(3.0)),
+          "tau": (np.log(0.2), np.log(2.0))}
 IDENTIFIABLE_R = 0.9
 
 
