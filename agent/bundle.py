@@ -33,7 +33,8 @@ from pathlib import Path
 
 from .errors import DataError, IntegrityError, StateError
 from .fsutil import file_lock
-from .policy import canonical_json
+from .canonical import dumps as canonical_json
+from .payload import PAYLOAD_SCHEMA
 
 MAGIC = b"\x89LETHE\r\n"
 FORMAT_VERSION = 1
@@ -57,7 +58,7 @@ class FormatVersionError(DataError):
 
 # ----------------------------------------------------------------------------- header
 def make_header(*, suite: str, study_id: str, recipient: str, device_key_id: str, seq: int,
-                created: str, payload_schema: int = 1) -> dict:
+                created: str, payload_schema: int = PAYLOAD_SCHEMA) -> dict:
     return {"format": HEADER_FORMAT, "version": FORMAT_VERSION, "suite": suite, "study_id": study_id,
             "recipient": recipient, "device_key_id": device_key_id, "seq": int(seq), "created": created,
             "payload_schema": int(payload_schema)}
@@ -88,9 +89,9 @@ def check_header(h, source: str) -> dict:
         raise DataError(f"{source}: header [device_key_id] expected 16 hex digits")
     if not (isinstance(h["created"], str) and re.fullmatch(r"\d{4}-(\d{2}-\d{2}|W\d{2})", h["created"])):
         raise DataError(f"{source}: header [created] expected YYYY-MM-DD or YYYY-Www, got {h['created']!r}")
-    if h["payload_schema"] != 1:
+    if h["payload_schema"] != PAYLOAD_SCHEMA:
         raise DataError(f"{source}: header [payload_schema] {h['payload_schema']!r} is not supported "
-                        f"(this lethe reads payload schema 1)")
+                        f"(this lethe reads payload schema {PAYLOAD_SCHEMA})")
     if not isinstance(h["study_id"], str):
         raise DataError(f"{source}: header [study_id] expected a string")
     return h

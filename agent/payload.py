@@ -20,7 +20,7 @@ from typing import Any, Callable, Iterable, Mapping, Sequence
 
 from .errors import DataError
 
-PAYLOAD_SCHEMA = 1
+PAYLOAD_SCHEMA = 2
 
 #: Kinds whose labels are relabelled per device before export.
 RELABELLED = ("place", "sound", "motion")

@@ -24,6 +24,7 @@ from types import MappingProxyType
 from typing import Any, Callable, Mapping
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
+from . import canonical
 from .errors import PolicyError
 
 SCHEMA_VERSION = 1
@@ -264,7 +265,7 @@ class Policy:
 
     # -- identity -------------------------------------------------------
     def canonical_bytes(self) -> bytes:
-        return canonical_json(self._resolved)
+        return canonical.dumps(self._resolved)
 
     @property
     def fingerprint(self) -> str:
@@ -282,10 +283,8 @@ class Policy:
         return f"Policy({self.policy.name!r}, version={self.policy.version!r}, fp={self.fingerprint[:12]})"
 
 
-def canonical_json(obj) -> bytes:
-    """Deterministic JSON: sorted keys, no whitespace, UTF-8, floats as repr."""
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False,
-                      allow_nan=False).encode("utf-8")
+# Kept for branches written before agent/canonical.py; new code imports agent.canonical.dumps.
+canonical_json = canonical.dumps
 
 
 def _type_ok(value, kind) -> bool:

@@ -23,7 +23,7 @@ def test_export_preview_json_is_the_payload(tmp_path, capsys):
     home, _ = make_world(tmp_path)
     assert main(["--home", str(home.root), "export", "--preview", "--json"]) == 0
     payload = json.loads(capsys.readouterr().out)
-    assert payload["schema"] == 1 and payload["study_id"] == "harbour-days-2027"
+    assert payload["schema"] == 2 and payload["study_id"] == "harbour-days-2027"
 
 
 def test_export_needs_confirmation_without_a_terminal(tmp_path, capsys, monkeypatch):

@@ -11,7 +11,8 @@ import pytest
 from agent.errors import DataError
 from agent.payload import (Relabeller, coarse_date, edge_list_from, payload_from_parts, preview,
                            project_fit, validate_payload)
-from agent.policy import bundled_policy_path, canonical_json, load_policy, policy_from_dict
+from agent.canonical import dumps as canonical_json
+from agent.policy import bundled_policy_path, load_policy, policy_from_dict
 
 from _bundle_fixtures import FIT, LEDGER, NOW, QUIZ, episodes, make_payload
 

@@ -15,7 +15,8 @@ from cryptography.hazmat.primitives.asymmetric.x25519 import X25519PrivateKey
 
 from agent.bundle import MAGIC, FormatVersionError
 from agent.errors import EXIT_DATA, EXIT_INTEGRITY, EXIT_STATE, DataError, IntegrityError, StateError
-from agent.policy import bundled_policy_path, canonical_json, load_policy
+from agent.canonical import dumps as canonical_json
+from agent.policy import bundled_policy_path, load_policy
 from agent.study.open import open_bundles
 from agent.study.registry import Registry
 
@@ -172,8 +173,8 @@ def test_unknown_payload_field(study):
 
 def test_future_payload_schema(study):
     payload = make_payload()
-    payload["schema"] = 2
-    refuse(study, study.seal(payload=payload), DataError, "payload schema 2 is not supported")
+    payload["schema"] = 3
+    refuse(study, study.seal(payload=payload), DataError, "payload schema 3 is not supported")
 
 
 def test_unknown_header_field(study):

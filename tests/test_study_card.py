@@ -90,11 +90,22 @@ def test_card_unknown_field_names_file_and_field(study, tmp_path):
 def test_card_future_version(study, tmp_path):
     _, path = study
     doc = json.loads(path.read_text())
-    doc["version"] = 2
-    bad = tmp_path / "v2.json"
+    doc["version"] = 3
+    bad = tmp_path / "v3.json"
     bad.write_text(json.dumps(doc))
-    with pytest.raises(DataError, match="version 2 is not supported"):
+    with pytest.raises(DataError, match="version 3 is not supported"):
         load_card(bad)
+
+
+def test_card_version_1_is_refused(study, tmp_path):
+    # Version 1 cards carry policy fingerprints over the pre-RFC 8785 form (docs/bundle-format.md).
+    _, path = study
+    doc = json.loads(path.read_text())
+    doc["version"] = 1
+    old = tmp_path / "v1.json"
+    old.write_text(json.dumps(doc))
+    with pytest.raises(DataError, match="version 1 is not supported"):
+        load_card(old)
 
 
 def test_card_fingerprint_mismatch(study, tmp_path):

@@ -15,7 +15,7 @@ import pytest
 
 from agent.bundle import MAGIC, MAX_BUNDLE_BYTES, bundle_name, make_header
 from agent.errors import EXIT_DATA, EXIT_STATE, DataError
-from agent.policy import canonical_json
+from agent.canonical import dumps as canonical_json
 from agent.study.bounded import MAX_SAFE_INT, loads_bounded, nesting_depth
 from agent.study.card import device_key_id
 from agent.study.keys import suite_of

@@ -27,13 +27,13 @@ from pathlib import Path
 from ..errors import DataError, IntegrityError, StateError
 from ..fsutil import write_private
 from ..identity import device_key_id
-from ..policy import canonical_json
+from ..canonical import dumps as canonical_json
 from .keys import PUBLIC_KEY_BYTES, SUITES, _check_study_id, b64d, b64e, key_fingerprint, load_public
 
 CARD_FORMAT = "lethe-study-card"
-CARD_VERSION = 1
+CARD_VERSION = 2
 ENROLMENT_FORMAT = "lethe-enrolment"
-ENROLMENT_VERSION = 1
+ENROLMENT_VERSION = 2
 
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
 _HEX16 = re.compile(r"^[0-9a-f]{16}$")

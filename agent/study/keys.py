@@ -30,7 +30,7 @@ from pathlib import Path
 
 from ..errors import DataError, IntegrityError, StateError, UsageError
 from ..fsutil import DIR_MODE, write_private
-from ..policy import canonical_json
+from ..canonical import dumps as canonical_json
 
 KEY_FORMAT = "lethe-study-key"
 PUB_FORMAT = "lethe-study-public-key"

@@ -22,7 +22,7 @@ from pathlib import Path
 
 from ..errors import DataError, IntegrityError, StateError
 from ..fsutil import write_private
-from ..policy import canonical_json
+from ..canonical import dumps as canonical_json
 from ..identity import device_key_id
 from .card import _PSEUDONYM, _check_fields, _check_header, _read_json
 from .keys import _check_study_id, b64d, b64e
