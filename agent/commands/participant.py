@@ -209,9 +209,16 @@ def _resume(args) -> int:
 
 
 def _withdraw(args) -> int:
-    from ..participant.withdraw import withdraw
+    from ..participant.withdraw import withdrawal_pending, withdraw
 
-    home = home_from(args).require()
+    home = home_from(args)
+    if withdrawal_pending(home):
+        # Interrupted after the certificate was signed: the participant already confirmed; finish the job.
+        res = withdraw(home)
+        emit(args, res, f"Finished an interrupted withdrawal. Send the certificate to the study team: "
+                        f"{res['certificate']}")
+        return 0
+    home.require()
     cfg = home.read_config()
     if not args.yes:
         if not sys.stdin.isatty():
