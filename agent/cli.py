@@ -65,6 +65,14 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("lethe: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader went away (``lethe places --json | head``): stop quietly, as
+        # the Python documentation's note on SIGPIPE advises; 141 = 128 + SIGPIPE.
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
     return int(rc or 0)
 
 

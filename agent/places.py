@@ -5,7 +5,7 @@ participant knows what they are.  Names, merges ("P4 and P7 are the same
 café") and exclusions ("do not ask me about P9") are stored encrypted in vault
 table ``place_names`` and never leave the device.  The listing describes each
 place only by when it is usually visited (hours and weekdays), never by
-coordinates.
+coordinates, and by its typical sound kind and activity.
 """
 
 from __future__ import annotations
@@ -15,6 +15,9 @@ from collections import Counter, defaultdict
 from .errors import DataError
 
 WEEKDAY_ABBR = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
+WEEKDAY_WORDS = ("Mondays", "Tuesdays", "Wednesdays", "Thursdays", "Fridays", "Saturdays", "Sundays")
+MOTION_WORDS = {"sedentary": "mostly sitting or still", "light": "light activity, such as walking about",
+                "mvpa": "brisk activity, such as fast walking or sport"}
 MAX_NAME = 80
 
 
@@ -119,16 +122,143 @@ def _update(vault, pid: str, **changes) -> None:
     vault.upsert("place_names", pid, rec)
 
 
+def hour_ranges(h: Counter, share_of_peak: float = 0.5) -> list[tuple[int, int]]:
+    """Clock-hour ranges ``[(start, end), ...]`` (end exclusive) of the hours with at least
+    ``share_of_peak`` of the busiest hour's visits; a range through midnight is one range."""
+    if not h:
+        return []
+    peak = max(h.values())
+    picked = sorted(k for k, n in h.items() if n >= share_of_peak * peak)
+    ranges: list[list[int]] = []
+    for k in picked:
+        if ranges and ranges[-1][1] == k:
+            ranges[-1][1] = k + 1
+        else:
+            ranges.append([k, k + 1])
+    if len(ranges) > 1 and ranges[0][0] == 0 and ranges[-1][1] == 24:
+        first = ranges.pop(0)
+        ranges[-1][1] = first[1]  # 19 to 24 and 0 to 9 -> 19 to 9, overnight
+    return [(a, b) for a, b in ranges]
+
+
+def hours_words(h: Counter) -> str:
+    """``"from 09:00 to 17:00"``, ``"from 19:00 to 09:00"`` (overnight), or ``"-"``."""
+    rs = hour_ranges(h)
+    if not rs:
+        return "-"
+    if rs == [(0, 24)]:
+        return "at any hour"
+    return " and ".join(f"from {a:02d}:00 to {b % 24:02d}:00" for a, b in rs)
+
+
+def days_words(d: Counter, share: float = 0.1) -> str:
+    total = sum(d.values())
+    if not total:
+        return "-"
+    days = [i for i in range(7) if d[i] >= share * total]
+    if days == list(range(5)):
+        return "weekdays"
+    if days == [5, 6]:
+        return "weekends"
+    if days == list(range(7)):
+        return "every day of the week"
+    return ", ".join(WEEKDAY_WORDS[i] for i in days)
+
+
+def describe_places(vault) -> list[dict]:
+    """Each place with its name and what helps recognise it without a map.
+
+    Adds to :func:`list_places` rows: ``label`` (the name, or "unnamed place
+    N"), ``days`` and ``hours`` in words, the typical ``sound`` (a sound kind,
+    named after the other places where it is usual) and ``motion`` (activity in
+    words), and ``visits`` (hours seen).
+    """
+    rows = list_places(vault)
+    hours: dict[str, Counter] = defaultdict(Counter)
+    days: dict[str, Counter] = defaultdict(Counter)
+    sounds: dict[str, Counter] = defaultdict(Counter)
+    motions: dict[str, Counter] = defaultdict(Counter)
+    for _, e in vault.items("episodes"):
+        pid = e.get("place")
+        if not pid:
+            continue
+        hours[pid][e["hour"]] += 1
+        days[pid][e["weekday"]] += 1
+        if e.get("sound"):
+            sounds[pid][e["sound"]] += 1
+        if e.get("motion"):
+            motions[pid][e["motion"]] += 1
+    names = {r["id"]: r["name"] for r in rows}
+    # a sound kind is described by the places where it is usual, in the participant's own names
+    usual_at: dict[str, list[str]] = defaultdict(list)
+    for pid, c in sounds.items():
+        if c:
+            usual_at[c.most_common(1)[0][0]].append(pid)
+    letters = {sid: chr(ord("A") + i) if i < 26 else sid
+               for i, sid in enumerate(sorted({s for c in sounds.values() for s in c}, key=_num))}
+    out = []
+    for r in rows:
+        pid = r["id"]
+        sc, mc = sounds.get(pid, Counter()), motions.get(pid, Counter())
+        if sc:
+            sid, n = sc.most_common(1)[0]
+            others = [names[p] or _unnamed(p) for p in usual_at[sid] if p != pid]
+            sound = f"sound kind {letters[sid]} ({100 * n / sum(sc.values()):.0f}% of your hours here)"
+            if others:
+                sound += "; the same kind is usual at " + ", ".join(others[:3])
+        else:
+            sound = "not known"
+        if mc:
+            mid, n = mc.most_common(1)[0]
+            motion = f"{MOTION_WORDS.get(mid, 'activity kind ' + str(mid))} ({100 * n / sum(mc.values()):.0f}%)"
+        else:
+            motion = "not known"
+        out.append({**r, "label": r["name"] or _unnamed(pid), "days": days_words(days.get(pid, Counter())),
+                    "hours": hours_words(hours.get(pid, Counter())), "sound": sound, "motion": motion,
+                    "visits": r["hours_seen"]})
+    return out
+
+
+def _num(s: str):
+    digits = "".join(c for c in s if c.isdigit())
+    return (int(digits) if digits else 0, s)
+
+
+def _unnamed(pid: str) -> str:
+    return f"unnamed place {pid.lstrip('P')}"
+
+
+def option_label(pid: str, rows: dict[str, dict]) -> str:
+    """How a memory-test option is shown: the participant's name, else when they are usually there."""
+    r = rows.get(pid)
+    if r is None:
+        return _unnamed(pid)
+    if r.get("name"):
+        return r["name"]
+    return f"{_unnamed(pid)}: usually {r['days']}, {r['hours']}"
+
+
 def places_text(rows: list[dict]) -> str:
+    """The participant's places in words, one block per place (nothing cut short).
+
+    ``rows`` come from :func:`describe_places` (or :func:`list_places`, which
+    then shows the usual hours and days in short form).
+    """
     if not rows:
         return "No places found yet. They appear after a few days of data."
-    lines = [f"{'id':5s} {'name':24s} {'usual hours':18s} {'days':28s} note"]
+    names = {r["id"]: r.get("label") or r.get("name") or _unnamed(r["id"]) for r in rows}
+    lines = []
     for r in rows:
-        note = []
+        lines.append(f"{r['id']:4s} {names[r['id']]}")
+        if "days" in r:
+            lines.append(f"     usually {r['days']}, {r['hours']} ({r['visits']} hours here)")
+            lines.append(f"     sound: {r['sound']}; activity: {r['motion']}")
+        else:
+            lines.append(f"     usually {r['usual_days']} at {r['usual_hours']} ({r['hours_seen']} hours here)")
         if r["merged_into"]:
-            note.append(f"same as {r['merged_into']}")
+            lines.append(f"     the same place as {names.get(r['merged_into'], r['merged_into'])}")
         if r["exclude"]:
-            note.append("not used in tests")
-        lines.append(f"{r['id']:5s} {(r['name'] or '(unnamed)')[:24]:24s} {r['usual_hours'][:18]:18s} "
-                     f"{r['usual_days'][:28]:28s} {'; '.join(note)}")
+            lines.append("     not asked about in the memory test")
+    lines.append("")
+    lines.append("Name one with: lethe places --name ID \"your name\" (names never leave this laptop).")
     return "\n".join(lines)

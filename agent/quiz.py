@@ -60,11 +60,6 @@ def excluded(pid, places: dict) -> bool:
     return bool(places.get(pid, {}).get("exclude"))
 
 
-def place_label(pid, places: dict) -> str:
-    name = places.get(pid, {}).get("name")
-    return name if name else f"place {pid}"
-
-
 # --------------------------------------------------------------------------- cues
 def cue_text(episode: dict) -> str:
     """The probed hour in words, in the participant's local time."""
@@ -290,12 +285,13 @@ def score(vault, policy) -> dict:
 
 
 def score_text(s: dict) -> str:
+    """The score in plain words (the test statistic stays in ``--json``)."""
     if not s["answered"]:
         return "No answers yet."
     line = (f"You placed {s['correct']} of {s['answered']} hours correctly "
             f"({100 * s['accuracy']:.0f}%); guessing would get about {100 * s['chance']:.0f}%.")
-    if s["p_value"] is not None:
-        line += f" (one-sided binomial p = {s['p_value']:.3g})"
+    if s["p_value"] is not None and s["p_value"] < 0.05:
+        line += " That is clearly better than guessing."
     return line
 
 
@@ -304,29 +300,32 @@ def run_session(vault, policy, *, read=input, write=print, clock=time.monotonic,
                 now: float | None = None) -> dict:
     """Administer pending trials in a plain terminal.
 
-    Each trial shows its cue and numbered options; the participant types a
-    number, ``s`` to skip or ``q`` to stop and resume later.  Returns the session
+    Each trial shows its cue and numbered options (the participant's own place
+    names; an unnamed place is described by when it is usually visited); the
+    participant types a number, ``s`` when not sure or ``q`` to stop and
+    resume later.  The counter ``[k/n]`` counts this session's questions.  Returns the session
     counts and the overall score.
     """
-    places = place_view(vault)
+    from .places import describe_places, option_label
+
     todo = pending_trials(vault)
     if not todo:
         todo = issue_trials(vault, policy, now=now)
-    total_trials = len([1 for _ in vault.items("trials")])
-    done_before = total_trials - len(todo)
+    described = {r["id"]: r for r in describe_places(vault)}
     answered = skipped = 0
     if not todo:
         write("No hours are ready to ask about yet (the test asks about hours "
               f"{policy.quiz.min_age_days:g} to {policy.quiz.max_age_days:g} days ago).")
         return {"answered": 0, "skipped": 0, "stopped": False, "score": score(vault, policy)}
-    write(f"Memory test: {len(todo)} question(s). Type the number of your answer, "
-          "'s' to skip, 'q' to stop and continue later.")
+    n = len(todo)
+    write(f"Memory test: {n} question{'s' if n != 1 else ''} to go. Type the number of your answer, "
+          "'s' if you are not sure, 'q' to stop and carry on later.")
     stopped = False
     for k, trial in enumerate(todo):
         write("")
-        write(f"[{done_before + k + 1}/{total_trials}] Where were you on {trial['cue_text']}?")
+        write(f"[{k + 1}/{n}] Where were you on {trial['cue_text']}?")
         for i, pid in enumerate(trial["options"], 1):
-            write(f"  {i}. {place_label(pid, places)}")
+            write(f"  {i}. {option_label(pid, described)}")
         t0 = clock()
         while True:
             try:
@@ -344,7 +343,7 @@ def run_session(vault, policy, *, read=input, write=print, clock=time.monotonic,
                 record_answer(vault, trial, trial["options"][int(reply) - 1], clock() - t0, "terminal")
                 answered += 1
                 break
-            write(f"Please type a number from 1 to {len(trial['options'])}, 's' or 'q'.")
+            write(f"Please type a number from 1 to {len(trial['options'])}, 's' (not sure) or 'q' (stop).")
         if stopped:
             write("Stopped; run 'lethe quiz' again to continue where you left off.")
             break

@@ -75,13 +75,15 @@ def _spawn_export(home):
                          encoding="utf-8", timeout=120)
 
 
-def test_export_asks_in_a_terminal_and_sends_on_yes(tmp_path):
+def test_export_asks_in_a_terminal_and_prepares_on_yes(tmp_path):
     home, _ = make_world(tmp_path)
     child = _spawn_export(home)
     child.expect(r"This export would send the study")
-    child.expect(r"Send this to the study\? \[y/N\]")
+    child.expect(r"Seal this for the study and put it in the outbox\? lethe does not send it itself")
+    child.expect(r"\[y/N\]")
     child.sendline("y")
-    child.expect("Sealed and signed pX7QmN2a-000001.lethe")
+    child.expect("Prepared pX7QmN2a-000001.lethe")
+    child.expect("It has not been sent")
     child.expect(pexpect_eof())
     assert [p.name for p in home.outbox.iterdir()] == ["pX7QmN2a-000001.lethe"]
 
@@ -89,9 +91,9 @@ def test_export_asks_in_a_terminal_and_sends_on_yes(tmp_path):
 def test_export_in_a_terminal_declined(tmp_path):
     home, _ = make_world(tmp_path)
     child = _spawn_export(home)
-    child.expect(r"Send this to the study\? \[y/N\]")
+    child.expect(r"\[y/N\]")
     child.sendline("")
-    child.expect("Nothing was exported.")
+    child.expect("Declined: nothing was prepared")
     child.expect(pexpect_eof())
     assert list(home.outbox.iterdir()) == []
 

@@ -252,7 +252,7 @@ def test_5_export_declined_then_confirmed(world, browser):
     click(browser, "button[value='confirm']")
     text = by(browser, "main").text
     assert "has not been sent yet" in text and "prepared (in the outbox, not sent yet)" in text
-    assert [p.name for p in outbox.iterdir()] == ["bundle-000001.lethe"]
+    assert [p.name.endswith("000001.lethe") for p in outbox.iterdir()] == [True]
     shot(browser, "leaves")
 
 

@@ -70,7 +70,7 @@ def test_status_of_a_fresh_home(enrolled):
     assert st["pseudonym"] == enrolled["pseudonym"]
     assert st["agent"]["paused"] is False
     assert st["intake"]["inbox"]["files"] == 0
-    assert "inbox: empty" in status_text(st)
+    assert "The inbox is empty" in status_text(st)
 
 
 def test_pause_and_resume_are_ledgered(enrolled):

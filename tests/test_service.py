@@ -66,3 +66,49 @@ def test_no_service_manager_is_a_clear_error(home, tmp_path, monkeypatch):
 
     with pytest.raises(StateError, match="--dry-run"):
         service.install(home, manager="none")
+
+
+def test_systemd_unit_has_no_ordering_cycle_and_no_dangling_documentation(home):
+    # systemd.unit(5): a unit WantedBy=default.target that is also After=default.target
+    # orders itself after the target that pulls it in (an ordering cycle).
+    p = service.plan(home, manager="systemd", command=["/opt/lethe/bin/lethe"])
+    assert "WantedBy=default.target" in p.content
+    assert "After=default.target" not in p.content
+    assert "Documentation=" not in p.content
+
+
+def test_the_unit_runs_the_console_script_beside_this_interpreter(home):
+    import sys
+    from pathlib import Path
+
+    cmd = service.lethe_command()
+    beside = Path(sys.executable).absolute().parent / "lethe"
+    if beside.exists():
+        assert cmd == [str(beside)]
+    else:  # not an installed environment: this very interpreter runs the package
+        assert cmd[-2:] == ["-m", "agent.cli"] or Path(cmd[0]).name == "lethe"
+
+
+def test_launchd_uses_bootstrap_and_bootout(home):
+    import os
+
+    p = service.plan(home, manager="launchd", command=["/x/lethe"])
+    assert p.enable == [["launchctl", "bootstrap", f"gui/{os.getuid()}", str(p.path)]]
+    assert p.disable == [["launchctl", "bootout", f"gui/{os.getuid()}/{service.LAUNCHD_LABEL}"]]
+
+
+@pytest.mark.skipif(shutil.which("systemctl") is None, reason="systemctl is not installed")
+def test_failed_install_explains_and_leaves_nothing(home, tmp_path, monkeypatch):
+    # The real systemctl, with no user bus reachable (an empty runtime directory and no
+    # session bus address): it fails as it does over ssh or in a container.
+    from agent.errors import StateError
+
+    monkeypatch.setenv("XDG_CONFIG_HOME", str(tmp_path / "cfg"))
+    monkeypatch.setenv("XDG_RUNTIME_DIR", str(tmp_path / "run"))
+    (tmp_path / "run").mkdir()
+    monkeypatch.delenv("DBUS_SESSION_BUS_ADDRESS", raising=False)
+    with pytest.raises(StateError) as e:
+        service.install(home, manager="systemd")
+    msg = str(e.value)
+    assert "no systemd user manager" in msg and "lethe run" in msg and "Nothing was installed" in msg
+    assert not (tmp_path / "cfg" / "systemd").exists()

@@ -8,7 +8,8 @@ from ._common import add_json, emit, home_from
 def register(sub) -> None:
     p = sub.add_parser("export", help="preview, seal and sign the next bundle for the study")
     p.add_argument("--preview", action="store_true",
-                   help="only show what the bundle would hold (plain words, or the payload with --json); writes nothing")
+                   help="only show what the bundle would hold (plain words, or the payload with --json); "
+                        "writes nothing")
     p.add_argument("--yes", action="store_true",
                    help="confirm without asking (when the policy asks for confirmation of each export)")
     add_json(p)
@@ -23,7 +24,8 @@ def _ask(text: str) -> bool:
     if not sys.stdin.isatty():
         raise UsageError("the policy asks you to confirm each export (export.confirm_each); "
                          "run in a terminal, or pass --yes after checking 'lethe export --preview'")
-    sys.stdout.write(text + "\n\nSend this to the study? [y/N] ")
+    sys.stdout.write(text + "\n\nSeal this for the study and put it in the outbox? lethe does not send it "
+                            "itself; you copy it to the study as agreed. [y/N] ")
     sys.stdout.flush()
     return sys.stdin.readline().strip().lower() in ("y", "yes")
 
@@ -43,9 +45,9 @@ def _export(args) -> int:
     confirm = (lambda text: True) if args.yes else _ask
     path = export_bundle(home, policy, confirm=confirm)
     if path is None:
-        emit(args, {"sent": False}, "Nothing was exported.")
+        emit(args, {"prepared": False, "sent": False}, "Declined: nothing was prepared, nothing leaves.")
         return 0
-    emit(args, {"sent": True, "bundle": str(path), "bytes": path.stat().st_size},
-         f"Sealed and signed {path.name} ({path.stat().st_size} bytes) in {path.parent}; "
-         f"copy it to the study as agreed.")
+    emit(args, {"prepared": True, "sent": False, "bundle": str(path), "bytes": path.stat().st_size},
+         f"Prepared {path.name} ({path.stat().st_size} bytes), sealed for the study and signed, in {path.parent}. "
+         f"It has not been sent: copy it to the study as agreed.")
     return 0

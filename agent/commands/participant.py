@@ -14,7 +14,8 @@ def register(sub) -> None:
     p.add_argument("--policy", required=True, metavar="FILE", help="the study policy TOML the card approves")
     p.add_argument("--consent", metavar="STUDY_ID",
                    help="agree non-interactively by giving the study id (otherwise you are asked to type it)")
-    p.add_argument("--timezone", metavar="ZONE", help="your IANA time zone (default: the policy's)")
+    p.add_argument("--timezone", metavar="ZONE",
+                   help="your IANA time zone, e.g. Europe/Lisbon (default: this laptop's zone)")
     p.add_argument("--enrolment-out", metavar="FILE", help="where to write the enrolment file for the researcher")
     add_json(p)
     p.set_defaults(func=_init)
@@ -76,7 +77,7 @@ def register(sub) -> None:
 
 # ----------------------------------------------------------------------------- handlers
 def _init(args) -> int:
-    from ..participant.enrol import consent_text, enrol
+    from ..participant.enrol import consent_text, enrol, laptop_timezone
     from ..policy import load_policy
     from ..study.card import check_policy_approved, load_card
 
@@ -93,11 +94,16 @@ def _init(args) -> int:
         print(consent_text(card, policy))
         print()
         consent = input(f"To agree, type the study id ({card.study_id}): ")
+    zone = args.timezone or laptop_timezone()
     res = enrol(getattr(args, "home", None), args.study, args.policy, consent=consent,
-                timezone=args.timezone, enrolment_out=args.enrolment_out)
-    emit(args, res, f"Enrolled in {res['study_id']} as {res['pseudonym']} (device key {res['device_key_id']}).\n"
-                    f"Home: {res['home']}\nSend this enrolment file to the study team: {res['enrolment']}\n"
-                    f"Next: 'lethe service install' to run in the background, 'lethe status' to check.")
+                timezone=zone, enrolment_out=args.enrolment_out)
+    how = "this laptop's zone" if not args.timezone and zone else ("your choice" if args.timezone else
+                                                                   "the study's default; --timezone to change")
+    emit(args, res, f"You have joined {res['study_id']} as {res['pseudonym']}.\n"
+                    f"Times are shown in {res['timezone']} ({how}).\n"
+                    f"lethe keeps its files in {res['home']}\n"
+                    f"Send this file to the study team: {res['enrolment']}\n"
+                    f"Next: 'lethe service install' runs lethe in the background; 'lethe open' shows your page.")
     return 0
 
 
@@ -125,7 +131,7 @@ def _places(args) -> int:
             places.set_excluded(v, args.exclude, True)
         elif args.include:
             places.set_excluded(v, args.include, False)
-        rows = places.list_places(v)
+        rows = places.describe_places(v)
     emit(args, rows, places.places_text(rows))
     return 0
 

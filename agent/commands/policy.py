@@ -19,6 +19,16 @@ def register(sub) -> None:
     add_json(check)
     check.set_defaults(func=_check)
 
+    ls = ps.add_parser("list", help="the policies shipped with lethe (to start a study from)")
+    add_json(ls)
+    ls.set_defaults(func=_list)
+
+    wr = ps.add_parser("write", help="write a shipped policy to FILE, to read or edit")
+    wr.add_argument("name", help="a name from 'lethe policy list', e.g. default")
+    wr.add_argument("out", metavar="FILE", help="where to write it")
+    wr.add_argument("--force", action="store_true", help="overwrite FILE if it exists")
+    wr.set_defaults(func=_write)
+
     fp = ps.add_parser("fingerprint", help="print the policy's SHA-256 fingerprint")
     fp.add_argument("file")
     fp.set_defaults(func=_fingerprint)
@@ -56,4 +66,21 @@ def _fingerprint(args) -> int:
     from ..policy import load_policy
 
     print(load_policy(args.file).fingerprint)
+    return 0
+
+
+def _list(args) -> int:
+    from ..policy_files import describe, shipped
+
+    rows = [{"name": n, "describes": describe(p)} for n, p in shipped().items()]
+    emit(args, rows, "\n".join(f"{r['name']:22s} {r['describes']}" for r in rows)
+         + "\n\n'lethe policy write NAME FILE' writes one out to read or edit.")
+    return 0
+
+
+def _write(args) -> int:
+    from ..policy_files import write_shipped
+
+    out = write_shipped(args.name, args.out, force=args.force)
+    print(f"Wrote {out}.")
     return 0

@@ -35,6 +35,42 @@ def new_pseudonym(nbytes: int = 10) -> str:
     return f"p-{chars[:4]}-{chars[4:8]}-{chars[8:]}"
 
 
+def laptop_timezone() -> str | None:
+    """The IANA name of this laptop's time zone, or None when it cannot be told.
+
+    In order: ``TZ`` when it names an IANA zone; the target of ``/etc/localtime``
+    (a link into a zoneinfo tree on Linux and macOS); ``/etc/timezone`` (Debian).
+    """
+    import os
+    from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+    def valid(name: str | None) -> str | None:
+        name = (name or "").strip().lstrip(":")
+        if not name or name.startswith("/"):
+            return None
+        try:
+            ZoneInfo(name)
+        except (ZoneInfoNotFoundError, ValueError):
+            return None
+        return name
+
+    tz = os.environ.get("TZ")
+    if tz is not None:
+        return valid(tz)  # TZ set to something we cannot name: do not guess from the system
+    try:
+        target = os.path.realpath("/etc/localtime")
+        if "zoneinfo/" in target:
+            name = valid(target.split("zoneinfo/", 1)[1])
+            if name:
+                return name
+    except OSError:
+        pass
+    try:
+        return valid(Path("/etc/timezone").read_text("utf-8").split()[0])
+    except (OSError, IndexError):
+        return None
+
+
 def consent_text(card, policy) -> str:
     return (getattr(card, "consent_text", None) or policy.study.consent_text).strip()
 

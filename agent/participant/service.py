@@ -42,11 +42,21 @@ class ServicePlan:
 
 
 def lethe_command() -> list[str]:
-    """How to start this very installation: the console script, else ``python -m agent.cli``."""
+    """How to start this very installation.
+
+    The ``lethe`` console script installed beside the running interpreter (the
+    same virtual environment or prefix, wherever the package lives); else the
+    first ``lethe`` on ``PATH``; else ``python -m agent.cli`` with this
+    interpreter.  Paths are absolute but symlinks are kept: resolving a venv's
+    ``python`` would leave the venv.
+    """
+    here = Path(sys.executable).absolute().parent / "lethe"
+    if here.is_file() and os.access(here, os.X_OK):
+        return [str(here)]
     exe = shutil.which("lethe")
     if exe:
-        return [str(Path(exe).resolve())]
-    return [sys.executable, "-m", "agent.cli"]
+        return [str(Path(exe).absolute())]
+    return [str(Path(sys.executable).absolute()), "-m", "agent.cli"]
 
 
 def detect_manager() -> str:
@@ -61,8 +71,6 @@ def systemd_unit(home_root: Path, command: list[str]) -> str:
     exec_start = " ".join(shlex.quote(c) for c in command + ["--home", str(home_root), "run"])
     return f"""[Unit]
 Description=lethe on-device study agent (destroys raw drops, keeps coarse codes)
-Documentation=file://{home_root}/README-lethe.txt
-After=default.target
 
 [Service]
 Type=simple
@@ -135,9 +143,10 @@ def plan(home, manager: str | None = None, command: list[str] | None = None) -> 
     root = Path(home.root)
     if manager == "launchd":
         path = Path.home() / "Library" / "LaunchAgents" / f"{LAUNCHD_LABEL}.plist"
+        domain = f"gui/{os.getuid()}"
         return ServicePlan("launchd", path, launchd_plist(root, command),
-                           enable=[["launchctl", "load", "-w", str(path)]],
-                           disable=[["launchctl", "unload", "-w", str(path)]])
+                           enable=[["launchctl", "bootstrap", domain, str(path)]],
+                           disable=[["launchctl", "bootout", f"{domain}/{LAUNCHD_LABEL}"]])
     config = Path(os.environ.get("XDG_CONFIG_HOME", Path.home() / ".config"))
     path = config / "systemd" / "user" / UNIT_NAME
     p = ServicePlan("systemd" if manager == "systemd" else "none", path, systemd_unit(root, command),
@@ -154,11 +163,39 @@ def install(home, *, dry_run: bool = False, manager: str | None = None) -> Servi
     if p.manager == "none":
         raise StateError("no supported service manager (systemd user session or launchd) found; "
                          "use 'lethe service install --dry-run' to see the unit and run it yourself")
+    existed = p.path.exists()
+    made = [d for d in p.path.parents if not d.exists()]  # folders we are about to create, deepest first
     p.path.parent.mkdir(parents=True, exist_ok=True)
     p.path.write_text(p.content, encoding="utf-8")
-    for cmd in p.enable:
-        _run(cmd)
+    try:
+        for cmd in p.enable:
+            _run(cmd)
+    except StateError as e:
+        # Leave nothing behind: the file we wrote (and the folder, if we made it).
+        if not existed:
+            p.path.unlink(missing_ok=True)
+            for d in made:
+                try:
+                    d.rmdir()
+                except OSError:
+                    break
+        raise StateError(f"{_explain(p.manager, str(e))} Nothing was installed.") from None
     return p
+
+
+def _explain(manager: str, error: str) -> str:
+    """The failure in words, with what to do instead."""
+    if manager == "systemd" and ("Failed to connect to bus" in error or "No medium found" in error):
+        return ("The background service could not be installed: this session has no systemd user manager "
+                "to talk to (common over ssh, in containers, or under sudo). Log in to the desktop and run "
+                "'lethe service install' there, or ask your administrator to run "
+                "'loginctl enable-linger YOUR-USER-NAME'; meanwhile 'lethe run' in a terminal does the same "
+                f"work. (systemctl said: {error.split(': ', 1)[-1]})")
+    if manager == "launchd":
+        return ("The background service could not be loaded by launchd. Run 'lethe service install' from "
+                f"your own logged-in account, not over ssh or sudo; meanwhile 'lethe run' does the same work. "
+                f"({error})")
+    return f"The background service could not be installed: {error}."
 
 
 def remove(home, *, dry_run: bool = False, manager: str | None = None) -> ServicePlan:

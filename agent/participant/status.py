@@ -41,6 +41,10 @@ def collect_status(home, now: float | None = None, passphrase=None) -> dict:
         "intake": intake_counts(home, policy, now=now),
         "disk_bytes": home.disk_usage(),
     }
+    if (home.state / "prompts.json").exists():
+        from .prompts import PromptBook
+
+        st["prompts"] = PromptBook(home, policy).counts(now)
     if home.vault_path.exists():
         from ..vault import Vault
 
@@ -89,44 +93,55 @@ def _n(d: dict, kind: str) -> int:
     return int(d.get(kind, 0))
 
 
+KIND_WORDS = {"audio": "sound snippets", "gps": "location files", "accel": "movement files",
+              "mood": "mood answers", "unknown": "unrecognised files"}
+
+
 def status_text(st: dict) -> str:
+    """The status in plain words for the participant (``--json`` keeps every figure)."""
+    from zoneinfo import ZoneInfo
+
+    zone = ZoneInfo(st.get("timezone") or "UTC")
     a = st["agent"]
-    state = "paused" if a["paused"] else ("running" if a["running"] else "not running")
-    if a["paused"] and a.get("paused_until"):
-        until = _dt.datetime.fromtimestamp(a["paused_until"], _dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
-        state += f" until {until}"
+    state = "paused" if a["paused"] else ("running" if a["running"] else "not running in the background")
+    if a["paused"]:
+        state += (" until " + _dt.datetime.fromtimestamp(a["paused_until"], zone).strftime("%a %d %b %H:%M")
+                  if a.get("paused_until") else " until you resume")
     p = st["policy"]
     lines = [
-        f"lethe for study {st['study_id']} as {st['pseudonym']} (enrolled {st['enrolled']}, {st['timezone']})",
-        f"agent: {state}",
-        f"policy: {p['name']} {p['version']}, fingerprint {p['fingerprint'][:16]}...",
+        f"Study {st['study_id']}, you are {st['pseudonym']} (joined {st['enrolled']}; times in {st['timezone']}).",
+        f"lethe is {state}.",
+        f"Rules in force: {p['name']} {p['version']}.",
         "",
-        "raw items        received  featurised  rejected  destroyed",
+        "Since you joined      arrived  destroyed  could not be read",
     ]
     ic = st["intake"]
     for kind in ("audio", "gps", "accel", "mood", "unknown"):
-        row = [ic.get(k, {}).get(kind, 0) for k in ("received", "featurised", "rejected", "destroyed")]
+        row = [ic.get(k, {}).get(kind, 0) for k in ("received", "destroyed", "rejected")]
         if any(row) or kind != "unknown":
-            lines.append(f"  {kind:12s} {row[0]:10d} {row[1]:11d} {row[2]:9d} {row[3]:10d}")
+            lines.append(f"  {KIND_WORDS[kind]:19s} {row[0]:7d} {row[1]:10d} {row[2]:18d}")
     inbox = ic["inbox"]
     if inbox["files"]:
-        lines.append(f"inbox: {inbox['files']} raw file(s) waiting; the oldest is {inbox['oldest_age_s']:.1f} s old "
-                     f"(limit {inbox['limit_s']:g} s)")
+        lines.append(f"Waiting in the inbox: {inbox['files']} file(s); the oldest for {inbox['oldest_age_s']:.0f} s "
+                     f"(none may stay longer than {inbox['limit_s']:g} s).")
     else:
-        lines.append(f"inbox: empty (raw files may exist at most {inbox['limit_s']:g} s)")
-    if ic.get("reasons"):
-        lines.append("rejections: " + ", ".join(f"{r} {n}" for r, n in sorted(ic["reasons"].items())))
+        lines.append(f"The inbox is empty (no file may stay there longer than {inbox['limit_s']:g} s).")
+    pr = st.get("prompts")
+    if pr:
+        lines.append(f"Mood questions: {pr['asked']} asked, {pr['answered']} answered, {pr['missed']} missed"
+                     + (f", {pr['open']} waiting for you" if pr["open"] else "") + ".")
     v = st.get("vault")
     if v:
         q = v["quiz"]
-        lines += [
-            "",
-            f"places: {v['places']} ({v['named_places']} with your names); episodes: {v['episodes']} hours",
-            f"memory test: {q['issued']} issued, {q['answered']} answered, {q['skipped']} skipped, "
-            f"{q['pending']} waiting",
-        ]
         e = v["exports"]
-        lines.append(f"exports: {e['count']} sent, last {e['last'] or 'never'}, next due {e.get('next_due') or '-'}"
-                     + (f", privacy budget spent {e['epsilon_spent']:g}" if e["epsilon_spent"] else ""))
-    lines.append(f"disk used by the home: {st['disk_bytes'] / 1e6:.1f} MB")
+        due = e.get("next_due")
+        lines += [
+            f"Places: {v['places']} found, {v['named_places']} named by you.",
+            f"Memory test: {q['answered']} answered, {q['skipped']} not sure, {q['pending']} waiting.",
+            f"Summaries for the study: {e['count']} prepared (in the outbox; lethe does not send them), "
+            f"last {e['last'] or 'never'}; next " + ("can be prepared now" if due == "now" else f"from {due or '-'}")
+            + ".",
+        ]
+    lines.append(f"Space used on this laptop: {st['disk_bytes'] / 1e6:.1f} MB.")
+    lines.append("'lethe open' shows all this on your own page.")
     return "\n".join(lines)

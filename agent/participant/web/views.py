@@ -12,15 +12,11 @@ import json
 import os
 import secrets
 import time
-from collections import Counter, defaultdict
 
 from ...home import Home
 
 KIND_WORDS = {"audio": "sound snippets", "gps": "location files", "accel": "movement files",
               "mood": "mood answers", "unknown": "unrecognised files"}
-MOTION_WORDS = {"sedentary": "mostly sitting or still", "light": "light activity, such as walking about",
-                "mvpa": "brisk activity, such as fast walking or sport"}
-WEEKDAY_WORDS = ("Mondays", "Tuesdays", "Wednesdays", "Thursdays", "Fridays", "Saturdays", "Sundays")
 DURATIONS = (("30m", "30 minutes", 1800.0), ("2h", "2 hours", 7200.0), ("8h", "8 hours", 28800.0),
              ("1d", "a day", 86400.0), ("3d", "3 days", 3 * 86400.0), ("open", "until I resume", None))
 
@@ -87,116 +83,17 @@ def today(home: Home, now: float | None = None) -> dict:
 
 
 # ----------------------------------------------------------------------------- places
-def hour_ranges(h: Counter, share_of_peak: float = 0.5) -> list[tuple[int, int]]:
-    """Clock-hour ranges ``[(start, end), ...]`` (end exclusive) of the hours with at least
-    ``share_of_peak`` of the busiest hour's visits; a range through midnight is one range."""
-    if not h:
-        return []
-    peak = max(h.values())
-    picked = sorted(k for k, n in h.items() if n >= share_of_peak * peak)
-    ranges: list[list[int]] = []
-    for k in picked:
-        if ranges and ranges[-1][1] == k:
-            ranges[-1][1] = k + 1
-        else:
-            ranges.append([k, k + 1])
-    if len(ranges) > 1 and ranges[0][0] == 0 and ranges[-1][1] == 24:
-        first = ranges.pop(0)
-        ranges[-1][1] = first[1]  # 19 to 24 and 0 to 9 -> 19 to 9, overnight
-    return [(a, b) for a, b in ranges]
-
-
-def hours_words(h: Counter) -> str:
-    """``"from 09:00 to 17:00"``, ``"from 19:00 to 09:00"`` (overnight), or ``"-"``."""
-    rs = hour_ranges(h)
-    if not rs:
-        return "-"
-    if rs == [(0, 24)]:
-        return "at any hour"
-    return " and ".join(f"from {a:02d}:00 to {b % 24:02d}:00" for a, b in rs)
-
-
-def days_words(d: Counter, share: float = 0.1) -> str:
-    total = sum(d.values())
-    if not total:
-        return "-"
-    days = [i for i in range(7) if d[i] >= share * total]
-    if days == list(range(5)):
-        return "weekdays"
-    if days == [5, 6]:
-        return "weekends"
-    if days == list(range(7)):
-        return "every day of the week"
-    return ", ".join(WEEKDAY_WORDS[i] for i in days)
-
-
 def places(vault) -> list[dict]:
     """Each place with its name and what helps recognise it without a map."""
-    from ...places import list_places
+    from ...places import describe_places
 
-    rows = list_places(vault)
-    hours: dict[str, Counter] = defaultdict(Counter)
-    days: dict[str, Counter] = defaultdict(Counter)
-    sounds: dict[str, Counter] = defaultdict(Counter)
-    motions: dict[str, Counter] = defaultdict(Counter)
-    for _, e in vault.items("episodes"):
-        pid = e.get("place")
-        if not pid:
-            continue
-        hours[pid][e["hour"]] += 1
-        days[pid][e["weekday"]] += 1
-        if e.get("sound"):
-            sounds[pid][e["sound"]] += 1
-        if e.get("motion"):
-            motions[pid][e["motion"]] += 1
-    names = {r["id"]: r["name"] for r in rows}
-    # a sound kind is described by the places where it is usual, in the participant's own names
-    usual_at: dict[str, list[str]] = defaultdict(list)
-    for pid, c in sounds.items():
-        if c:
-            usual_at[c.most_common(1)[0][0]].append(pid)
-    letters = {sid: chr(ord("A") + i) if i < 26 else sid
-               for i, sid in enumerate(sorted({s for c in sounds.values() for s in c}, key=_num))}
-    out = []
-    for r in rows:
-        pid = r["id"]
-        sc, mc = sounds.get(pid, Counter()), motions.get(pid, Counter())
-        if sc:
-            sid, n = sc.most_common(1)[0]
-            others = [names[p] or _unnamed(p) for p in usual_at[sid] if p != pid]
-            sound = f"sound kind {letters[sid]} ({100 * n / sum(sc.values()):.0f}% of your hours here)"
-            if others:
-                sound += "; the same kind is usual at " + ", ".join(others[:3])
-        else:
-            sound = "not known"
-        if mc:
-            mid, n = mc.most_common(1)[0]
-            motion = f"{MOTION_WORDS.get(mid, 'activity kind ' + str(mid))} ({100 * n / sum(mc.values()):.0f}%)"
-        else:
-            motion = "not known"
-        out.append({**r, "label": r["name"] or _unnamed(pid), "days": days_words(days.get(pid, Counter())),
-                    "hours": hours_words(hours.get(pid, Counter())), "sound": sound, "motion": motion,
-                    "visits": r["hours_seen"]})
-    return out
-
-
-def _num(s: str):
-    digits = "".join(c for c in s if c.isdigit())
-    return (int(digits) if digits else 0, s)
-
-
-def _unnamed(pid: str) -> str:
-    return f"unnamed place {pid.lstrip('P')}"
+    return describe_places(vault)
 
 
 def option_label(pid: str, rows: dict[str, dict]) -> str:
-    """How a memory-test option is shown: the participant's name, else when they are usually there."""
-    r = rows.get(pid)
-    if r is None:
-        return _unnamed(pid)
-    if r.get("name"):
-        return r["name"]
-    return f"{_unnamed(pid)}: usually {r['days']}, {r['hours']}"
+    from ...places import option_label as label
+
+    return label(pid, rows)
 
 
 # ----------------------------------------------------------------------------- mood answers
