@@ -32,8 +32,6 @@ from datetime import datetime
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
-import numpy as np
-
 from .errors import DataError, StateError
 
 WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
@@ -132,6 +130,8 @@ def generate_trials(episodes, policy, *, now: float, places: dict | None = None,
                 if e["_place"] in visits and e["key"] not in used
                 and lo <= e["utc"] + 3600 <= hi]
     eligible.sort(key=lambda e: e["utc"])
+    import numpy as np  # here, not at module level: `lethe status` imports this module for score()
+
     rng = np.random.default_rng([q.seed, batch])
     take = min(n, len(eligible))
     chosen = sorted(rng.choice(len(eligible), size=take, replace=False)) if take else []

@@ -20,12 +20,14 @@ Am. Stat. 50, 361-365 (definition 7).
 from __future__ import annotations
 
 import math
+import numbers
 from statistics import NormalDist
-from typing import NamedTuple
-
-import numpy as np
+from typing import TYPE_CHECKING, NamedTuple
 
 from .errors import DataError
+
+if TYPE_CHECKING:  # numpy is imported where it is used: `lethe status` needs only math here
+    import numpy as np
 
 __all__ = ["BootstrapInterval", "binomial_lower_tail", "binomial_upper_tail", "bootstrap_mean_by_day",
            "exposure_summary", "paired_bootstrap_by_day", "quantile_type7", "wilson_interval"]
@@ -63,8 +65,7 @@ def wilson_interval(successes, n, *, level: float = 0.95) -> tuple[float, float]
         Bounds within [0, 1].
     """
     n = _count("n", n)
-    if isinstance(successes, bool) or not (isinstance(successes, (int, float, np.integer, np.floating))
-                                           and 0.0 <= float(successes)):
+    if isinstance(successes, bool) or not (isinstance(successes, numbers.Real) and float(successes) >= 0.0):
         raise ValueError(f"successes must be a non-negative number, got {successes!r}")
     k = float(successes)
     if k > n:
@@ -131,6 +132,8 @@ class BootstrapInterval(NamedTuple):
 
 
 def _by_day(values, days) -> tuple[np.ndarray, np.ndarray]:
+    import numpy as np
+
     values = np.asarray(values, dtype=np.float64)
     days = np.asarray(days, dtype=str)
     if values.ndim != 1 or days.shape != values.shape:
@@ -176,6 +179,8 @@ def bootstrap_mean_by_day(values, days, *, n_boot: int = 2000, level: float = 0.
     if g == 0:
         nan = float("nan")
         return BootstrapInterval(nan, nan, nan)
+    import numpy as np
+
     rng = np.random.default_rng(rng)
     draws = rng.integers(0, g, size=(n_boot, g))
     stat = sums[draws].sum(axis=1) / counts[draws].sum(axis=1)
@@ -193,6 +198,8 @@ def paired_bootstrap_by_day(a, b, days, *, n_boot: int = 2000, level: float = 0.
     together, so the interval reflects the difference, not each score's spread.
     Parameters as in :func:`bootstrap_mean_by_day`.
     """
+    import numpy as np
+
     a = np.asarray(a, dtype=np.float64)
     b = np.asarray(b, dtype=np.float64)
     if a.shape != b.shape:
