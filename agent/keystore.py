@@ -166,6 +166,53 @@ def _keyring():
     return keyring
 
 
+KEY_STORAGES = ("keyring", "passphrase", "plain")
+STORAGE_ENV = "LETHE_KEY_STORAGE"        # an explicit storage choice for scripts (and the test suite)
+PASSPHRASE_ENV = "LETHE_KEY_PASSPHRASE"  # the passphrase for passphrase-wrapped keys, when not given
+
+
+class KeyringUnavailableError(StateError):
+    """Keys are to be (or are) held by the OS keyring, and none is reachable."""
+
+
+def key_storage(home) -> str:
+    """How the home's secret keys are held: ``keyring``, ``passphrase``, ``plain`` or ``none``.
+
+    Read from the key files' own descriptions (no secret is read).  When keys
+    are held differently, the weakest is named (``plain`` before ``passphrase``
+    before ``keyring``).
+    """
+    keys = (home if isinstance(home, Home) else Home(home)).keys
+    found = set()
+    for name in (VAULT_KEY_FILE, CONTENT_KEY_FILE, DEVICE_KEY_FILE):
+        try:
+            data = (keys / name).read_bytes()
+        except OSError:
+            continue
+        if data.lstrip().startswith(b"{"):
+            try:
+                doc = json.loads(data)
+            except ValueError:
+                continue
+            if doc.get("store") == "keyring":
+                found.add("keyring")
+            elif doc.get("wrap") == "scrypt-aesgcm":
+                found.add("passphrase")
+            else:
+                found.add("plain")
+        else:
+            found.add("passphrase" if b"ENCRYPTED PRIVATE KEY" in data else "plain")
+    for s in ("plain", "passphrase", "keyring"):
+        if s in found:
+            return s
+    return "none"
+
+
+def keyring_available() -> bool:
+    """Whether an OS keyring with a usable backend is reachable now."""
+    return _keyring() is not None
+
+
 class Keystore:
     """The home's keys.
 
@@ -174,20 +221,40 @@ class Keystore:
     home : Home or path-like
         The lethe home (its ``keys/`` directory holds the key files).
     passphrase : bytes or str, optional
-        When given, new secrets are wrapped with a scrypt-derived key and the
-        device key is PKCS8-encrypted; existing wrapped keys need it to open.
+        Needed to open passphrase-wrapped keys; default the environment
+        variable ``LETHE_KEY_PASSPHRASE``.
     use_keyring : bool, optional
-        Keep the vault and content keys in the OS keyring when one is
-        available (default: yes, unless a passphrase is given or
-        ``LETHE_NO_KEYRING`` is set).
+        Deprecated spelling: ``False`` chooses ``storage="passphrase"`` with a
+        passphrase and ``storage="plain"`` without one.
+    storage : {"keyring", "passphrase", "plain"}, optional
+        How *new* keys are held (existing keys say how they are held).
+        ``keyring`` (the default): the vault, content and device keys live in
+        the OS keyring (Secret Service on Linux, Keychain on macOS) and the key
+        files only say where; ``passphrase``: wrapped under a scrypt key
+        derived from the passphrase; ``plain``: unwrapped files, only by
+        explicit choice (``lethe init --key-storage plain``, or the environment
+        variable ``LETHE_KEY_STORAGE``) and reported as a warning.
     """
 
-    def __init__(self, home, passphrase: bytes | None = None, *, use_keyring: bool | None = None):
+    def __init__(self, home, passphrase: bytes | None = None, *, use_keyring: bool | None = None,
+                 storage: str | None = None):
         self.home = home if isinstance(home, Home) else Home(home)
+        if passphrase is None and os.environ.get(PASSPHRASE_ENV):
+            passphrase = os.environ[PASSPHRASE_ENV]
         self._passphrase = _as_passphrase(passphrase)
-        if use_keyring is None:
-            use_keyring = self._passphrase is None
-        self._use_keyring = bool(use_keyring) and self._passphrase is None
+        if storage is None:
+            if self._passphrase is not None:
+                storage = "passphrase"
+            elif use_keyring is False:
+                storage = "plain"
+            else:
+                storage = os.environ.get(STORAGE_ENV) or "keyring"
+        if storage not in KEY_STORAGES:
+            raise UsageError(f"key storage {storage!r}: expected one of {', '.join(KEY_STORAGES)}")
+        if storage == "passphrase" and self._passphrase is None:
+            raise UsageError("key storage 'passphrase' needs a passphrase (or LETHE_KEY_PASSPHRASE)")
+        self.storage = storage
+        self._use_keyring = storage == "keyring"
         self._cache: dict[str, object] = {}
 
     keys_dir = property(lambda self: self.home.keys)
@@ -208,12 +275,29 @@ class Keystore:
             os.chmod(self.keys_dir, DIR_MODE)
         finally:
             os.umask(old)
+        missing = [n for n in (VAULT_KEY_FILE, CONTENT_KEY_FILE, DEVICE_KEY_FILE) if not (self.keys_dir / n).exists()]
+        if missing and self._use_keyring and _keyring() is None:
+            raise KeyringUnavailableError(
+                f"{self.keys_dir}: no OS keyring (Secret Service, Keychain) is reachable to hold the keys; "
+                f"unlock or install one, or choose another storage ('lethe init --key-storage passphrase', "
+                f"or 'plain' to keep unwrapped key files, which is reported as a warning)")
         for name, label in ((VAULT_KEY_FILE, "vault"), (CONTENT_KEY_FILE, "content")):
             if not (self.keys_dir / name).exists():
                 self._create_secret(name, label)
         priv = self.keys_dir / DEVICE_KEY_FILE
         if not priv.exists():
             key = Ed25519PrivateKey.generate()
+            if self._use_keyring:
+                raw = key.private_bytes(serialization.Encoding.Raw, serialization.PrivateFormat.Raw,
+                                        serialization.NoEncryption())
+                account = self._keyring_account("device")
+                _keyring().set_password(KEYRING_SERVICE, account, raw.hex())
+                doc = {"v": KEYFILE_VERSION, "name": "device", "store": "keyring", "service": KEYRING_SERVICE,
+                       "account": account, "wrap": "none"}
+                write_private(priv, json.dumps(doc, sort_keys=True).encode() + b"\n")
+                self._write_public(key.public_key())
+                self._cache["device"] = key
+                return self
             if self._passphrase:
                 # cryptography encrypts PKCS8 with PBKDF2 at 2048 rounds, far
                 # cheaper to guess than scrypt; so the PEM password is the
@@ -238,15 +322,14 @@ class Keystore:
     def _create_secret(self, name: str, label: str) -> None:
         secret = os.urandom(KEY_BYTES)
         doc = {"v": KEYFILE_VERSION, "name": label}
-        kr = _keyring() if self._use_keyring else None
-        if kr is not None:
+        if self._use_keyring:
             account = self._keyring_account(label)
-            try:
-                kr.set_password(KEYRING_SERVICE, account, secret.hex())
-                doc.update(store="keyring", service=KEYRING_SERVICE, account=account, wrap="none")
-            except Exception:
-                kr = None
-        if kr is None:
+            kr = _keyring()
+            if kr is None:
+                raise KeyringUnavailableError(f"{self.keys_dir}: the OS keyring is not reachable")
+            kr.set_password(KEYRING_SERVICE, account, secret.hex())
+            doc.update(store="keyring", service=KEYRING_SERVICE, account=account, wrap="none")
+        else:
             doc["store"] = "file"
             if self._passphrase:
                 doc.update(self._wrap(secret, label))
@@ -294,10 +377,12 @@ class Keystore:
             if doc.get("store") == "keyring":
                 kr = _keyring()
                 if kr is None:
-                    raise StateError(f"{path}: the key is kept in the OS keyring, which is not available now")
+                    raise KeyringUnavailableError(f"{path}: the key is kept in the OS keyring, which is not "
+                                                  f"available now (a copied home does not open without it)")
                 value = kr.get_password(doc["service"], doc["account"])
                 if value is None:
-                    raise StateError(f"{path}: the OS keyring has no entry {doc['account']!r} any more")
+                    raise KeyringUnavailableError(f"{path}: the OS keyring has no entry {doc['account']!r} (a home "
+                                                  f"copied or moved from elsewhere does not open without its keyring)")
                 secret = bytes.fromhex(value)
             elif doc.get("wrap") == "none":
                 secret = bytes.fromhex(doc["key"])
@@ -337,6 +422,10 @@ class Keystore:
             pem = path.read_bytes()
         except FileNotFoundError:
             raise StateError(f"{path}: missing device key; run 'lethe init' (or Keystore.ensure())") from None
+        if pem.lstrip().startswith(b"{"):
+            key = self._device_from_keyring(path, pem)
+            self._cache["device"] = key
+            return key
         encrypted = b"ENCRYPTED PRIVATE KEY" in pem
         if encrypted and not self._passphrase:
             raise PassphraseError(f"{path}: the device key is protected by a passphrase; none was given")
@@ -361,6 +450,27 @@ class Keystore:
         self._cache["device"] = key
         return key
 
+    def _device_from_keyring(self, path: Path, data: bytes) -> Ed25519PrivateKey:
+        try:
+            doc = json.loads(data)
+            service, account = doc["service"], doc["account"]
+        except (ValueError, KeyError, TypeError):
+            raise IntegrityError(f"{path}: damaged device key file") from None
+        if doc.get("store") != "keyring":
+            raise IntegrityError(f"{path}: unknown device key storage {doc.get('store')!r}")
+        kr = _keyring()
+        if kr is None:
+            raise KeyringUnavailableError(f"{path}: the device key is kept in the OS keyring, which is not "
+                                          f"available now (a copied home does not open without it)")
+        value = kr.get_password(service, account)
+        if value is None:
+            raise KeyringUnavailableError(f"{path}: the OS keyring has no entry {account!r} (a home copied "
+                                          f"or moved from elsewhere does not open without its keyring)")
+        try:
+            return Ed25519PrivateKey.from_private_bytes(bytes.fromhex(value))
+        except ValueError:
+            raise IntegrityError(f"{path}: the keyring entry {account!r} is not an Ed25519 key") from None
+
     def device_public(self) -> Ed25519PublicKey:
         """The device's public key, read from ``device.pub`` (no passphrase needed)."""
         return read_device_public(self.keys_dir)
@@ -376,7 +486,7 @@ class Keystore:
         where the filesystem keeps old blocks (see ``docs/vault.md``).
         """
         removed = 0
-        for name, label in ((VAULT_KEY_FILE, "vault"), (CONTENT_KEY_FILE, "content")):
+        for name in (VAULT_KEY_FILE, CONTENT_KEY_FILE, DEVICE_KEY_FILE):
             path = self.keys_dir / name
             try:
                 doc = json.loads(path.read_text("utf-8"))

@@ -14,6 +14,9 @@ os.environ.setdefault("NUMBA_CACHE_DIR", str(Path(tempfile.gettempdir()) / "leth
 os.environ.setdefault("MPLBACKEND", "Agg")
 # Never touch a developer's real OS keyring from the tests.
 os.environ.setdefault("LETHE_NO_KEYRING", "1")
+# Keys are held in the OS keyring by default; the suite chooses plain key files
+# explicitly (the keyring tests in test_keystore_keyring.py use the real one).
+os.environ.setdefault("LETHE_KEY_STORAGE", "plain")
 
 REPO = Path(__file__).resolve().parent.parent
 

@@ -6,6 +6,7 @@ tests need no simulated recorder; local fields come from zoneinfo.
 
 from __future__ import annotations
 
+from card_pin import card_fingerprint  # the participant confirms the study key (issue 12, finding 8)
 import time
 from datetime import datetime, timedelta, UTC
 from pathlib import Path
@@ -43,7 +44,8 @@ def make_page_home(tmp: Path, days: int = 21) -> Path:
     card = write_card(study, [REPO / "policies" / "default.toml"], contact="test desk", out=tmp / "card.json")
     now = time.time()
     root = tmp / "ph"
-    enrol(root, card, REPO / "policies" / "default.toml", consent=STUDY_ID, timezone=TZ, now=now - days * 86400)
+    enrol(root, card, REPO / "policies" / "default.toml", consent=STUDY_ID, timezone=TZ, now=now - days * 86400,
+          confirm_fingerprint=card_fingerprint(card))
     zone = ZoneInfo(TZ)
     start = datetime.fromtimestamp(now - days * 86400, UTC).replace(minute=0, second=0, microsecond=0)
     eps = []

@@ -8,6 +8,7 @@ home are searched for the planted values.
 
 from __future__ import annotations
 
+from card_pin import card_fingerprint  # the participant confirms the study key (issue 12, finding 8)
 import json
 import re
 import time
@@ -60,7 +61,7 @@ def test_planted_values_leave_no_trace(tmp_path):
     card = write_card(study, [policy_path], "desk", tmp_path / "card.json")
     start = float((int(time.time()) // 86400 - 9) * 86400)
     enrol(tmp_path / "home", card, policy_path, consent=policy.study.study_id, now=start,
-          enrolment_out=tmp_path / "enrolment.json")
+          enrolment_out=tmp_path / "enrolment.json", confirm_fingerprint=card_fingerprint(card))
     enroll(study, tmp_path / "enrolment.json")
     home = Home(tmp_path / "home")
 

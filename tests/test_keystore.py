@@ -208,51 +208,7 @@ def test_wrapped_key_file_edit_is_detected(home, fast_scrypt):
 
 # -- OS keyring (optional dependency, faked here) ----------------------------------
 
-@pytest.fixture
-def fake_keyring(monkeypatch):
-    store = {}
-    kr = types.ModuleType("keyring")
-    backends = types.ModuleType("keyring.backends")
-    fail = types.ModuleType("keyring.backends.fail")
-
-    class FailKeyring:
-        priority = 0
-
-    class MemoryKeyring:
-        priority = 1
-
-    fail.Keyring = FailKeyring
-    backends.fail = fail
-    kr.backends = backends
-    kr.get_keyring = lambda: MemoryKeyring()
-    kr.set_password = lambda s, a, v: store.__setitem__((s, a), v)
-    kr.get_password = lambda s, a: store.get((s, a))
-    kr.delete_password = lambda s, a: store.pop((s, a))
-    monkeypatch.setitem(sys.modules, "keyring", kr)
-    monkeypatch.setitem(sys.modules, "keyring.backends", backends)
-    monkeypatch.setitem(sys.modules, "keyring.backends.fail", fail)
-    monkeypatch.delenv("LETHE_NO_KEYRING", raising=False)
-    return store
-
-
-def test_keyring_holds_the_vault_key_when_available(home, fake_keyring):
-    ks = Keystore(home).ensure()
-    doc = json.loads((home.keys / "vault.key").read_text())
-    assert doc["store"] == "keyring" and "key" not in doc
-    assert ks.vault_key().hex() in fake_keyring.values()
-    assert Keystore(home).vault_key() == ks.vault_key()
-
-
-def test_keyring_not_used_with_a_passphrase(home, fake_keyring, fast_scrypt):
-    Keystore(home, b"pw").ensure()
-    assert fake_keyring == {}
-
-
-def test_keyring_entry_removed_on_destroy(home, fake_keyring):
-    Keystore(home).ensure()
-    assert fake_keyring
-    Keystore(home).destroy()
-    assert fake_keyring == {}
+# The keyring tests use a real Secret Service: tests/test_keystore_keyring.py.
 
 
 def test_destroy_with_passphrase_removes_the_kdf_file(home, fast_scrypt):
@@ -261,10 +217,45 @@ def test_destroy_with_passphrase_removes_the_kdf_file(home, fast_scrypt):
     assert list(home.keys.iterdir()) == []
 
 
-def test_keyring_absent_falls_back_to_file(home, monkeypatch):
+def test_keyring_absent_is_refused_not_replaced_by_plain_files(home, monkeypatch):
+    # Issue 12, finding 4: without a keyring the default storage does not quietly fall back to plain files.
+    from agent.keystore import KeyringUnavailableError
+
     monkeypatch.setitem(sys.modules, "keyring", None)  # import keyring -> ImportError
-    Keystore(home).ensure()
-    assert json.loads((home.keys / "vault.key").read_text())["store"] == "file"
+    with pytest.raises(KeyringUnavailableError, match="no OS keyring .* is reachable to hold the keys"):
+        Keystore(home, storage="keyring").ensure()
+    assert not (home.keys / "vault.key").exists()
+
+
+def test_plain_storage_only_by_choice(home, monkeypatch):
+    from agent.keystore import key_storage
+
+    monkeypatch.delenv("LETHE_KEY_STORAGE", raising=False)
+    assert Keystore(home).storage == "keyring"  # the default
+    Keystore(home, storage="plain").ensure()
+    assert key_storage(home) == "plain"
+
+
+def test_unknown_storage_is_refused(home):
+    from agent.errors import UsageError
+
+    with pytest.raises(UsageError, match="key storage 'disk': expected one of keyring, passphrase, plain"):
+        Keystore(home, storage="disk")
+
+
+def test_passphrase_storage_needs_a_passphrase(home, monkeypatch):
+    from agent.errors import UsageError
+
+    monkeypatch.delenv("LETHE_KEY_PASSPHRASE", raising=False)
+    with pytest.raises(UsageError, match="needs a passphrase"):
+        Keystore(home, storage="passphrase")
+
+
+def test_key_storage_reports_passphrase(home, fast_scrypt):
+    from agent.keystore import key_storage
+
+    Keystore(home, b"pw").ensure()
+    assert key_storage(home) == "passphrase"
 
 
 # -- withdrawal ----------------------------------------------------------------------

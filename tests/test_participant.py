@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from card_pin import card_fingerprint  # the participant confirms the study key (issue 12, finding 8)
 import json
 import os
 
@@ -26,7 +27,8 @@ def enrolled(tmp_path, card, repo):
     from agent.participant.enrol import enrol
 
     res = enrol(tmp_path / "p-home", card, repo / "policies" / "default.toml",
-                consent="harbour-days-2027", now=1_790_000_000.0)
+                consent="harbour-days-2027", now=1_790_000_000.0,
+                confirm_fingerprint=card_fingerprint(card))
     return res
 
 
@@ -44,7 +46,8 @@ def test_consent_must_be_the_study_id(tmp_path, card, repo):
     from agent.participant.enrol import enrol
 
     with pytest.raises(DataError, match="type the study id 'harbour-days-2027'"):
-        enrol(tmp_path / "h", card, repo / "policies" / "default.toml", consent="yes")
+        enrol(tmp_path / "h", card, repo / "policies" / "default.toml", consent="yes",
+              confirm_fingerprint=card_fingerprint(card))
     assert not (tmp_path / "h").exists()
 
 
@@ -52,7 +55,8 @@ def test_unapproved_policy_is_refused(tmp_path, card, repo):
     from agent.participant.enrol import enrol
 
     with pytest.raises(StateError, match="is not approved by the study card"):
-        enrol(tmp_path / "h", card, repo / "policies" / "strict.toml", consent="harbour-days-2027")
+        enrol(tmp_path / "h", card, repo / "policies" / "strict.toml", consent="harbour-days-2027",
+              confirm_fingerprint=card_fingerprint(card))
     assert not (tmp_path / "h").exists()
 
 
@@ -60,7 +64,8 @@ def test_enrolling_twice_is_refused(enrolled, card, repo):
     from agent.participant.enrol import enrol
 
     with pytest.raises(StateError, match="already enrolled"):
-        enrol(enrolled["home"], card, repo / "policies" / "default.toml", consent="harbour-days-2027")
+        enrol(enrolled["home"], card, repo / "policies" / "default.toml", consent="harbour-days-2027",
+              confirm_fingerprint=card_fingerprint(card))
 
 
 def test_status_of_a_fresh_home(enrolled):
@@ -129,3 +134,77 @@ def test_enrolment_carries_the_ledger_origin(enrolled):
 
     first = next(Ledger(enrolled["home"]).entries())
     assert load_enrolment(enrolled["enrolment"])["log_origin"] == first["hash"]
+
+
+# -- issue 12, finding 8: the study key is pinned or confirmed ------------------------------
+
+def test_unpinned_card_without_confirmation_is_refused(tmp_path, card, repo):
+    from agent.errors import IntegrityError
+    from agent.participant.enrol import enrol
+
+    with pytest.raises(IntegrityError, match="does not pin the study key"):
+        enrol(tmp_path / "h", card, repo / "policies" / "default.toml", consent="harbour-days-2027")
+    assert not (tmp_path / "h").exists()
+
+
+def test_substituted_card_with_the_same_study_id_is_refused(tmp_path, card, repo):
+    # An attacker's card: its own key, the same study id and policy; the participant
+    # confirms the fingerprint the real study published.
+    from agent.errors import IntegrityError
+    from agent.participant.enrol import enrol
+    from agent.study.card import write_card
+    from agent.study.keys import study_keygen
+
+    evil = tmp_path / "evil"
+    study_keygen(evil, "harbour-days-2027", b"attacker", scrypt_n=2**10)
+    fake = write_card(evil, [repo / "policies" / "default.toml"], contact="test desk", out=tmp_path / "fake.json")
+    with pytest.raises(IntegrityError, match="may be a substituted card"):
+        enrol(tmp_path / "h", fake, repo / "policies" / "default.toml", consent="harbour-days-2027",
+              confirm_fingerprint=card_fingerprint(card))
+    assert not (tmp_path / "h").exists()
+
+
+def test_a_short_confirmation_is_refused(tmp_path, card, repo):
+    from agent.errors import IntegrityError
+    from agent.participant.enrol import enrol
+
+    with pytest.raises(IntegrityError, match="at least 16 hex digits"):
+        enrol(tmp_path / "h", card, repo / "policies" / "default.toml", consent="harbour-days-2027",
+              confirm_fingerprint=card_fingerprint(card)[:8])
+
+
+def test_a_pinned_policy_needs_no_confirmation(tmp_path, repo):
+    from agent.participant.enrol import enrol
+    from agent.study.card import write_card
+    from agent.study.keys import study_keygen
+
+    study = tmp_path / "study"
+    study_keygen(study, "harbour-days-2027", b"test passphrase", scrypt_n=2**10)
+    first = write_card(study, [repo / "policies" / "default.toml"], contact="d", out=tmp_path / "c0.json")
+    pinned = tmp_path / "pinned.toml"
+    pinned.write_text((repo / "policies" / "default.toml").read_text().replace(
+        'key_fingerprint = ""', f'key_fingerprint = "{card_fingerprint(first)}"'))
+    c = write_card(study, [pinned], contact="d", out=tmp_path / "c.json")
+    res = enrol(tmp_path / "h", c, pinned, consent="harbour-days-2027")
+    assert res["pseudonym"]
+
+
+def test_init_without_a_terminal_asks_for_the_fingerprint(tmp_path, card, repo, capsys, monkeypatch):
+    import io
+
+    from agent.cli import main
+    from agent.errors import EXIT_USAGE
+
+    monkeypatch.setattr("sys.stdin", io.StringIO(""))
+    rc = main(["--home", str(tmp_path / "h"), "init", "--study", str(card), "--policy",
+               str(repo / "policies" / "default.toml"), "--consent", "harbour-days-2027"])
+    assert rc == EXIT_USAGE
+    assert "--confirm-fingerprint HEX" in capsys.readouterr().err
+
+
+def test_status_warns_about_plain_keys(enrolled):
+    from agent.participant.status import collect_status, status_text
+
+    st = collect_status(enrolled["home"])  # the suite chooses plain keys (tests/conftest.py)
+    assert st["keys"]["storage"] == "plain"
+    assert "WARNING: the keys are plain files" in status_text(st)

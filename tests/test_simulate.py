@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from card_pin import card_fingerprint  # the participant confirms the study key (issue 12, finding 8)
 import pytest
 
 from agent.errors import StateError
@@ -16,7 +17,8 @@ def fresh_home(tmp_path, repo):
     study_keygen(tmp_path / "study", "harbour-days-2027", b"test passphrase", scrypt_n=2**10)
     card = write_card(tmp_path / "study", [repo / "policies" / "default.toml"], out=tmp_path / "card.json")
     return enrol(tmp_path / "home", card, repo / "policies" / "default.toml",
-                 consent="harbour-days-2027")["home"]
+                 consent="harbour-days-2027",
+                 confirm_fingerprint=card_fingerprint(card))["home"]
 
 
 @pytest.mark.slow

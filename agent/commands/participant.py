@@ -17,6 +17,12 @@ def register(sub) -> None:
     p.add_argument("--timezone", metavar="ZONE",
                    help="your IANA time zone, e.g. Europe/Lisbon (default: this laptop's zone)")
     p.add_argument("--enrolment-out", metavar="FILE", help="where to write the enrolment file for the researcher")
+    p.add_argument("--confirm-fingerprint", metavar="HEX",
+                   help="the study key fingerprint as published by the study (needed when the policy does not "
+                        "pin the key; otherwise you are asked to type it)")
+    p.add_argument("--key-storage", choices=("keyring", "passphrase", "plain"), default=None,
+                   help="where the keys are held: the OS keyring (default), a passphrase-wrapped file "
+                        "(LETHE_KEY_PASSPHRASE or asked), or plain files (not protected; shown as a warning)")
     add_json(p)
     p.set_defaults(func=_init)
 
@@ -84,6 +90,29 @@ def _init(args) -> int:
     card = load_card(args.study)
     policy = load_policy(args.policy)
     check_policy_approved(card, policy)
+    confirmed = args.confirm_fingerprint
+    if not policy.study.key_fingerprint and confirmed is None:
+        if not sys.stdin.isatty():
+            from ..errors import UsageError
+
+            raise UsageError(f"the policy does not pin the study key: compare the card's key fingerprint "
+                             f"{card.key_fingerprint} with the one the study publishes, then pass "
+                             f"--confirm-fingerprint HEX")
+        print(f"Study key fingerprint on this card:\n  {card.key_fingerprint}\n"
+              f"Compare it with the fingerprint the study publishes (its web page, the information sheet).")
+        confirmed = input("Type the published fingerprint (at least the first 16 hex digits): ")
+    passphrase = None
+    if args.key_storage == "passphrase":
+        import getpass
+        import os
+
+        passphrase = os.environ.get("LETHE_KEY_PASSPHRASE")
+        if not passphrase:
+            if not sys.stdin.isatty():
+                from ..errors import UsageError
+
+                raise UsageError("--key-storage passphrase: set LETHE_KEY_PASSPHRASE or run in a terminal")
+            passphrase = getpass.getpass("Passphrase for the keys (asked again whenever lethe starts): ")
     consent = args.consent
     if consent is None:
         if not sys.stdin.isatty():
@@ -96,7 +125,11 @@ def _init(args) -> int:
         consent = input(f"To agree, type the study id ({card.study_id}): ")
     zone = args.timezone or laptop_timezone()
     res = enrol(getattr(args, "home", None), args.study, args.policy, consent=consent,
-                timezone=zone, enrolment_out=args.enrolment_out)
+                timezone=zone, enrolment_out=args.enrolment_out, passphrase=passphrase,
+                key_storage=args.key_storage, confirm_fingerprint=confirmed)
+    if res.get("key_storage") == "plain":
+        print("WARNING: the keys are plain files (--key-storage plain): anyone who copies this home can read "
+              "the vault and sign as this device.", file=sys.stderr)
     how = "this laptop's zone" if not args.timezone and zone else ("your choice" if args.timezone else
                                                                    "the study's default; --timezone to change")
     emit(args, res, f"You have joined {res['study_id']} as {res['pseudonym']}.\n"

@@ -104,12 +104,23 @@ def participant_enrols(ctx: DemoContext) -> None:
     ctx.stage("Participant: enrolment and consent")
     policy = load_policy(ctx.policy_path)
     start = _study_start(ctx)
+    from ..keystore import keyring_available
+    from ..study.card import load_card
+
+    # The demo's researcher published the key fingerprint it just made; the
+    # participant confirms it (the shipped policy leaves the key unpinned).
+    published = load_card(ctx.facts["card"]).key_fingerprint
+    # Keys in the OS keyring when there is one; a throw-away demo home on a
+    # machine without one uses plain key files, by this explicit choice.
+    storage = "keyring" if keyring_available() else "plain"
     res = enrol(ctx.home_dir, ctx.facts["card"], ctx.policy_path, consent=policy.study.study_id,
-                now=start, enrolment_out=ctx.workdir / "enrolment.json")
+                now=start, enrolment_out=ctx.workdir / "enrolment.json", confirm_fingerprint=published,
+                key_storage=storage)
     enroll(ctx.study_dir, ctx.workdir / "enrolment.json")
     ctx.facts["pseudonym"] = res["pseudonym"]
     ctx.say(f"The participant read the consent text, confirmed study id {policy.study.study_id}, "
-            f"and got pseudonym {res['pseudonym']}. The researcher registered the device "
+            f"compared the study key fingerprint {published[:16]}... with the published one, "
+            f"and got pseudonym {res['pseudonym']} (keys: {res['key_storage']}). The researcher registered the device "
             f"(key {res['device_key_id']}).")
 
 

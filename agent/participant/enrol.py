@@ -69,6 +69,35 @@ def laptop_timezone() -> str | None:
         return valid(Path("/etc/timezone").read_text("utf-8").split()[0])
     except (OSError, IndexError):
         return None
+def normalise_fingerprint(text: str) -> str:
+    """Lower-case hex digits of a fingerprint as typed (spaces and colons dropped)."""
+    return "".join(c for c in str(text).lower() if c not in " :\t-")
+
+
+def check_key_confirmed(card, policy, confirm_fingerprint: str | None) -> None:
+    """Refuse an unpinned study key unless the participant confirmed its fingerprint.
+
+    Raises
+    ------
+    agent.errors.IntegrityError
+        The policy does not pin the study key and no fingerprint (or a
+        different one) was confirmed.
+    """
+    from ..errors import IntegrityError
+
+    if policy.study.key_fingerprint:
+        return  # pinned, and check_policy_approved compared it with the card
+    fp = card.key_fingerprint
+    if confirm_fingerprint is None:
+        raise IntegrityError(
+            f"{policy.source}: the policy does not pin the study key ([study].key_fingerprint is empty); compare "
+            f"the card's key fingerprint {fp} with the one the study publishes and confirm it "
+            f"(lethe init --confirm-fingerprint HEX)")
+    typed = normalise_fingerprint(confirm_fingerprint)
+    if len(typed) < 16 or not all(c in "0123456789abcdef" for c in typed) or not fp.startswith(typed):
+        raise IntegrityError(
+            f"{card.source}: the study card's key fingerprint {fp} does not match the one confirmed "
+            f"({confirm_fingerprint!r}; at least 16 hex digits are needed): this may be a substituted card")
 
 
 def consent_text(card, policy) -> str:
@@ -76,7 +105,8 @@ def consent_text(card, policy) -> str:
 
 
 def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | None = None,
-          now: float | None = None, enrolment_out=None, passphrase=None) -> dict:
+          now: float | None = None, enrolment_out=None, passphrase=None, key_storage: str | None = None,
+          confirm_fingerprint: str | None = None) -> dict:
     """Enrol this device in the study described by ``card_path``.
 
     Parameters
@@ -96,6 +126,17 @@ def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | Non
         Enrolment time, Unix seconds; the study weeks count from it.
     enrolment_out : path-like, optional
         Where to write the enrolment file (default: ``HOME/enrolment.json``).
+    passphrase : str or bytes, optional
+        For ``key_storage="passphrase"``.
+    key_storage : {"keyring", "passphrase", "plain"}, optional
+        How the keys are held (default: the OS keyring; see
+        :class:`agent.keystore.Keystore`).  ``plain`` is an explicit choice and
+        is reported as a warning by ``lethe status`` and the board's report.
+    confirm_fingerprint : str, optional
+        The study key fingerprint the participant compared with the one the
+        study publishes (at least its first 16 hex digits).  Required when the
+        policy does not pin the key (``study.key_fingerprint = ""``): a
+        substituted card with another key and the same study id is refused.
 
     Returns
     -------
@@ -115,6 +156,7 @@ def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | Non
     card = load_card(card_path)
     policy = load_policy(policy_path)
     check_policy_approved(card, policy)  # also: same study id, and a pinned key matches the card
+    check_key_confirmed(card, policy, confirm_fingerprint)
     if (consent or "").strip() != card.study_id:
         raise DataError(f"consent not given: type the study id {card.study_id!r} exactly to agree "
                         f"(got {consent!r})")
@@ -125,8 +167,9 @@ def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | Non
         raise DataError(f"time zone {tz!r} is not an IANA zone name such as 'Europe/Lisbon'") from None
 
     now = time.time() if now is None else float(now)
+    ks = Keystore(home, passphrase=passphrase, storage=key_storage)
+    ks.ensure()  # first: with no keyring reachable nothing else is written
     home.create()
-    ks = Keystore(home, passphrase=passphrase).ensure()
     shutil.copyfile(policy_path, home.policy_path)
     home.policy_path.chmod(0o600)
     write_private(home.root / "study-card.json", Path(card_path).read_bytes())
@@ -147,8 +190,9 @@ def enrol(home_dir, card_path, policy_path, *, consent: str, timezone: str | Non
         "card_key_fingerprint": card.key_fingerprint,
         "consent": {"study_id": card.study_id, "text_sha256": hashlib.sha256(text.encode()).hexdigest(),
                     "at": now},
-        "enrolment_file": str(out), "log_origin": first["hash"],
+        "enrolment_file": str(out), "log_origin": first["hash"], "key_storage": ks.storage,
     })
     kid = device_key_id(ks.device_public())
     return {"pseudonym": pseudonym, "device_key_id": kid, "enrolment": str(out), "home": str(home.root),
-            "study_id": card.study_id, "policy_fingerprint": policy.fingerprint, "timezone": tz}
+            "study_id": card.study_id, "policy_fingerprint": policy.fingerprint, "timezone": tz,
+            "key_storage": ks.storage}

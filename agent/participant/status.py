@@ -40,6 +40,7 @@ def collect_status(home, now: float | None = None, passphrase=None) -> dict:
                    "fingerprint": policy.fingerprint, "raw_retention_s": policy.retention.raw_seconds},
         "intake": intake_counts(home, policy, now=now),
         "disk_bytes": home.disk_usage(),
+        "keys": _keys_part(home),
     }
     if (home.state / "prompts.json").exists():
         from .prompts import PromptBook
@@ -51,6 +52,18 @@ def collect_status(home, now: float | None = None, passphrase=None) -> dict:
         with Vault.open(home, passphrase=passphrase) as v:
             st["vault"] = _vault_part(v, policy, now)
     return st
+
+
+def _keys_part(home: Home) -> dict:
+    """How the keys are held (no secret is read) and the ledger's integrity alarms."""
+    from ..keystore import key_storage
+
+    storage = key_storage(home)
+    out = {"storage": storage, "warning": None}
+    if storage == "plain":
+        out["warning"] = ("the keys are plain files (chosen at 'lethe init'): anyone who copies this home "
+                          "can read the vault and sign as this device")
+    return out
 
 
 def _vault_part(v, policy, now: float) -> dict:
@@ -93,6 +106,9 @@ def _n(d: dict, kind: str) -> int:
     return int(d.get(kind, 0))
 
 
+_KEY_WORDS = {"keyring": "held by this laptop's keyring", "passphrase": "locked with your passphrase",
+              "plain": "plain files", "none": "none yet"}
+
 KIND_WORDS = {"audio": "sound snippets", "gps": "location files", "accel": "movement files",
               "mood": "mood answers", "unknown": "unrecognised files"}
 
@@ -112,6 +128,11 @@ def status_text(st: dict) -> str:
         f"Study {st['study_id']}, you are {st['pseudonym']} (joined {st['enrolled']}; times in {st['timezone']}).",
         f"lethe is {state}.",
         f"Rules in force: {p['name']} {p['version']}.",
+        f"Keys: {_KEY_WORDS.get(st.get('keys', {}).get('storage'), 'unknown')}.",
+    ]
+    if st.get("keys", {}).get("warning"):
+        lines.append(f"WARNING: {st['keys']['warning']}.")
+    lines += [
         "",
         "Since you joined      arrived  destroyed  could not be read",
     ]
