@@ -129,7 +129,12 @@ def test_open_answered_and_missed_are_counted(book):
     assert book.open_prompt(ps[0].t + 120) is None
     after_third = ps[2].expires + 1
     c = book.counts(after_third)
-    assert (c["asked"], c["answered"], c["missed"], c["open"]) == (3, 1, 2, 0)
+    # The day's times are random: a fourth prompt may already have started (and be open) by then.
+    started = [p for p in ps if p.t <= after_third]
+    still_open = [p for p in started if after_third < p.expires]
+    assert len(started) >= 3 and all(p.expires < after_third for p in ps[:3])
+    assert (c["asked"], c["answered"], c["open"]) == (len(started), 1, len(still_open))
+    assert c["missed"] == len(started) - 1 - len(still_open) >= 2
     assert book.open_prompt(ps[3].t) == ps[3]
     assert book.counts(ps[3].t)["open"] == 1
 
