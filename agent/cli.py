@@ -22,7 +22,8 @@ COMMAND_MODULES = (
     "graph",        # lethe codebook|graph
     "fit",          # lethe fit
     "export",       # lethe export
-    "study",        # lethe study keygen|card|enroll|open|merge|report|verify-withdrawal
+    "upload",       # lethe upload
+    "study",        # lethe study keygen|card|enroll|open|merge|report|serve|invite|analyse|plan|verify-withdrawal
     "audit",        # lethe audit policy|diff|verify|report
     "demo",         # lethe demo
 )

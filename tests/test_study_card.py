@@ -90,10 +90,10 @@ def test_card_unknown_field_names_file_and_field(study, tmp_path):
 def test_card_future_version(study, tmp_path):
     _, path = study
     doc = json.loads(path.read_text())
-    doc["version"] = 3
-    bad = tmp_path / "v3.json"
+    doc["version"] = 4
+    bad = tmp_path / "v4.json"
     bad.write_text(json.dumps(doc))
-    with pytest.raises(DataError, match="version 3 is not supported"):
+    with pytest.raises(DataError, match="version 4 is not supported"):
         load_card(bad)
 
 
@@ -106,6 +106,43 @@ def test_card_version_1_is_refused(study, tmp_path):
     old.write_text(json.dumps(doc))
     with pytest.raises(DataError, match="version 1 is not supported"):
         load_card(old)
+
+
+def test_card_v3_with_server(study, tmp_path):
+    _, path = study
+    doc = json.loads(path.read_text())
+    doc.update(version=3, server={"url": "https://study.example.org:8443", "certificate_sha256": "ab" * 32})
+    (tmp_path / "v3.json").write_text(json.dumps(doc))
+    card = load_card(tmp_path / "v3.json")
+    assert (card.server_url, card.server_pin) == ("https://study.example.org:8443", "ab" * 32)
+    assert card.as_dict()["version"] == 3 and card.as_dict()["server"]["url"] == card.server_url
+
+
+def test_card_v3_without_server_field(study, tmp_path):
+    _, path = study
+    doc = json.loads(path.read_text())
+    doc["version"] = 3
+    (tmp_path / "v3.json").write_text(json.dumps(doc))
+    with pytest.raises(DataError, match=r"\[server\] required field is missing"):
+        load_card(tmp_path / "v3.json")
+
+
+def test_card_v3_plain_http_refused(study, tmp_path):
+    _, path = study
+    doc = json.loads(path.read_text())
+    doc.update(version=3, server={"url": "http://study.example.org", "certificate_sha256": "ab" * 32})
+    (tmp_path / "v3.json").write_text(json.dumps(doc))
+    with pytest.raises(DataError, match=r"\[server.url\] expected https://"):
+        load_card(tmp_path / "v3.json")
+
+
+def test_card_v3_bad_pin(study, tmp_path):
+    _, path = study
+    doc = json.loads(path.read_text())
+    doc.update(version=3, server={"url": "https://study.example.org", "certificate_sha256": "AB" * 32})
+    (tmp_path / "v3.json").write_text(json.dumps(doc))
+    with pytest.raises(DataError, match=r"\[server.certificate_sha256\] expected 64 lower-case hex"):
+        load_card(tmp_path / "v3.json")
 
 
 def test_card_fingerprint_mismatch(study, tmp_path):

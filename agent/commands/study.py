@@ -33,6 +33,11 @@ def register(sub) -> None:
     cd.add_argument("--policy", nargs="+", required=True, metavar="P", help="approved policy files")
     cd.add_argument("--contact", help="contact line (default: the first policy's)")
     cd.add_argument("--out", metavar="CARD", help="output file (default STUDYDIR/card.json)")
+    cd.add_argument("--server-url", metavar="URL",
+                    help="the study server agents upload to (https://HOST:PORT); the card then names it")
+    cd.add_argument("--server-cert", metavar="PEM",
+                    help="the server's certificate, whose SHA-256 agents pin (default: the --self-signed one "
+                         "in STUDYDIR/server/tls/cert.pem)")
     add_json(cd)
     cd.set_defaults(func=_card)
 
@@ -42,12 +47,15 @@ def register(sub) -> None:
     en.set_defaults(func=_enroll)
 
     op = with_pass(with_dir(ps.add_parser("open", help="verify, decrypt and store bundles")))
-    op.add_argument("bundle", nargs="+", help="bundle file(s)")
+    op.add_argument("bundle", nargs="+", help="bundle files, or folders holding them")
     add_json(op)
     op.set_defaults(func=_open)
 
-    mg = with_dir(ps.add_parser("merge", help="write cohort tables (CSV; Parquet with pyarrow)"))
+    mg = with_dir(ps.add_parser("merge", help="write cohort tables (CSV, streamed) with a data dictionary"))
     mg.add_argument("--out", required=True, metavar="DIR")
+    mg.add_argument("--database", metavar="URL",
+                    help="read from the study server's database (sqlite:///PATH or postgresql://...) instead of "
+                         "STUDYDIR/received")
     add_json(mg)
     mg.set_defaults(func=_merge)
 
@@ -55,6 +63,33 @@ def register(sub) -> None:
     rp.add_argument("--out", required=True, metavar="DIR")
     add_json(rp)
     rp.set_defaults(func=_report)
+
+    sv = with_pass(with_dir(ps.add_parser(
+        "serve", help="run the study server: uploads from agents, the researcher's dashboard (HTTPS)")))
+    sv.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
+    sv.add_argument("--port", type=int, default=8443)
+    sv.add_argument("--cert", metavar="PEM", help="the study's TLS certificate")
+    sv.add_argument("--key", metavar="PEM", help="its private key")
+    sv.add_argument("--self-signed", action="store_true",
+                    help="create (or reuse) a self-signed certificate in STUDYDIR/server/tls; put its pin on the "
+                         "card with 'lethe study card --server-url'")
+    sv.add_argument("--database", metavar="URL",
+                    help="sqlite:///PATH or postgresql://USER@HOST/DB (default: SQLite in STUDYDIR/server)")
+    sv.add_argument("--dashboard-password-file", metavar="F",
+                    help="file holding the researcher's dashboard password (else $LETHE_DASHBOARD_PASSWORD); "
+                         "required: the dashboard is never served without one")
+    sv.add_argument("--max-bundle-bytes", type=int, default=8 * 1024 * 1024)
+    sv.add_argument("--rate-per-minute", type=float, default=30.0, help="uploads per device per minute")
+    sv.add_argument("--overdue-days", type=float, default=8.0,
+                    help="a participant without a bundle for this long is listed as overdue")
+    sv.set_defaults(func=_serve)
+
+    iv = with_dir(ps.add_parser("invite", help="issue one-time invitation codes for enrolment on the server"))
+    iv.add_argument("--count", type=int, default=1)
+    iv.add_argument("--note", default="", help="a note kept with the codes (never shown to participants)")
+    iv.add_argument("--database", metavar="URL", help="as for 'serve'")
+    add_json(iv)
+    iv.set_defaults(func=_invite)
 
     vw = with_dir(ps.add_parser("verify-withdrawal", help="check a withdrawal certificate and record the withdrawal"))
     vw.add_argument("file")
@@ -79,13 +114,27 @@ def _keygen(args) -> int:
 
 
 def _card(args) -> int:
-    from ..study.card import load_card, write_card
+    from pathlib import Path
 
-    path = write_card(args.dir, args.policy, args.contact, args.out)
+    from ..errors import UsageError
+    from ..study.card import load_card, write_card
+    from ..study.server.tls import cert_pin, tls_dir
+
+    pin = None
+    if args.server_url:
+        cert = Path(args.server_cert) if args.server_cert else tls_dir(args.dir) / "cert.pem"
+        if not cert.exists():
+            raise UsageError(f"{cert}: no server certificate; give --server-cert, or run 'lethe study serve "
+                             f"--self-signed' once to create one")
+        pin = cert_pin(cert.read_bytes())
+    elif args.server_cert:
+        raise UsageError("--server-cert needs --server-url")
+    path = write_card(args.dir, args.policy, args.contact, args.out, server_url=args.server_url, server_pin=pin)
     card = load_card(path)
     emit(args, {"card": str(path), **card.as_dict()},
          f"study card written to {path}\n  study {card.study_id}, key {card.key_fingerprint}\n"
-         f"  approved policies: {', '.join(card.approved_policies)}")
+         f"  approved policies: {', '.join(card.approved_policies)}"
+         + (f"\n  server {card.server_url}, certificate pin {card.server_pin}" if card.server_url else ""))
     return 0
 
 
@@ -120,9 +169,15 @@ def _open(args) -> int:
 
 
 def _merge(args) -> int:
-    from ..study.merge import merge
+    from ..study.cohort.merge import merge
 
-    tables = merge(args.dir, args.out)
+    source = args.dir
+    if args.database:
+        from ..study.keys import load_public
+        from ..study.server.store import Store
+
+        source = Store(args.database, load_public(args.dir)["study_id"])
+    tables = merge(source, args.out)
     emit(args, {k: str(v) for k, v in tables.items()},
          "\n".join(f"{k}: {v}" for k, v in tables.items()))
     return 0
@@ -144,4 +199,46 @@ def _verify_withdrawal(args) -> int:
          f"{args.file}: valid withdrawal of {check.pseudonym} (device {check.device_key_id}) at {check.time}; "
          f"ledger head #{check.ledger_head['seq']}; destroyed "
          + ", ".join(f"{k} {v}" for k, v in check.counts_destroyed.items()))
+    return 0
+
+
+def _dashboard_password(path) -> str:
+    import os
+    from pathlib import Path
+
+    from ..errors import UsageError
+
+    text = Path(path).read_text("utf-8").strip() if path else os.environ.get("LETHE_DASHBOARD_PASSWORD", "")
+    if len(text) < 8:
+        raise UsageError("serve: a dashboard password of at least 8 characters is required "
+                         "(--dashboard-password-file F or $LETHE_DASHBOARD_PASSWORD); the dashboard is never open")
+    return text
+
+
+def _serve(args) -> int:
+    from ..study.keys import read_passphrase
+    from ..study.server.app import ServerSettings
+    from ..study.server.run import serve
+
+    settings = ServerSettings(_dashboard_password(args.dashboard_password_file),
+                              max_bundle_bytes=args.max_bundle_bytes, rate_per_minute=args.rate_per_minute,
+                              overdue_days=args.overdue_days)
+
+    def ready(url, pin):
+        print(f"lethe study server for {args.dir} at {url}\n  dashboard: {url}/dashboard\n"
+              f"  certificate pin (SHA-256): {pin}", flush=True)
+
+    serve(args.dir, read_passphrase(args.passphrase_file), settings, host=args.host, port=args.port,
+          certfile=args.cert, keyfile=args.key, self_signed=args.self_signed, database=args.database, ready=ready)
+    return 0
+
+
+def _invite(args) -> int:
+    from ..study.keys import load_public
+    from ..study.server.store import Store, default_url
+
+    store = Store(args.database or default_url(args.dir), load_public(args.dir)["study_id"])
+    codes = store.invite(args.count, args.note)
+    emit(args, {"invitations": codes},
+         "one-time invitation codes (shown once; only their hashes are kept):\n" + "\n".join(codes))
     return 0

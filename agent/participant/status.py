@@ -46,6 +46,9 @@ def collect_status(home, now: float | None = None, passphrase=None) -> dict:
         from .prompts import PromptBook
 
         st["prompts"] = PromptBook(home, policy).counts(now)
+    from ..uploader import queue_status
+
+    st["upload"] = queue_status(home)
     if home.vault_path.exists():
         from ..vault import Vault
 
@@ -159,10 +162,31 @@ def status_text(st: dict) -> str:
         lines += [
             f"Places: {v['places']} found, {v['named_places']} named by you.",
             f"Memory test: {q['answered']} answered, {q['skipped']} not sure, {q['pending']} waiting.",
-            f"Summaries for the study: {e['count']} prepared (in the outbox; lethe does not send them), "
+            f"Summaries for the study: {e['count']} prepared (in the outbox), "
             f"last {e['last'] or 'never'}; next " + ("can be prepared now" if due == "now" else f"from {due or '-'}")
             + ".",
         ]
+    lines.extend(upload_lines(st.get("upload")))
     lines.append(f"Space used on this laptop: {st['disk_bytes'] / 1e6:.1f} MB.")
     lines.append("'lethe open' shows all this on your own page.")
     return "\n".join(lines)
+
+
+def upload_lines(up: dict | None) -> list[str]:
+    """The uploader's state in plain words: "prepared" until the server acknowledged, "sent" after."""
+    if not up or not up.get("server"):
+        return ["Sending: the study card names no study server, so lethe sends nothing; "
+                "hand the files in the outbox to the study as agreed."]
+    out = [f"Sending to the study server {up['server']}: {len(up['sent'])} sent (the server confirmed it has "
+           f"them), {len(up['prepared'])} prepared and waiting."]
+    for i in up["prepared"][:5]:
+        out.append(f"  Waiting: {i['kind']} {i['name']}" + (f" (tried {i['attempts']} times: {i['last_error']})"
+                                                            if i["attempts"] else "") + ".")
+    for f in up["failed"][:5]:
+        out.append(f"  Refused by the study server: {f['kind']} {f['name']}: {f['message']}")
+    if up.get("last_contact"):
+        t = _dt.datetime.fromtimestamp(up["last_contact"], _dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+        out.append(f"  Last contact with the study server: {t}.")
+    else:
+        out.append("  No contact with the study server yet.")
+    return out

@@ -32,6 +32,7 @@ from .keys import PUBLIC_KEY_BYTES, SUITES, _check_study_id, b64d, b64e, key_fin
 
 CARD_FORMAT = "lethe-study-card"
 CARD_VERSION = 2
+CARD_VERSION_SERVER = 3  # version 2 plus "server": {"url", "certificate_sha256"} (docs/server.md)
 ENROLMENT_FORMAT = "lethe-enrolment"
 ENROLMENT_VERSION = 2
 
@@ -66,6 +67,8 @@ class StudyCard:
     consent_text: str
     issued: str
     source: str = field(default="<memory>", compare=False)
+    server_url: str | None = None
+    server_pin: str | None = None
 
     @property
     def suite_names(self) -> dict:
@@ -82,6 +85,8 @@ class StudyCard:
             "suite": self.suite, **SUITES[self.suite], "public_key": b64e(self.public_key),
             "key_fingerprint": self.key_fingerprint, "approved_policies": list(self.approved_policies),
             "contact": self.contact, "consent_text": self.consent_text, "issued": self.issued,
+            **({"version": CARD_VERSION_SERVER,
+                "server": {"url": self.server_url, "certificate_sha256": self.server_pin}} if self.server_url else {}),
         }
 
 
@@ -134,7 +139,16 @@ def _read_json(path, what: str) -> dict:
 # -- study card --------------------------------------------------------------
 
 def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
-    """Validate a card document strictly and return a :class:`StudyCard`."""
+    """Validate a card document strictly and return a :class:`StudyCard`.
+
+    Version 2 has no server; version 3 adds ``server`` = ``{"url": "https://...",
+    "certificate_sha256": hex64}``, where agents upload and the certificate they pin.
+    """
+    server = None
+    if isinstance(doc, dict) and doc.get("format") == CARD_FORMAT and doc.get("version") == CARD_VERSION_SERVER:
+        _check_fields(doc, {**CARD_FIELDS, "server": dict}, source, "study card")
+        server = _check_server(doc["server"], source)
+        doc = {k: v for k, v in doc.items() if k != "server"} | {"version": CARD_VERSION}
     _check_header(doc, CARD_FORMAT, CARD_VERSION, source, "study card")
     _check_fields(doc, CARD_FIELDS, source, "study card")
     _check_study_id(doc["study_id"], source)
@@ -160,7 +174,20 @@ def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
     if not _DATE.match(doc["issued"]):
         raise DataError(f"{source}: [issued] expected a date YYYY-MM-DD, got {doc['issued']!r}")
     return StudyCard(doc["study_id"], suite, public, doc["key_fingerprint"], tuple(pols),
-                     doc["contact"], doc["consent_text"], doc["issued"], str(source))
+                     doc["contact"], doc["consent_text"], doc["issued"], str(source),
+                     *(server or (None, None)))
+
+
+def _check_server(v, source) -> tuple[str, str]:
+    if not isinstance(v, dict) or set(v) != {"url", "certificate_sha256"}:
+        raise DataError(f"{source}: [server] expected an object with exactly 'url' and 'certificate_sha256'")
+    url, pin = v["url"], v["certificate_sha256"]
+    if not isinstance(url, str) or not re.fullmatch(r"https://[A-Za-z0-9.\-\[\]:]+(:\d{1,5})?/?", url):
+        raise DataError(f"{source}: [server.url] expected https://HOST[:PORT], got {url!r}")
+    if not isinstance(pin, str) or not _HEX64.match(pin):
+        raise DataError(f"{source}: [server.certificate_sha256] expected 64 lower-case hex digits "
+                        f"(SHA-256 of the server certificate, DER)")
+    return url.rstrip("/"), pin
 
 
 def load_card(path) -> StudyCard:
@@ -168,7 +195,8 @@ def load_card(path) -> StudyCard:
     return card_from_dict(_read_json(path, "study card"), source=str(path))
 
 
-def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.date | None = None) -> StudyCard:
+def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.date | None = None,
+              server_url: str | None = None, server_pin: str | None = None) -> StudyCard:
     """Build the study card from ``STUDYDIR/keys/study.pub`` and the approved policies.
 
     Every policy must name the key's study id, and a policy that pins
@@ -192,8 +220,14 @@ def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.da
     fps = list(dict.fromkeys(p.fingerprint for p in pols))
     contact = contact if contact is not None else pols[0].study.contact
     issued = (issued or _dt.datetime.now(_dt.timezone.utc).date()).isoformat()
-    return StudyCard(pub["study_id"], pub["suite"], pub["public_key"], pub["key_fingerprint"],
+    card = StudyCard(pub["study_id"], pub["suite"], pub["public_key"], pub["key_fingerprint"],
                      tuple(fps), contact, pols[0].study.consent_text, issued)
+    if server_url is not None or server_pin is not None:
+        url, pin = _check_server({"url": server_url, "certificate_sha256": server_pin}, "study card")
+        card = StudyCard(*[getattr(card, f) for f in ("study_id", "suite", "public_key", "key_fingerprint",
+                                                      "approved_policies", "contact", "consent_text", "issued",
+                                                      "source")], server_url=url, server_pin=pin)
+    return card
 
 
 def card_path(study_dir) -> Path:
@@ -201,9 +235,10 @@ def card_path(study_dir) -> Path:
     return Path(study_dir) / "card.json"
 
 
-def write_card(study_dir, policies, contact: str | None = None, out=None) -> Path:
+def write_card(study_dir, policies, contact: str | None = None, out=None, *, server_url: str | None = None,
+               server_pin: str | None = None) -> Path:
     """Write the study card to ``out`` and to ``STUDYDIR/card.json``; returns ``out``."""
-    card = make_card(study_dir, policies, contact)
+    card = make_card(study_dir, policies, contact, server_url=server_url, server_pin=server_pin)
     data = (json.dumps(card.as_dict(), indent=2, sort_keys=True, ensure_ascii=False) + "\n").encode()
     write_private(card_path(study_dir), data)
     out = Path(out) if out is not None else card_path(study_dir)
