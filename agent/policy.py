@@ -203,7 +203,7 @@ SCHEMA: dict[str, dict[str, Field]] = {
     },
     "model": {
         "folds": Field(int, 5, _range(2, 20)),
-        "restarts": Field(int, 4, _range(1, 50)),
+        "restarts": Field(int, 2, _range(1, 50)),
     },
     "export": {
         "allow": Field(list, list(NODE_KINDS), _subset_of(NODE_KINDS)),

@@ -43,7 +43,11 @@ def test_fit_json_stores_latest(home, repo, capsys):
     _fill(home, repo)
     assert main(["--home", str(home.root), "fit", "--json"]) == 0
     out = json.loads(capsys.readouterr().out)
-    assert set(out["baselines"]) == {"chance", "frequency", "centrality", "time_links"}
+    rivals = {"chance", "most_visited", "frequency", "centrality", "time_links", "actr"}
+    assert set(out["baselines"]) == rivals
+    # --json carries the paired model-minus-rival differences
+    assert set(out["paired"]) == rivals
+    assert set(out["paired"]["frequency"]) == {"loglik", "agreement", "accuracy"}
     assert out["n_trials"] == 60
     v = Vault.open(home)
     stored = v.get("fits", "latest")
@@ -56,6 +60,7 @@ def test_fit_text_prints_the_table(home, repo, capsys):
     assert main(["--home", str(home.root), "fit", "--no-store"]) == 0
     text = capsys.readouterr().out
     assert "cue-biased eigenvector" in text and "chance" in text
+    assert "model minus rival" in text and "ACT-R base level" in text
 
 
 def test_fit_without_trials_exits_with_data_error(home, repo, capsys):

@@ -193,7 +193,8 @@ def test_fit_beats_chance_with_interval_excluding_chance(fitted):
 
 
 def test_fit_reports_every_baseline_on_the_same_trials(fitted):
-    assert set(fitted.baselines) == {"chance", "frequency", "centrality", "time_links"}
+    assert set(fitted.baselines) == {"chance", "most_visited", "frequency", "centrality", "time_links", "actr"}
+    assert set(fitted.paired) == set(fitted.baselines)
     n = fitted.cv["pooled"]["n"]
     for res in fitted.baselines.values():
         assert res["pooled"]["n"] == n

@@ -48,6 +48,8 @@ SCREEN = 8  # random draws screened per restart
 # line-search steps per iteration (default 20): at a jump of the piecewise-smooth
 # objective extra steps only spend evaluations without getting past it
 MAXLS = 10
+# log β of the two starts taken from the nested β = 0 fit (β relative to λ1)
+LOG_BETA_BOUNDS_START = (np.log(0.01), np.log(0.2))
 
 
 class Chance:
@@ -187,7 +189,7 @@ class EigenModel:
         values = np.array([negative_log_likelihood(self.spec, cache, q) + self.spec.penalty(q)[0]
                            for q in draws])
         best_draws = [draws[i] for i in np.argsort(values)[: self.restarts - 1]]
-        starts = [self.spec.start()] + best_draws
+        starts = [self.spec.start()] + best_draws + self._nested_starts(design, rng)
         best, self.runs = None, []
         for p0 in starts:
             res = minimize(f, p0, jac=True, method="L-BFGS-B", bounds=self.spec.bounds(),
@@ -200,6 +202,26 @@ class EigenModel:
         self.converged = bool(best.success)
         self.n_eigh = cache.n_eigh
         return self
+
+    def _nested_starts(self, design: TrialDesign, rng) -> list:
+        """Starts at the fitted β = 0 (centrality) model with small β.
+
+        The β = 0 model is nested in this one, and for small β the likelihood is
+        flat in β (the cue barely moves the eigenvector), so a local method
+        started at moderate β never reaches the region where the nested model
+        is good.  Starting there too makes the in-sample fit at least as good as
+        the nested one (up to the prior).
+        """
+        spec = self.spec
+        if not (spec.fit_beta and spec.free):
+            return []
+        sub = ModelSpec(spec.graph, weights=spec.weights, reference=spec.reference, zero=spec.zero,
+                        fit_beta=False, beta_fixed=0.0, name="nested", prior=spec.prior,
+                        beta_relative=spec.beta_relative)
+        inner = EigenModel(sub, restarts=1, seed=self.seed, maxiter=self.maxiter).fit(design, rng=rng)
+        theta_p, tau_p = inner.p[:-1], inner.p[-1]
+        lo, hi = LOG_BETA_BOUNDS_START
+        return [np.concatenate([theta_p, [b], [tau_p]]) for b in (lo, hi)]
 
     def log_probabilities(self, design: TrialDesign) -> np.ndarray:
         return model_log_probabilities(self.spec, ActivationCache(self.spec.graph, design), self.p)

@@ -20,6 +20,8 @@ loglik
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 
 from ..errors import DataError
@@ -84,23 +86,90 @@ def chance_metrics(design: TrialDesign, rows) -> dict:
     return {"agreement": float(np.mean(1.0 / m)), "loglik": float(np.mean(-np.log(m)))}
 
 
-def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0) -> dict:
+def _fit_job(pred, train: TrialDesign, test: TrialDesign | None, rng_key):
+    """One fit (in a worker process or inline): the fitted predictor and its held-out log-probabilities."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        fit = pred.fit(train, rng=np.random.default_rng(rng_key))
+        return fit, (fit.log_probabilities(test) if test is not None else None)
+
+
+def default_jobs() -> int:
+    """Worker processes: the cores this process may use."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def run_fits(jobs: list, n_jobs: int | None = None) -> list:
+    """Run ``(predictor, train, test, rng_key)`` fits, in worker processes when ``n_jobs > 1``.
+
+    Every job is seeded by its own key, so results do not depend on ``n_jobs``
+    or on the order the workers finish.  Cheap predictors (no ``restarts``
+    attribute) always run inline.
+    """
+    n_jobs = default_jobs() if n_jobs is None else int(n_jobs)
+    results: list = [None] * len(jobs)
+    heavy = [i for i, j in enumerate(jobs) if hasattr(j[0], "restarts")]
+    light = [i for i in range(len(jobs)) if i not in set(heavy)]
+    if n_jobs > 1 and len(heavy) > 1:
+        import multiprocessing as mp
+        from concurrent.futures import ProcessPoolExecutor
+
+        ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
+        with ProcessPoolExecutor(max_workers=min(n_jobs, len(heavy)), mp_context=ctx) as ex:
+            # longest first: the model's fits before the rivals'
+            futs = {i: ex.submit(_fit_job, *jobs[i]) for i in heavy}
+            for i in light:
+                results[i] = _fit_job(*jobs[i])
+            for i, fut in futs.items():
+                results[i] = fut.result()
+    else:
+        for i in range(len(jobs)):
+            results[i] = _fit_job(*jobs[i])
+    return results
+
+
+def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0, *,
+                   n_jobs: int | None = 1, in_sample: bool = False) -> dict:
     """Fit every predictor on k-1 folds and score it on the held-out fold.
 
     Returns ``{name: {"folds": [...], "pooled": {...}}}`` plus, under
-    ``"_folds"``, the fold sizes.  Pooled metrics are over all held-out
-    predictions together.
+    ``"_folds"``, the fold sizes, under ``"_lp"`` every predictor's pooled
+    held-out log-probabilities and under ``"_rows"`` the held-out rows.  Pooled
+    metrics are over all held-out predictions together.  With ``in_sample``
+    each predictor is also fitted on every answered trial, returned under
+    ``"_fitted"`` (name -> fitted predictor).  Fits run in ``n_jobs`` worker
+    processes (None: every usable core).
     """
+    import copy
+
     folds = day_folds(design, k, seed)
     all_ans = np.flatnonzero(design.answered)
-    out = {}
-    for name, pred in predictors.items():
-        pooled_lp = np.full(design.opt_mask.shape, -np.inf)
-        per_fold = []
+    jobs, where = [], []
+    for p_i, (name, pred) in enumerate(predictors.items()):
+        if in_sample:
+            jobs.append((copy.deepcopy(pred), design.subset(all_ans), None, [seed, 12345]))
+            where.append((name, None))
         for f, test in enumerate(folds):
             train = np.setdiff1d(all_ans, test)
-            fit = pred.fit(design.subset(train), rng=np.random.default_rng([seed, f, len(out)]))
-            lp_test = fit.log_probabilities(design.subset(test))
+            jobs.append((copy.deepcopy(pred), design.subset(train), design.subset(test), [seed, f, p_i]))
+            where.append((name, f))
+    results = run_fits(jobs, n_jobs)
+    out: dict = {}
+    lps, fitted = {}, {}
+    for name in predictors:
+        pooled_lp = np.full(design.opt_mask.shape, -np.inf)
+        per_fold = []
+        for (nm, f), (fit, lp_test) in zip(where, results, strict=True):
+            if nm != name:
+                continue
+            if f is None:
+                fitted[name] = fit
+                continue
+            test = folds[f]
             pooled_lp[test] = lp_test
             m = metrics(pooled_lp, design, np.random.default_rng([seed, f, 7]), rows=test)
             m.pop("_per_trial")
@@ -111,5 +180,10 @@ def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0)
         pooled = metrics(pooled_lp, design, np.random.default_rng([seed, 99]), rows=rows)
         pooled.pop("_per_trial")
         out[name] = {"folds": per_fold, "pooled": pooled}
+        lps[name] = pooled_lp
     out["_folds"] = [len(f) for f in folds]
+    out["_lp"] = lps
+    out["_rows"] = np.concatenate(folds)
+    if in_sample:
+        out["_fitted"] = fitted
     return out

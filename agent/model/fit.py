@@ -15,16 +15,15 @@ import numpy as np
 from scipy.sparse.csgraph import connected_components
 
 from ..errors import DataError
-from .baselines import default_predictors
+from .compare import information_criteria, paired_differences
 from .crossval import chance_metrics, cross_validate
+from .rivals import LABELS as RIVAL_LABELS
+from .rivals import model_and_rivals
 from .design import TrialDesign, as_model_graph, cue_kind_weights
 
 DEFAULT_FOLDS = 5
-DEFAULT_RESTARTS = 4
-BASELINES = ("chance", "frequency", "centrality", "time_links")
-LABELS = {"model": "cue-biased eigenvector", "chance": "chance (1/options)",
-          "frequency": "frequency (hour x weekday)", "centrality": "centrality (beta = 0)",
-          "time_links": "time-place links only"}
+DEFAULT_RESTARTS = 2
+LABELS = {"model": "cue-biased eigenvector", **RIVAL_LABELS}
 
 
 @dataclass
@@ -41,6 +40,9 @@ class FitResult:
     chance_level: dict = field(default_factory=dict)
     participant_accuracy: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
+    paired: dict = field(default_factory=dict)
+    in_sample: dict = field(default_factory=dict)
+    recovery: dict | None = None
 
     def to_dict(self) -> dict:
         """JSON-ready record (``docs/architecture.md``, Model; stored as vault ``fits/latest``)."""
@@ -49,6 +51,7 @@ class FitResult:
             "n_trials": self.n_trials, "n_answered": self.n_answered, "n_skipped": self.n_skipped,
             "fit": self.fit, "chance_level": self.chance_level,
             "participant_accuracy": self.participant_accuracy, "notes": self.notes,
+            "paired": self.paired, "in_sample": self.in_sample, "recovery": self.recovery,
         })
 
     def table(self) -> str:
@@ -64,6 +67,7 @@ class FitResult:
         return _plain({"params": {k: self.params[k] for k in ("theta", "beta", "tau")},
                        "n_answered": self.n_answered, "model": pooled(self.cv),
                        "baselines": {k: pooled(v) for k, v in self.baselines.items()},
+                       "paired_loglik": {k: v["loglik"] for k, v in self.paired.items()},
                        "chance_level": self.chance_level})
 
 
@@ -88,7 +92,8 @@ def _policy_int(policy, section, key, default):
 
 
 def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episodes=None,
-              folds: int | None = None, restarts: int | None = None) -> FitResult:
+              folds: int | None = None, restarts: int | None = None,
+              weights: str = "grouped", n_jobs: int | None = None) -> FitResult:
     """Fit the model on the participant's choices; cross-validate it and the baselines.
 
     Parameters
@@ -102,17 +107,25 @@ def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episode
     seed : int
         Seeds restarts, fold assignment and bootstrap.
     episodes : sequence of dict, optional
-        For the frequency baseline; without them the graph's counts are used.
+        For the rivals that count visits (most-visited, frequency, ACT-R);
+        without them the frequency rival uses the graph's counts and the others
+        are left out.
+    weights : {"grouped", "full"}
+        Type-pair weight classes (default) or one weight per kind pair.
+    n_jobs : int, optional
+        Worker processes for the fits (default: every usable core).
     """
     from threadpoolctl import threadpool_limits
 
     # graphs here have tens to hundreds of nodes: one BLAS thread is faster than
     # several (thread start-up dominates an eigh of that size)
     with threadpool_limits(limits=1, user_api="blas"):
-        return _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts)
+        return _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts, weights,
+                          n_jobs)
 
 
-def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts) -> FitResult:
+def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts, weights,
+               n_jobs) -> FitResult:
     t0 = time.perf_counter()
     mg = as_model_graph(graph)
     if not mg.type_pairs:
@@ -125,19 +138,27 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
     r = restarts if restarts is not None else _policy_int(policy, "model", "restarts", DEFAULT_RESTARTS)
     notes = []
 
-    preds = default_predictors(mg, episodes=episodes, restarts=r, seed=seed)
-    full = default_predictors(mg, restarts=r, seed=seed)["model"].fit(design.subset(np.flatnonzero(design.answered)),
-                              rng=np.random.default_rng([seed, 12345]))
-    theta, beta, tau = full.unpacked()
-    params = {"theta": full.spec.theta_dict(theta), "beta": beta, "tau": tau,
-              "theta_groups": full.spec.group_dict(full.p), "weights": full.spec.weights,
-              "reference_pair": _ref_name(full.spec),
+    preds = model_and_rivals(mg, episodes=episodes, restarts=r, seed=seed, weights=weights)
+    cv_all = cross_validate(preds, design, k, seed, n_jobs=n_jobs, in_sample=True)
+    full = cv_all.pop("_fitted")
+    answered = design.subset(np.flatnonzero(design.answered))
+    in_sample = {}
+    for name, pred in full.items():
+        lp = pred.log_probabilities(answered)
+        nll = float(-lp[np.arange(n_ans), answered.choice_pos].sum())
+        in_sample[name] = information_criteria(nll, pred.n_params, n_ans)
+    model = full["model"]
+    theta, beta, tau = model.unpacked()
+    params = {"theta": model.spec.theta_dict(theta), "beta": beta, "tau": tau,
+              "theta_groups": model.spec.group_dict(model.p), "weights": model.spec.weights,
+              "reference_pair": _ref_name(model.spec), "beta_relative_to_lambda1": model.spec.beta_relative,
               "activation": "unit-norm eigenvector; scores ln(a_k + eps mean a) over the options",
-              "cue_weights": dict(cue_kind_weights(mg))}
+              "cue_weights": dict(cue_kind_weights(mg)),
+              "rivals": {k: v.params() for k, v in full.items() if k != "model"}}
     t_full = time.perf_counter() - t0
-
-    cv_all = cross_validate(preds, design, k, seed)
     fold_sizes = cv_all.pop("_folds")
+    lps, held = cv_all.pop("_lp"), cv_all.pop("_rows")
+    paired = paired_differences(lps, design, held, seed=seed)
     if len(fold_sizes) < k:
         notes.append(f"only {len(fold_sizes)} days with answers: {len(fold_sizes)} folds instead of {k}")
     if design.missing_options:
@@ -151,8 +172,8 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
         notes.append(f"the capped graph has {n_comp} connected components (largest {sizes.max()} of "
                      f"{mg.n} nodes); the activation can jump between components as beta changes, "
                      f"so the likelihood is only piecewise smooth")
-    if preds["frequency"].source != "episodes":
-        notes.append(f"frequency baseline from {preds['frequency'].source} (no episodes given)")
+    if episodes is None:
+        notes.append("no episodes given: frequency from the graph's counts; most-visited and ACT-R left out")
 
     rows = np.flatnonzero(design.answered)
     ans = design.answered
@@ -162,11 +183,12 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
     return FitResult(
         params=params,
         cv=cv_all["model"],
-        baselines={name: cv_all[name] for name in BASELINES},
+        baselines={name: cv_all[name] for name in preds if name != "model"},
         n_trials=len(design), n_answered=n_ans, n_skipped=len(design) - n_ans,
-        fit={"nll": full.nll, "n_params": full.n_params, "restarts": r, "runs": full.runs,
-             "converged": full.converged, "folds": len(fold_sizes), "fold_sizes": fold_sizes,
-             "seconds_full_fit": round(t_full, 3), "seconds_total": round(time.perf_counter() - t0, 3),
+        paired=paired, in_sample=in_sample,
+        fit={"nll": model.nll, "n_params": model.n_params, "restarts": r, "runs": model.runs,
+             "converged": model.converged, "folds": len(fold_sizes), "fold_sizes": fold_sizes,
+             "seconds_fits": round(t_full, 3), "seconds_total": round(time.perf_counter() - t0, 3),
              "n_nodes": mg.n, "components": int(n_comp), "type_pairs": [f"{a}|{b}" for a, b in mg.type_pairs]},
         chance_level=chance_metrics(design, rows),
         participant_accuracy=_prop(pa, n_ans),
@@ -194,31 +216,65 @@ def _fmt_ll(m) -> str:
     return f"{v:6.3f} [{lo:5.2f}, {hi:5.2f}]" if lo is not None else f"{v:6.3f}"
 
 
+def _fmt_diff(m) -> str:
+    v, ci = m.get("value"), m.get("ci") or [None, None]
+    if v is None:
+        return "-"
+    return f"{v:+6.3f} [{ci[0]:+5.2f}, {ci[1]:+5.2f}]"
+
+
+def _fmt_rec(r) -> str:
+    if not r:
+        return ""
+    mark = "identifiable" if r.get("identifiable") else "NOT identifiable"
+    return (f"   (recovery r {r['r']:.2f}, bias {r['bias']:+.2f}, RMSE {r['rmse']:.2f}: {mark})"
+            if r.get("r") is not None else f"   (recovery: {mark})")
+
+
 def render_table(d: dict) -> str:
     """Plain-text table: model vs each baseline, held-out, with 95 % intervals."""
     p = d["params"]
     lines = [f"memory model fit: {d['n_answered']} answered trials ({d['n_skipped']} skipped), "
              f"{d['fit'].get('folds')}-fold cross-validation by day",
              "",
-             f"{'predictor':<28} {'agreement [95% CI]':<22} {'accuracy [95% CI]':<22} "
+             f"{'predictor':<33} {'agreement [95% CI]':<22} {'accuracy [95% CI]':<22} "
              f"{'held-out loglik [95% CI]':<24}"]
     rows = [("model", d["cv"])] + list(d["baselines"].items())
     for name, res in rows:
         pooled = res["pooled"]
-        lines.append(f"{LABELS.get(name, name):<28} {_fmt_prop(pooled['agreement']):<22} "
+        lines.append(f"{LABELS.get(name, name):<33} {_fmt_prop(pooled['agreement']):<22} "
                      f"{_fmt_prop(pooled['accuracy']):<22} {_fmt_ll(pooled['loglik']):<24}")
     cl = d.get("chance_level", {})
     if cl:
-        lines.append(f"{'(chance level)':<28} {cl['agreement']:5.3f}{'':<17} {cl['agreement']:5.3f}"
+        lines.append(f"{'(chance level)':<33} {cl['agreement']:5.3f}{'':<17} {cl['agreement']:5.3f}"
                      f"{'':<17} {cl['loglik']:6.3f}")
     pa = d.get("participant_accuracy")
     if pa:
-        lines.append(f"{'(participant accuracy)':<28} {'':<22} {_fmt_prop(pa):<22}")
+        lines.append(f"{'(participant accuracy)':<33} {'':<22} {_fmt_prop(pa):<22}")
+    paired = d.get("paired") or {}
+    if paired:
+        lines += ["", "model minus rival, same held-out trials, 95% day-bootstrap interval "
+                      "(positive favours the model); in-sample AIC and BIC:",
+                  f"{'rival':<33} {'loglik per trial':<24} {'agreement':<24} {'accuracy':<24} "
+                  f"{'AIC':>8} {'BIC':>8}"]
+        ins = d.get("in_sample") or {}
+        for name, diff in paired.items():
+            crit = ins.get(name) or {}
+            lines.append(f"{LABELS.get(name, name):<33} {_fmt_diff(diff['loglik']):<24} "
+                         f"{_fmt_diff(diff['agreement']):<24} {_fmt_diff(diff['accuracy']):<24} "
+                         f"{crit.get('aic', float('nan')):8.1f} {crit.get('bic', float('nan')):8.1f}")
+        crit = ins.get("model") or {}
+        if crit:
+            lines.append(f"{LABELS['model']:<33} {'':<24} {'':<24} {'':<24} "
+                         f"{crit['aic']:8.1f} {crit['bic']:8.1f}")
     lines += ["", "parameters (fitted on all answered trials; "
-                  f"{p.get('reference_pair')} fixed to 1):"]
-    for key, val in sorted(p["theta"].items()):
-        lines.append(f"  theta[{key}] = {val:.4g}")
-    lines.append(f"  beta = {p['beta']:.4g}   tau = {p['tau']:.4g}")
+                  f"{p.get('reference_pair')} fixed to 1; beta relative to lambda_1 of W):"]
+    groups = p.get("theta_groups") or {k: v for k, v in p["theta"].items()}
+    rec = (d.get("recovery") or {}).get("params", {})
+    for key, val in groups.items():
+        lines.append(f"  theta[{key}] = {val:.4g}" + _fmt_rec(rec.get(f"theta[{key}]")))
+    lines.append(f"  beta = {p['beta']:.4g}" + _fmt_rec(rec.get("beta")))
+    lines.append(f"  tau = {p['tau']:.4g}" + _fmt_rec(rec.get("tau")))
     for note in d.get("notes", []):
         lines.append(f"note: {note}")
     return "\n".join(lines)
