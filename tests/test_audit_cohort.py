@@ -126,6 +126,9 @@ def test_damaged_received_file_is_data_error(tmp_path):
 
 def test_cli_from_bundles(study, tmp_path, capsys):
     out = tmp_path / "cli"
-    assert main(["audit", "report", "--out", str(out), "--from-bundles", str(study),
-                 "--policy", str(bundled_policy_path("strict"))]) == 0
+    rc = main(["audit", "report", "--out", str(out), "--from-bundles", str(study),
+               "--policy", str(bundled_policy_path("strict"))])
     assert (out / "index.html").is_file()
+    # The exit code follows the verdict (issue 12): 0 only when the report passes.
+    ok = json.loads((out / "report.json").read_text())["ok"]
+    assert rc == (0 if ok else 1)

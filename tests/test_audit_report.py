@@ -141,7 +141,8 @@ def test_page_names_no_content(home, report):
 
 def test_cli_report(home, tmp_path, capsys):
     out = tmp_path / "cli-out"
-    assert main(["audit", "report", "--out", str(out), "--home", str(home)]) == 0
+    # This home has one retention violation: the exit code follows the verdict (issue 12), as for verify.
+    assert main(["audit", "report", "--out", str(out), "--home", str(home)]) == 1
     assert (out / "index.html").is_file()
     assert str(out / "index.html") in capsys.readouterr().out
 

@@ -17,7 +17,7 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass, field
 
-from ..errors import EXIT_FAILURE, EXIT_INTEGRITY, EXIT_OK, PolicyError
+from ..errors import EXIT_FAILURE, EXIT_INTEGRITY, EXIT_OK, LetheError, PolicyError
 from ..home import Home
 
 KIND_ORDER = ("audio", "gps", "accel", "mood", "unknown")
@@ -32,6 +32,20 @@ CHECKS = (
     ("sequence: nothing missing, nothing reordered", ("seq", "order")),
     ("rollback anchor", ("anchor",)),
     ("no truncation", ("truncation",)),
+    ("checkpoint of running counts", ("checkpoint",)),
+    ("log origin (from the enrolment)", ("origin",)),
+)
+
+# What a device-signed ledger can and cannot show, in plain words (docs/ledger.md).
+PROVES = (
+    "What this check can show: the ledger was written by the holder of the device key named above, "
+    "entries were not edited, removed or reordered after they were signed (up to the anchor and the last "
+    "checkpoint), and the destruction times it records are within the policy's limit.",
+    "What it cannot show: that the device recorded every file that arrived, that its clock was right, "
+    "or that the device itself (or whoever controls it and its key) did not write a false but "
+    "well-formed ledger. A ledger started again from scratch is caught by comparing its origin and "
+    "Merkle root with the enrolment and the bundles the study received (--enrolment here, "
+    "'lethe study open' there), not by the device's own files.",
 )
 
 
@@ -80,6 +94,10 @@ class VerifyResult:
     policy_name: str | None = None
     policy_fingerprint: str | None = None
     policy_findings: list = field(default_factory=list)
+    key_source: str = "home"          # where the device public key came from: home, enrolment, given
+    policy_source: str = "home"       # where the policy came from: home, file, given
+    key_storage: str | None = None    # how the home holds its keys (keystore.key_storage)
+    withdrawn: dict | None = None     # the withdrawal certificate's check, for a withdrawn home
 
     @property
     def integrity_ok(self) -> bool:
@@ -91,10 +109,14 @@ class VerifyResult:
 
     @property
     def ok(self) -> bool:
+        if self.withdrawn is not None:
+            return bool(self.withdrawn.get("ok"))
         return self.integrity_ok and self.retention_ok and not self.policy_findings
 
     @property
     def exit_code(self) -> int:
+        if self.withdrawn is not None:
+            return EXIT_OK if self.withdrawn.get("ok") else EXIT_INTEGRITY
         if not self.integrity_ok:
             return EXIT_INTEGRITY
         if not self.retention_ok or self.policy_findings:
@@ -102,6 +124,13 @@ class VerifyResult:
         return EXIT_OK
 
     def verdict(self) -> str:
+        if self.withdrawn is not None:
+            w = self.withdrawn
+            if not w.get("ok"):
+                return f"FAILED: the home was withdrawn but its certificate does not verify ({w.get('error')})."
+            return (f"WITHDRAWN: the participant withdrew at {w['time']}; the certificate is signed by device key "
+                    f"{w['device_key_id']} ({w['key_source']}) and records the ledger's last entry "
+                    f"#{w['ledger_head']['seq']}. Everything else was destroyed, as withdrawal requires.")
         if self.ok:
             return "PASSED: the ledger is intact and every raw item was destroyed within the limit."
         parts = []
@@ -129,12 +158,25 @@ class VerifyResult:
         lines = [f"Ledger verification for {self.home}", ""]
         lines.append(self.verdict())
         lines.append("")
+        if self.withdrawn is not None:
+            w = self.withdrawn
+            if w.get("ok"):
+                lines.append("Destroyed per the certificate: " + ", ".join(
+                    f"{k} {v}" for k, v in sorted(w["counts_destroyed"].items())))
+            return "\n".join(lines).rstrip() + "\n"
+        if self.key_storage == "plain":
+            lines.append("WARNING: this home keeps its keys as plain files (chosen at enrolment); anyone who "
+                         "copied it could sign as the device.")
+            lines.append("")
         lines.append(f"Ledger: {r.entries} entries, head entry {r.head['seq']} ({r.head['hash'][:16]}...)")
         if r.anchor:
             lines.append(f"Anchor: entry {r.anchor['seq']} ({r.anchor['hash'][:16]}...)")
-        lines.append(f"Device key: {r.device_key_id or 'unavailable'}")
+        lines.append(f"Device key: {r.device_key_id or 'unavailable'} (from {self.key_source})")
+        lines.append(f"Merkle log: {r.size} entries, root {r.root[:16]}..., origin "
+                     f"{(r.origin or 'none')[:16]}...")
         if self.policy_fingerprint:
-            lines.append(f"Policy: {self.policy_name}, fingerprint {self.policy_fingerprint}")
+            lines.append(f"Policy: {self.policy_name}, fingerprint {self.policy_fingerprint} "
+                         f"(from {self.policy_source})")
         if r.first_t is not None and r.last_t is not None:
             lines.append(f"Period: {_utc(r.first_t)} to {_utc(r.last_t)} (UTC)")
         lines.append("")
@@ -172,6 +214,8 @@ class VerifyResult:
             lines.append(f"Pending: {len(r.pending)} item(s) received and still within the raw window.")
         for n in r.notes:
             lines.append(f"Note: {n}")
+        lines.append("")
+        lines += list(PROVES)
         return "\n".join(lines).rstrip() + "\n"
 
     def as_dict(self) -> dict:
@@ -182,52 +226,116 @@ class VerifyResult:
                 "integrity_ok": self.integrity_ok, "retention_ok": self.retention_ok,
                 "policy": {"name": self.policy_name, "fingerprint": self.policy_fingerprint},
                 "checks": [{"check": w, "ok": ok} for w, ok in self.checks()],
-                "policy_findings": list(self.policy_findings), "ledger": d}
+                "policy_findings": list(self.policy_findings), "ledger": d,
+                "key_source": self.key_source, "policy_source": self.policy_source,
+                "key_storage": self.key_storage, "withdrawn": self.withdrawn, "limits_of_proof": list(PROVES)}
 
 
 def _utc(t: float) -> str:
     return time.strftime("%Y-%m-%d %H:%M", time.gmtime(t))
 
 
-def verify_home(home, policy=None, public_key=None, now: float | None = None) -> VerifyResult:
+def _withdrawn(home: Home, enrolment: dict | None) -> dict | None:
+    """The withdrawal certificate's check when the home was withdrawn (its ledger is gone), else None."""
+    from ..participant.withdraw import CERT_NAME
+    from ..study.withdrawal import load_withdrawal, verify_withdrawal_signature
+
+    cert_path = home.root / CERT_NAME
+    if not cert_path.exists() or home.ledger_path.exists():
+        return None
+    key_source = "the enrolment" if enrolment is not None else "the certificate itself"
+    try:
+        cert = load_withdrawal(cert_path)
+        check = verify_withdrawal_signature(
+            cert, enrolment["device_public_key"] if enrolment is not None else None, str(cert_path))
+    except LetheError as e:
+        return {"ok": False, "error": str(e), "certificate": str(cert_path)}
+    return {"ok": True, "certificate": str(cert_path), "time": check.time, "device_key_id": check.device_key_id,
+            "key_source": key_source, "ledger_head": check.ledger_head, "counts_destroyed": check.counts_destroyed,
+            "pseudonym": check.pseudonym}
+
+
+def verify_home(home, policy=None, public_key=None, now: float | None = None, *, enrolment=None,
+                workers: int | None = None) -> VerifyResult:
     """Verify a home's ledger against its policy (or ``policy``).
 
     Parameters
     ----------
     home : Home or path-like
         A lethe home or a copy of one.  Only ``ledger.jsonl``, ``ledger.head``,
-        ``keys/device.pub`` and ``policy.toml`` are read.
-    policy : agent.policy.Policy, optional
-        The limit to judge retention by; default the home's ``policy.toml``.
+        ``ledger.checkpoint``, ``keys/device.pub``, the key files' descriptions
+        (never a secret) and ``policy.toml`` are read.
+    policy : agent.policy.Policy or path-like, optional
+        The approved policy to judge retention by (the study's copy); default
+        the home's ``policy.toml``.  With a study policy, the policy the
+        agent recorded in its ledger must be this one.
     public_key : optional
-        Device public key; default ``HOME/keys/device.pub``.
+        Device public key; default the enrolment's, else ``HOME/keys/device.pub``.
     now : float, optional
         Unix seconds for judging items not yet destroyed; default now.
+    enrolment : dict or path-like, optional
+        The device's enrolment file as the study holds it: its device key is
+        used instead of the home's copy, and the ledger must start at its
+        ``log_origin``.
+    workers : int, optional
+        Processes for signature verification (default one per core).
 
     Returns
     -------
     VerifyResult
     """
+    from ..keystore import key_storage
     from ..ledger import verify_ledger
+    from ..policy import load_policy
 
     home = home if isinstance(home, Home) else Home(home)
-    from_home = policy is None
     findings = []
-    if from_home and home.policy_path.exists():
+    key_source = "home"
+    if enrolment is not None and not isinstance(enrolment, dict):
+        from ..study.card import load_enrolment
+
+        enrolment = load_enrolment(enrolment)
+    if enrolment is not None and public_key is None:
+        public_key, key_source = enrolment["device_public_key"], "enrolment"
+    elif public_key is not None:
+        key_source = "given"
+    policy_source = "home" if policy is None else "given"
+    if policy is not None and not hasattr(policy, "fingerprint"):
+        policy, policy_source = load_policy(policy), "file"
+    from_home = policy is None
+    withdrawn = _withdrawn(home, enrolment)
+    if from_home and home.policy_path.exists() and withdrawn is None:
         try:
             policy = home.load_policy()
         except PolicyError as e:
             findings.append({"check": "policy", "message": f"the home's policy does not load: {e}"})
             policy = None
-    report = verify_ledger(home, public_key=public_key, policy=policy, now=now)
+    report = verify_ledger(home, public_key=public_key, policy=policy if policy is not None else (
+        None if withdrawn is None else 0.0), now=now, workers=workers)
     result = VerifyResult(report, str(home.root),
                           policy.policy.name if policy is not None else None,
-                          policy.fingerprint if policy is not None else None, findings)
-    if from_home and policy is not None and report.policies:
+                          policy.fingerprint if policy is not None else None, findings,
+                          key_source=key_source, policy_source=policy_source, key_storage=key_storage(home),
+                          withdrawn=withdrawn)
+    if withdrawn is not None:
+        return result
+    origin = (enrolment or {}).get("log_origin")
+    if origin and report.origin != origin:
+        report.problems.append({"seq": None, "check": "origin",
+                                "message": f"the ledger starts at entry hash {(report.origin or 'none')[:16]}..., "
+                                           f"not at the origin the enrolment recorded ({origin[:16]}...): the "
+                                           f"device started a new ledger"})
+        report.ok = False
+    if enrolment is not None and policy is not None and policy.fingerprint != enrolment.get("policy_fingerprint"):
+        findings.append({"check": "policy",
+                         "message": f"the policy given (fingerprint {policy.fingerprint[:16]}...) is not the one "
+                                    f"the device enrolled under ({str(enrolment.get('policy_fingerprint'))[:16]}...)"})
+    if policy is not None and report.policies:
         recorded = report.policies[-1]["fingerprint"]
         if recorded != policy.fingerprint:
+            what = "the home's policy.toml" if from_home else "the approved policy"
             findings.append({"check": "policy",
-                             "message": f"the home's policy.toml (fingerprint {policy.fingerprint[:16]}...) is not "
+                             "message": f"{what} (fingerprint {policy.fingerprint[:16]}...) is not "
                                         f"the policy the agent last recorded (entry {report.policies[-1]['seq']}, "
                                         f"fingerprint {recorded[:16]}...)"})
     return result

@@ -24,6 +24,11 @@ def register(sub) -> None:
     ver = ps.add_parser("verify", help="verify a home's ledger: chain, signatures, destruction, retention")
     ver.add_argument("--home", dest="audit_home", metavar="DIR",
                      help="the home (or a copy of it) to verify; no passphrase is needed")
+    ver.add_argument("--enrolment", metavar="FILE",
+                     help="the device's enrolment file as the study holds it: its device key and log origin are "
+                          "used instead of the home's own copies")
+    ver.add_argument("--policy", dest="audit_policy", metavar="FILE",
+                     help="the approved policy (the study's copy) instead of the home's policy.toml")
     add_json(ver)
     ver.set_defaults(func=_verify)
 
@@ -77,7 +82,7 @@ def _diff(args) -> int:
 def _verify(args) -> int:
     from ..audit.verify import verify_home
 
-    result = verify_home(_home(args))
+    result = verify_home(_home(args), policy=args.audit_policy, enrolment=args.enrolment)
     emit(args, result.as_dict(), result.text())
     return result.exit_code
 
@@ -100,4 +105,9 @@ def _report(args) -> int:
     figures = json.loads((path.parent / "report.json").read_text("utf-8"))
     verdict = figures.get("verdict") or ("PASSED" if figures.get("ok") else "FAILED")
     emit(args, {"report": str(path), "ok": figures.get("ok")}, f"{what} written to {path}\n{verdict}")
-    return 0
+    # The exit code follows the verdict, as for 'lethe audit verify' (docs/cli.md).
+    if "exit_code" in figures:
+        return int(figures["exit_code"])
+    from ..errors import EXIT_FAILURE
+
+    return 0 if figures.get("ok") else EXIT_FAILURE
