@@ -224,12 +224,24 @@ def test_fingerprint_counts_defaults_as_given():
 
 
 def test_fingerprint_definition():
-    # docs/policy.md: SHA-256 of canonical JSON (sorted keys, no whitespace) of the
-    # resolved policy.  hashlib is checked against FIPS 180-4 by CPython itself.
+    # docs/policy.md: SHA-256 of the RFC 8785 canonical JSON of the resolved policy.
+    # For this document (ASCII keys, numbers without exponents) RFC 8785 section 3.2
+    # reduces to: keys sorted, no whitespace, integral numbers without ".0"
+    # (ECMAScript Number::toString), strings with minimal escapes.  hashlib is
+    # checked against FIPS 180-4 by CPython itself.
     import hashlib
 
+    def jcs_numbers(v):
+        if isinstance(v, dict):
+            return {k: jcs_numbers(x) for k, x in v.items()}
+        if isinstance(v, list):
+            return [jcs_numbers(x) for x in v]
+        if isinstance(v, float) and v.is_integer() and abs(v) < 1e21:
+            return int(v)
+        return v
+
     p = load_policy(DEFAULT)
-    doc = json.dumps(p.as_dict(), sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+    doc = json.dumps(jcs_numbers(p.as_dict()), sort_keys=True, separators=(",", ":"), ensure_ascii=False)
     assert hashlib.sha256(doc.encode("utf-8")).hexdigest() == p.fingerprint
     assert " " not in doc.replace(p.study.consent_text, "").replace(p.policy.description, "") \
         .replace(p.study.contact, "")

@@ -1,0 +1,306 @@
+"""Format contracts: one JSON Schema (draft 2020-12) per document format, and one validator.
+
+The schemas are package data (``agent/contracts/schemas/<name>.json``) so that
+a researcher or an ethics board can check a file from R or any other language
+with an off-the-shelf JSON Schema validator.  Inside lethe every format is
+checked by :func:`validate`, whose errors say, as before, which file, which key
+and what was expected::
+
+    policy.toml: [retention.raw_seconds] value 0.5 is out of range: expected >= 1.0
+
+Rules that relate two values of one document (a scale's minimum below its
+maximum, a fingerprint that must match a key) are not expressible in JSON
+Schema; the module that owns the format checks them after :func:`validate`
+and its documentation lists them.
+
+Annotations of our own (ignored by other validators) refine the messages:
+
+``x-lethe-member``
+    on an object: what its members are called in messages (``section``, ``key``,
+    ``field``); default ``field``.
+``x-lethe-expected``
+    on any schema: the words for what was expected when a ``pattern`` or
+    ``format`` fails.
+``x-lethe-unit``, ``x-lethe-stricter``
+    documentation only: the unit of a number and which direction keeps or
+    sends less (used by ``docs/policy.md`` and ``lethe audit diff``).
+"""
+
+from __future__ import annotations
+
+import difflib
+import json
+import math
+from collections.abc import Callable, Iterator
+from contextlib import suppress
+from functools import cache
+from importlib import resources
+from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from jsonschema import Draft202012Validator, FormatChecker
+from jsonschema.exceptions import ValidationError
+
+from ..errors import DataError
+
+__all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "iter_problems", "schema", "validate"]
+
+SCHEMA_NAMES = ("policy",)
+
+
+class ContractError(DataError):
+    """A document that does not meet its schema: ``source``, dotted ``key`` and ``message``."""
+
+    def __init__(self, source, key: str, message: str):
+        self.path = str(source)
+        self.source = str(source)
+        self.key = key
+        self.reason = message
+        super().__init__(f"{self.source}: [{key}] {message}")
+
+
+# -- schemas -----------------------------------------------------------------------------
+@cache
+def schema(name: str) -> dict:
+    """The parsed JSON Schema document called ``name`` (see :data:`SCHEMA_NAMES`)."""
+    if name not in SCHEMA_NAMES:
+        raise ValueError(f"unknown contract {name!r}; known: {', '.join(SCHEMA_NAMES)}")
+    text = resources.files(__package__).joinpath("schemas", f"{name}.json").read_text("utf-8")
+    return json.loads(text)
+
+
+_FORMATS = FormatChecker(formats=())
+
+
+@_FORMATS.checks("iana-time-zone", raises=(ZoneInfoNotFoundError, ValueError))
+def _is_time_zone(value) -> bool:
+    if not isinstance(value, str):
+        return True
+    ZoneInfo(value)
+    return True
+
+
+_FORMAT_WORDS = {"iana-time-zone": "an IANA time zone name such as 'Europe/Lisbon'"}
+
+
+@cache
+def _validator(name: str) -> Draft202012Validator:
+    doc = schema(name)
+    Draft202012Validator.check_schema(doc)
+    return Draft202012Validator(doc, format_checker=_FORMATS)
+
+
+# -- messages ----------------------------------------------------------------------------
+_TYPE_WORDS = {"number": "a number", "integer": "an integer", "string": "a string", "boolean": "true or false",
+               "array": "a list", "object": "an object", "null": "null"}
+
+
+def _dotted(path) -> str:
+    """Dotted object keys up to the first list index (a list is named as a whole)."""
+    parts = []
+    for p in path:
+        if isinstance(p, int):
+            break
+        parts.append(str(p))
+    return ".".join(parts)
+
+
+def _index(path) -> int | None:
+    for p in path:
+        if isinstance(p, int):
+            return p
+    return None
+
+
+def _type_words(t, syntax: str) -> str:
+    ts = t if isinstance(t, list) else [t]
+    words = []
+    for x in ts:
+        w = _TYPE_WORDS.get(x, x)
+        if x == "object" and syntax == "toml":
+            w = "a table"
+        words.append(w)
+    return " or ".join(words)
+
+
+def _show(value) -> str:
+    r = repr(value)
+    return r if len(r) <= 80 else r[:77] + "..."
+
+
+def _member_noun(schema_obj: dict) -> str:
+    return schema_obj.get("x-lethe-member", "field")
+
+
+def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
+    """(dotted key, message) for one jsonschema error."""
+    path = list(err.absolute_path)
+    key = _dotted(path)
+    idx = _index(path)
+    where = f"item {idx} " if idx is not None else ""
+    v, kw, sch = err.instance, err.validator, err.schema
+    if kw == "additionalProperties":
+        allowed = list(sch.get("properties", {}))
+        extra = [k for k in v if k not in allowed] if isinstance(v, dict) else []
+        name = extra[0] if extra else "?"
+        noun = _member_noun(sch)
+        near = difflib.get_close_matches(name, allowed, n=1, cutoff=0.75)
+        hint = f" (did you mean {near[0]!r}?)" if near else ""
+        dotted = f"{key}.{name}" if key else name
+        inside = f" in [{key}]" if key else ""
+        plural = {"section": "sections", "key": "keys"}.get(noun, "fields")
+        what = f"unknown {noun} [{name}]" if noun == "section" else f"unknown {noun}"
+        return dotted, f"{what}{hint}; allowed {plural}{inside}: {', '.join(allowed)}"
+    if kw == "required":
+        missing = [k for k in err.validator_value if isinstance(v, dict) and k not in v]
+        name = missing[0] if missing else "?"
+        sub = sch.get("properties", {}).get(name, {})
+        noun = _member_noun(sch)
+        dotted = f"{key}.{name}" if key else name
+        if sub.get("type") == "object":
+            return dotted, f"missing {_member_noun(sch)} [{name}]"
+        desc = sub.get("description") or _type_words(sub.get("type", "?"), syntax)
+        return dotted, f"required {noun} is missing ({desc.rstrip('.')})"
+    if kw == "type":
+        if sch.get("type") == "object" and syntax == "toml":
+            return key, f"expected a table [{key}], got {type(v).__name__}"
+        return key, f"{where}value {_show(v)} has the wrong type: expected {_type_words(sch['type'], syntax)}"
+    if kw in ("minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum"):
+        sign = {"minimum": ">=", "maximum": "<=", "exclusiveMinimum": ">", "exclusiveMaximum": "<"}[kw]
+        return key, f"{where}value {_show(v)} is out of range: expected {sign} {err.validator_value}"
+    if kw == "const":
+        return key, f"{where}value {_show(v)} is not allowed: expected {_show(err.validator_value)}"
+    if kw == "enum":
+        choices = ", ".join(repr(c) for c in err.validator_value)
+        if idx is not None:
+            return key, f"value {_show(_parent_list(err))} is out of range: expected a list drawn from " \
+                        f"{list(err.validator_value)} (unknown: {_unknown(err)})"
+        return key, f"value {_show(v)} is out of range: expected one of {choices}"
+    if kw == "uniqueItems":
+        return key, f"value {_show(v)} is out of range: expected a list without repeats"
+    if kw == "minItems":
+        n = err.validator_value
+        return key, f"value {_show(v)} is out of range: expected a non-empty list" if n == 1 else \
+            f"value {_show(v)}: expected at least {n} items"
+    if kw == "maxItems":
+        return key, f"value of {len(v)} items: expected at most {err.validator_value}"
+    if kw in ("minLength", "maxLength"):
+        words = "at least" if kw == "minLength" else "at most"
+        return key, f"{where}value {_show(v)}: expected {words} {err.validator_value} characters"
+    if kw in ("pattern", "format"):
+        expected = sch.get("x-lethe-expected") or (_FORMAT_WORDS.get(err.validator_value) if kw == "format"
+                                                    else f"text matching {err.validator_value}")
+        if idx is not None:
+            return key, f"value {_show(_parent_list(err))} is out of range: expected {expected} (got {_show(v)})"
+        return key, f"value {_show(v)} is out of range: expected {expected}"
+    if kw in ("minProperties", "maxProperties"):
+        return key, f"{err.message}"
+    expected = sch.get("x-lethe-expected")
+    return key, f"{where}value {_show(v)}: expected {expected}" if expected else f"{where}{err.message}"
+
+
+def _parent_list(err: ValidationError):
+    # the list that holds the failing item (err.parent is not set for items; walk from the root)
+    return getattr(err, "_lethe_list", err.instance)
+
+
+def _unknown(err: ValidationError) -> list:
+    lst = _parent_list(err)
+    allowed = err.validator_value
+    return [x for x in lst if x not in allowed] if isinstance(lst, list) else [err.instance]
+
+
+_PRIORITY = {"additionalProperties": 0, "required": 1, "type": 2, "const": 3}
+
+
+def _order(err: ValidationError) -> tuple:
+    # Document order of the path's object keys, then the kind of error: the
+    # first problem a reader meets is reported, unknown names before values.
+    return (len(_dotted(err.absolute_path).split(".")) if _dotted(err.absolute_path) else 0,
+            _PRIORITY.get(err.validator, 9))
+
+
+def _non_finite(obj, path=()) -> Iterator[tuple[tuple, float]]:
+    if isinstance(obj, float) and not math.isfinite(obj):
+        yield path, obj
+    elif isinstance(obj, dict):
+        for k, v in obj.items():
+            yield from _non_finite(v, (*path, k))
+    elif isinstance(obj, list):
+        for i, v in enumerate(obj):
+            yield from _non_finite(v, (*path, i))
+
+
+def _lookup(root, path):
+    for p in path:
+        root = root[p]
+    return root
+
+
+def iter_problems(name: str, obj: Any, *, syntax: str = "json") -> Iterator[tuple[str, str]]:
+    """Every ``(dotted key, message)`` problem of ``obj`` against schema ``name``, most relevant first."""
+    for path, v in _non_finite(obj):
+        key = _dotted(path)
+        yield key, f"value {v!r} is not allowed: expected a finite number"
+    errors = list(_validator(name).iter_errors(obj))
+    for e in errors:
+        p = list(e.absolute_path)
+        if p and isinstance(p[-1], int):
+            with suppress(KeyError, IndexError, TypeError):
+                e._lethe_list = _lookup(obj, p[:-1])  # type: ignore[attr-defined]
+    order = {id(e): i for i, e in enumerate(errors)}
+    for e in sorted(errors, key=lambda e: (*_order(e), order[id(e)])):
+        yield _message(e, syntax)
+
+
+def validate(name: str, obj: Any, source, *, syntax: str = "json",
+             error: Callable[[Any, str, str], Exception] = ContractError) -> Any:
+    """Check ``obj`` against the schema ``name``; raise for its first problem.
+
+    Parameters
+    ----------
+    name : str
+        One of :data:`SCHEMA_NAMES`.
+    obj : object
+        The parsed document (from :mod:`json` or :mod:`tomllib`).
+    source : str or path-like
+        What to call the document in the error: its file name, or a request.
+    syntax : {"json", "toml"}
+        Words for the messages: a TOML object is a "table".
+    error : callable
+        ``error(source, dotted_key, message)`` builds the exception raised;
+        :class:`ContractError` (a :class:`~agent.errors.DataError`) by default,
+        :class:`~agent.errors.PolicyError` for policies.
+
+    Returns
+    -------
+    object
+        ``obj`` itself, unchanged.
+    """
+    for key, message in iter_problems(name, obj, syntax=syntax):
+        raise error(source, key or "<document>", message)
+    return obj
+
+
+def apply_defaults(name: str, obj: dict) -> dict:
+    """A copy of ``obj`` with every missing member that has a ``default`` (at any depth) filled in.
+
+    Missing objects whose members have defaults are created (``{}``) first, so a
+    document may leave out a whole section.
+    """
+    return _fill(schema(name), obj)
+
+
+def _fill(sch: dict, obj):
+    if not isinstance(obj, dict) or sch.get("type") != "object":
+        return obj
+    out = dict(obj)
+    for k, sub in sch.get("properties", {}).items():
+        if k not in out:
+            if "default" in sub:
+                out[k] = json.loads(json.dumps(sub["default"]))
+            elif sub.get("type") == "object":
+                out[k] = {}
+        if k in out:
+            out[k] = _fill(sub, out[k])
+    return out
