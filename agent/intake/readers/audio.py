@@ -24,12 +24,8 @@ import numpy as np
 
 from ._common import now_or, plausible_time, reject, stamp_from_name
 
-try:  # librosa depends on soxr; keep a scipy path for installs without it
-    import soxr  # noqa: F401
-
-    RES_TYPE = "soxr_hq"
-except ImportError:  # pragma: no cover
-    RES_TYPE = "polyphase"
+# soxr's high-quality filter: librosa's res_type="soxr_hq" (the reference in the tests).
+RES_TYPE = "soxr_hq"
 
 # Half a 16-bit LSB: a peak-to-peak swing below this is no signal at all.
 CONSTANT_PTP = 2.0 ** -16
@@ -133,18 +129,13 @@ def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioC
 def resample(y: np.ndarray, orig_sr: int, sr: int) -> np.ndarray:
     """Band-limited resampling, as ``librosa.resample(res_type=RES_TYPE)``.
 
-    With soxr present this calls ``soxr.resample(..., quality="soxr_hq")``
-    directly, exactly what librosa does for that ``res_type`` (tested equal),
-    without importing librosa's signal stack in the agent.  Without soxr it
-    falls back to librosa's scipy polyphase filter.
+    Calls ``soxr.resample(..., quality="soxr_hq")`` directly, exactly what
+    librosa does for that ``res_type`` (tested equal); librosa itself is a test
+    dependency only (``docs/features.md``).
     """
-    if RES_TYPE == "soxr_hq":
-        import soxr
+    import soxr
 
-        return np.asarray(soxr.resample(y, orig_sr, sr, quality="soxr_hq"), dtype=np.float32)
-    import librosa  # pragma: no cover
-
-    return librosa.resample(y, orig_sr=orig_sr, target_sr=sr, res_type=RES_TYPE).astype(np.float32)
+    return np.asarray(soxr.resample(y, orig_sr, sr, quality="soxr_hq"), dtype=np.float32)
 
 
 def _wav_claimed_frames(path, data: bytes) -> int | None:
