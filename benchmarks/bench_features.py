@@ -159,6 +159,30 @@ def bench_accel(policy, n_rows, repeat_files):
             "plain_reader_per_s": plain[0], "plain_reader_median": plain[1], "plain_vs_loadtxt": plain[0] / ref[0]}
 
 
+def accel_wav_input(n, rate=10, seed=0):
+    """The same kind of samples as :func:`accel_input`, as a binary burst (32-bit float WAV)."""
+    import soundfile as sf
+
+    rng = np.random.default_rng(seed)
+    xyz = rng.normal(0.0, 0.05, (n, 3))
+    xyz[:, 2] += 1.0
+    buf = io.BytesIO()
+    sf.write(buf, xyz.astype(np.float32), rate, format="WAV", subtype="FLOAT")
+    return buf.getvalue()
+
+
+def bench_accel_wav(policy, n_rows, repeat_files):
+    from agent.intake import featurise
+
+    data = accel_wav_input(n_rows)
+    name = f"burst_{_stamp(T0)}.accel.wav"
+    now = T0 + 10 * 86400 + n_rows / 10.0
+    featurise(name, data, policy, now=now)
+    ours = best_rate(lambda: [featurise(name, data, policy, now=now) for _ in range(repeat_files)],
+                     n_rows * repeat_files)
+    return {"rows_per_file": n_rows, "samples_per_s": ours[0], "samples_per_s_median": ours[1]}
+
+
 def bench_billion_laughs(policy, n=200):
     """Seconds to reject an entity-expansion bomb (it must not be expanded)."""
     from agent.errors import RejectedInput
@@ -194,6 +218,7 @@ def main(argv=None):
                   bench_audio(policy, args.n_audio, 44100, 2)],
         "resample_44k1_to_16k_per_s": bench_resamplers(),
         "accel": [bench_accel(policy, 600, 100), bench_accel(policy, 216_000, 1)],   # 60 s and 6 h at 10 Hz
+        "accel_wav": [bench_accel_wav(policy, 600, 100), bench_accel_wav(policy, 216_000, 1)],
         "billion_laughs_reject_s": bench_billion_laughs(policy),
     }
     res["load_average_1min_at_end"] = os.getloadavg()[0]
@@ -201,6 +226,8 @@ def main(argv=None):
         "audio_snippets_per_s": [min(a["snippets_per_s"] for a in res["audio"]), GOAL_AUDIO_PER_S],
         "accel_600_rows_samples_per_s": [res["accel"][0]["samples_per_s"], GOAL_ACCEL_SAMPLES_PER_S],
         "accel_6_hours_samples_per_s": [res["accel"][1]["samples_per_s"], GOAL_ACCEL_SAMPLES_PER_S],
+        "accel_wav_600_rows_samples_per_s": [res["accel_wav"][0]["samples_per_s"], GOAL_ACCEL_SAMPLES_PER_S],
+        "accel_wav_6_hours_samples_per_s": [res["accel_wav"][1]["samples_per_s"], GOAL_ACCEL_SAMPLES_PER_S],
     }
     if args.json:
         print(json.dumps(res, indent=2))
@@ -219,6 +246,9 @@ def main(argv=None):
               f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s | np.loadtxt alone "
               f"{a['reference_per_s'] / 1e6:5.2f} ({a['reference_median'] / 1e6:.2f}) M/s | ratio {a['ratio']:.2f} "
               f"| plain reader alone {a['plain_reader_per_s'] / 1e6:5.2f} M/s ({a['plain_vs_loadtxt']:.2f}x loadtxt)")
+    for a in res["accel_wav"]:
+        print(f"accel {a['rows_per_file']:>7} samples as .accel.wav: featurise {a['samples_per_s'] / 1e6:5.2f} "
+              f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s")
     print(f"billion-laughs GPX rejected in {res['billion_laughs_reject_s'] * 1e6:.0f} us")
     for name, (got, goal) in res["goals"].items():
         print(f"goal (issue 15, whole pipeline) {name}: featurise() alone on one core {got:,.0f} vs >= {goal:,.0f}: "

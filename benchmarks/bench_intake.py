@@ -64,6 +64,8 @@ GOALS = [
     ("audio_per_s", "audio backfill, snippets/s", 500.0, "min"),
     ("accel_samples_per_s", "accelerometry backfill, 600-row demo bursts, samples/s", 5e6, "min"),
     ("accel_long_samples_per_s", "accelerometry backfill, 6-hour recordings, samples/s", 5e6, "min"),
+    ("accel_wav_long_samples_per_s", "accelerometry backfill, 6-hour binary bursts (.accel.wav), samples/s", 5e6,
+     "min"),
     ("backlog_past_limit", "10,000-file backlog: files destroyed past retention.raw_seconds", 0, "max"),
     ("rss_growth", "peak RSS, 10,000-file over 1,000-file backlog", 1.10, "max"),
     ("status_s", "lethe status, warm, s", 0.3, "max"),
@@ -209,6 +211,25 @@ def long_accel_files(dst: Path, n: int, hours: float = 6.0, rate_hz: float = 10.
     return out
 
 
+def long_accel_wav_files(dst: Path, n: int, hours: float = 6.0, rate_hz: int = 10, seed: int = 3) -> list[Path]:
+    """The same recordings as :func:`long_accel_files`, as binary bursts (``*.accel.wav``)."""
+    import numpy as np
+    import soundfile as sf
+
+    rng = np.random.default_rng(seed)
+    out = []
+    t0 = time.time() - 10 * 86400
+    m = int(hours * 3600 * rate_hz)
+    for i in range(n):
+        xyz = 0.05 * rng.standard_normal((m, 3))
+        xyz[:, 2] += 1.0
+        stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime(t0 + i * hours * 3600))
+        p = dst / f"rec_{i:03d}_{stamp}.accel.wav"
+        sf.write(p, xyz.astype(np.float32), rate_hz, format="WAV", subtype="FLOAT")
+        out.append(p)
+    return out
+
+
 # -- references --------------------------------------------------------------------------
 def naive_audio(files) -> float:
     import librosa
@@ -291,7 +312,8 @@ def backlog_run(home, files) -> dict:
 
     limit = home.load_policy().retention.raw_seconds
     rep = verify_ledger(home)
-    return {"files": len(files), "seconds": round(wall, 2), "first_destroy_s": first,
+    return {"files": len(files), "seconds": round(wall, 2),
+            "first_destroy_s": None if first is None else round(first, 3),
             "past_limit": sum(1 for e in rep.exposures if e is not None and e > limit),
             "exposure_max_s": rep.exposure["max"], "peak_rss_mb": round(peak_kb(err.decode()) / 1024.0, 1),
             "left_in_inbox": len(os.listdir(home.inbox))}
@@ -371,6 +393,14 @@ def main(argv=None) -> int:
         n = rep["n_samples"].get("accel", 0)
         res["backfill_accel_long"] = {"files": len(long_files), "seconds": rep["seconds"], "samples": n,
                                       "samples_per_s": round(n / rep["seconds"]), "peak_rss_mb": round(rss, 1)}
+        wavdir = work / "long-accel-wav"
+        wavdir.mkdir()
+        h = make_home(work / "backfill-accel-wav-long")
+        fill(h.inbox, long_accel_wav_files(wavdir, n=args.long_accel_files))
+        rep, rss, cpu = once_with_rusage(h)
+        n = rep["n_samples"].get("accel", 0)
+        res["backfill_accel_wav_long"] = {"files": args.long_accel_files, "seconds": rep["seconds"], "samples": n,
+                                          "samples_per_s": round(n / rep["seconds"]), "peak_rss_mb": round(rss, 1)}
         sample = by_kind["audio"][:200]
         res["featurise_alone_audio_per_s"] = round(featurise_alone(sample), 1)
         res["naive_audio_per_s"] = round(naive_audio(sample), 1)
@@ -433,6 +463,7 @@ def main(argv=None) -> int:
             "audio_per_s": res["backfill_audio"]["per_s"],
             "accel_samples_per_s": res["backfill_accel"]["samples_per_s"],
             "accel_long_samples_per_s": res["backfill_accel_long"]["samples_per_s"],
+            "accel_wav_long_samples_per_s": res["backfill_accel_wav_long"]["samples_per_s"],
             "backlog_past_limit": res["backlog_big"]["past_limit"],
             "rss_growth": round(res["backlog_big"]["peak_rss_mb"] / res["backlog_small"]["peak_rss_mb"], 3),
             "status_s": round(res["status_best_s"], 3),
@@ -452,6 +483,7 @@ def main(argv=None) -> int:
             "accel_samples_per_s": f"np.loadtxt alone {res['naive_accel_samples_per_s']:,}/s ({ratio_short:.2f}x)",
             "accel_long_samples_per_s": f"np.loadtxt alone {res['naive_accel_long_samples_per_s']:,}/s "
                                         f"({ratio_long:.2f}x)",
+            "accel_wav_long_samples_per_s": "the same samples as CSV: the line above",
             "backlog_past_limit": f"{args.backlog:,} files in {res['backlog_big']['seconds']} s, "
                                   f"max exposure {res['backlog_big']['exposure_max_s']:.1f} s, limit {limit:g} s",
             "rss_growth": f"{res['backlog_small']['peak_rss_mb']} -> {res['backlog_big']['peak_rss_mb']} MB",

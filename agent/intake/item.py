@@ -13,6 +13,7 @@ KINDS = ("audio", "gps", "accel", "mood")
 # Longest suffix first: ".gps.csv" must win over a bare ".csv" (which is unknown).
 SUFFIXES: tuple[tuple[str, str], ...] = (
     (".accel.csv", "accel"),
+    (".accel.wav", "accel"),
     (".gps.csv", "gps"),
     (".mood.csv", "mood"),
     (".mood.json", "mood"),

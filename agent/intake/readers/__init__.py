@@ -45,7 +45,7 @@ def featurise(path, data: bytes, policy, *, now: float | None = None) -> ItemRes
     if kind is None:
         reject(path, "unknown_format",
                "unrecognised file name suffix; expected .wav .flac .ogg .gpx .nmea .gps.csv "
-               ".accel.csv .mood.csv or .mood.json")
+               ".accel.csv .accel.wav .mood.csv or .mood.json")
     if len(data) == 0:
         reject(path, "empty", "zero-byte file")
     cap = int(policy.intake.max_file_bytes)
@@ -59,11 +59,11 @@ def featurise(path, data: bytes, policy, *, now: float | None = None) -> ItemRes
         clip = read_audio(path, data, policy, now=now)
         return audio_features(clip, policy)
     if kind == "accel":
-        from .accel import read_accel
+        from .accel import read_accel, read_accel_wav
         from ..features import accel_features
 
-        rec = read_accel(path, data, policy, now=now)
-        return accel_features(rec, policy)
+        read = read_accel_wav if suffix == ".accel.wav" else read_accel
+        return accel_features(read(path, data, policy, now=now), policy)
     if kind == "gps":
         from .gps import read_gps
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 import re
 import time
-from datetime import datetime, timezone
+from datetime import datetime, UTC
 
 from ...errors import RejectedInput
 
@@ -61,7 +61,7 @@ def stamp_from_name(path) -> float | None:
         return None
     y, mo, d, h, mi, s = (int(g) for g in m.groups())
     try:
-        return datetime(y, mo, d, h, mi, s, tzinfo=timezone.utc).timestamp()
+        return datetime(y, mo, d, h, mi, s, tzinfo=UTC).timestamp()
     except ValueError:
         return None
 

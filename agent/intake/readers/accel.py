@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ._common import now_or, plausible_time, reject
+from ._common import now_or, plausible_time, reject, stamp_from_name
 from .plaincsv import parse_plain
 
 STANDARD_GRAVITY = 9.80665  # m/s², 3rd CGPM (1901)
@@ -120,25 +120,12 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
         why = plausible_time(float(edge), now)
         if why:
             reject(path, "bad_timestamp", f"a sample time is {why}")
-
-    want = float(policy.schedule.accel_rate_hz)
-    tol = float(policy.intake.accel_rate_tolerance)
-    med = float(np.median(dt))
-    rate = 1.0 / med
-    for label, r in (("declared", declared), ("measured", rate)):
-        if r is not None and abs(r - want) > tol * want:
-            reject(path, "bad_rate",
-                   f"{label} rate {r:.3g} Hz is outside schedule.accel_rate_hz = {want:g} Hz "
-                   f"± {tol:.0%} (intake.accel_rate_tolerance)")
+    rate = 1.0 / float(np.median(dt))
+    _check_rate(path, policy, declared=declared, measured=rate)
     xyz = arr[:, 1:4] * scale if scale != 1.0 else np.ascontiguousarray(arr[:, 1:4])
-    mag = np.sqrt(np.einsum("ij,ij->i", xyz, xyz))
-    mag_med = float(np.median(mag))
-    lo, hi = MAGNITUDE_RANGE_G
-    if not lo <= mag_med <= hi:
-        reject(path, "bad_unit",
-               f"the median magnitude is not within {lo:g}–{hi:g} g, as a device sensing "
-               "gravity reads; is the declared unit right?")
+    mag = _checked_magnitude(path, xyz)
     warnings, dropped = [], {}
+    want = float(policy.schedule.accel_rate_hz)
     gaps = dt > GAP_FACTOR / want
     if gaps.any():
         n_gaps = int(gaps.sum())
@@ -147,3 +134,97 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
         warnings.append(f"{n_gaps} gap(s) in the samples, about {lost:.1f} s missing")
     return AccelRecord(path=str(path), t=t, xyz_g=xyz, rate_hz=rate,
                        warnings=warnings, dropped=dropped, mag_g=mag)
+
+
+def _check_rate(path, policy, *, declared: float | None, measured: float) -> None:
+    want = float(policy.schedule.accel_rate_hz)
+    tol = float(policy.intake.accel_rate_tolerance)
+    for label, r in (("declared", declared), ("measured", measured)):
+        if r is not None and abs(r - want) > tol * want:
+            reject(path, "bad_rate",
+                   f"{label} rate {r:.3g} Hz is outside schedule.accel_rate_hz = {want:g} Hz "
+                   f"± {tol:.0%} (intake.accel_rate_tolerance)")
+
+
+def _checked_magnitude(path, xyz_g: np.ndarray) -> np.ndarray:
+    """Vector magnitude in g; ``bad_unit`` when its median is not what gravity reads."""
+    mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g))
+    mag_med = float(np.median(mag))
+    lo, hi = MAGNITUDE_RANGE_G
+    if not lo <= mag_med <= hi:
+        reject(path, "bad_unit",
+               f"the median magnitude is not within {lo:g}–{hi:g} g, as a device sensing "
+               "gravity reads; is the declared unit right?")
+    return mag
+
+
+# ---------------------------------------------------------------------------
+# The binary burst: *.accel.wav (docs/inbox-formats.md)
+# ---------------------------------------------------------------------------
+WAVE_FORMAT_IEEE_FLOAT = 0x0003     # Microsoft, "Multimedia Programming Interface and Data Specifications 1.0"
+WAVE_FORMAT_EXTENSIBLE = 0xFFFE     # Microsoft, WAVEFORMATEXTENSIBLE
+# KSDATAFORMAT_SUBTYPE_IEEE_FLOAT, 00000003-0000-0010-8000-00aa00389b71, as stored (mixed-endian GUID).
+_SUBTYPE_IEEE_FLOAT = bytes.fromhex("0300000000001000800000aa00389b71")
+WAV_CHANNELS = 3                    # x, y, z
+_WAV_FORMAT_HELP = "expected a RIFF/WAVE file of 32-bit IEEE float samples in 3 channels (x, y, z in g)"
+
+
+def read_accel_wav(path, data: bytes, policy, *, now: float | None = None) -> AccelRecord:
+    """Read and validate one binary burst: WAV, 32-bit float, 3 channels (x, y, z) in g.
+
+    The WAV sample rate is the recording rate; the start time is the UTC stamp
+    ``YYYYMMDDTHHMMSSZ`` in the file name, as for audio snippets; sample ``i``
+    was taken at ``start + i / rate``.  The samples are read in place with
+    :func:`numpy.frombuffer`: no text to parse.
+    """
+    import struct
+
+    now = now_or(now)
+    if len(data) < 12 or data[:4] != b"RIFF" or data[8:12] != b"WAVE":
+        reject(path, "bad_header", _WAV_FORMAT_HELP)
+    fmt = None
+    body = size = None
+    pos = 12
+    while pos + 8 <= len(data):
+        cid = data[pos:pos + 4]
+        (csize,) = struct.unpack_from("<I", data, pos + 4)
+        start = pos + 8
+        if cid == b"fmt ":
+            if csize < 16 or start + csize > len(data):
+                reject(path, "bad_header", "the WAV fmt chunk is cut short")
+            fmt = struct.unpack_from("<HHIIHH", data, start)
+            if fmt[0] == WAVE_FORMAT_EXTENSIBLE and (csize < 40 or data[start + 24:start + 40] != _SUBTYPE_IEEE_FLOAT):
+                reject(path, "bad_header", _WAV_FORMAT_HELP)
+        elif cid == b"data":
+            body, size = start, csize
+            break
+        pos = start + csize + (csize & 1)   # chunks are padded to even length
+    if fmt is None or body is None or size is None:
+        reject(path, "bad_header", "the WAV has no fmt chunk before its data chunk")
+    tag, channels, rate_hz, _, block_align, bits = fmt
+    if tag not in (WAVE_FORMAT_IEEE_FLOAT, WAVE_FORMAT_EXTENSIBLE) or bits != 32 or channels != WAV_CHANNELS \
+            or block_align != 4 * WAV_CHANNELS:
+        reject(path, "bad_header", _WAV_FORMAT_HELP)
+    if rate_hz <= 0:
+        reject(path, "bad_rate", "the WAV sample rate is zero")
+    if size in (0, 0xFFFFFFFF) or size > len(data) - body:
+        reject(path, "truncated", f"the WAV data chunk claims {size} bytes but {len(data) - body} are present")
+    n = size // block_align
+    if n < 2:
+        reject(path, "too_short", f"{n} sample(s); at least two are needed")
+    xyz = np.frombuffer(data, dtype="<f4", count=n * WAV_CHANNELS, offset=body).reshape(n, WAV_CHANNELS)
+    if not np.isfinite(xyz).all():
+        reject(path, "bad_value", "a value is NaN or infinite")
+    t0 = stamp_from_name(path)
+    if t0 is None:
+        reject(path, "bad_timestamp", "the file name carries no start time YYYYMMDDTHHMMSSZ")
+    rate = float(rate_hz)
+    t = t0 + np.arange(n) / rate
+    for edge in (t[0], t[-1]):
+        why = plausible_time(float(edge), now)
+        if why:
+            reject(path, "bad_timestamp", f"a sample time is {why}")
+    _check_rate(path, policy, declared=None, measured=rate)
+    xyz = xyz.astype(np.float64)
+    mag = _checked_magnitude(path, xyz)
+    return AccelRecord(path=str(path), t=t, xyz_g=xyz, rate_hz=rate, mag_g=mag)

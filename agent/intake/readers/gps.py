@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 from collections import Counter
-from datetime import datetime, timezone
+from datetime import datetime, UTC
 
 from ..geo import haversine_m
 from ..item import ItemResult
@@ -268,7 +268,7 @@ def _nmea_date(value: str) -> float:
     # Two-digit years pivot at 1980, the GPS epoch; years before 2000 are then
     # refused by the plausibility check rather than mistaken for this century.
     year = 1900 + y if y >= 80 else 2000 + y
-    return datetime(year, mo, d, tzinfo=timezone.utc).timestamp()
+    return datetime(year, mo, d, tzinfo=UTC).timestamp()
 
 
 def parse_nmea(path, data: bytes) -> tuple[list[dict], Counter]:

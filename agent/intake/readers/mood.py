@@ -17,10 +17,7 @@ from ._common import decode_text, now_or, parse_iso, plausible_time, reject
 def read_mood(path, data: bytes, policy, *, suffix: str | None = None,
               now: float | None = None) -> ItemResult:
     now = now_or(now)
-    if suffix == ".mood.json":
-        reports = _parse_json(path, data)
-    else:
-        reports = _parse_csv(path, data, policy)
+    reports = _parse_json(path, data) if suffix == ".mood.json" else _parse_csv(path, data, policy)
     if not reports:
         reject(path, "no_reports", "the file holds no report")
     out = [_validate(path, i, t, ratings, policy, now) for i, (t, ratings) in enumerate(reports)]
@@ -87,7 +84,7 @@ def _parse_csv(path, data: bytes, policy):
         if len(cells) != len(header):
             reject(path, "bad_row", f"data row {k} has {len(cells)} cells, the header {len(header)}")
         ratings = {}
-        for name, cell in zip(names, cells[1:]):
+        for name, cell in zip(names, cells[1:], strict=True):   # lengths checked just above
             try:
                 ratings[name] = int(cell)
             except ValueError:
