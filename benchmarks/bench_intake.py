@@ -103,7 +103,8 @@ def demo_inbox(dst: Path, days: int, seed: int = 7) -> list[Path]:
 
 def child_env(home) -> dict:
     env = {k: v for k, v in os.environ.items() if k != "NUMBA_CACHE_DIR"}  # the CLI points it into the home
-    env.update(LETHE_NO_KEYRING="1", PYTHONPATH=str(ROOT))
+    # Plain key files: the fictional demo data needs no OS keyring, and the benchmark must not touch one.
+    env.update(LETHE_NO_KEYRING="1", LETHE_KEY_STORAGE="plain", PYTHONPATH=str(ROOT))
     return env
 
 
