@@ -115,3 +115,8 @@ def dataclasses_frozen_error():
     import dataclasses
 
     return dataclasses.FrozenInstanceError
+
+
+def test_example_board_limits_validate_with_a_plain_2020_12_validator(repo):
+    doc = tomllib.loads((repo / "policies" / "board-limits.example.toml").read_text("utf-8"))
+    assert list(Draft202012Validator(contracts.schema("board-limits")).iter_errors(doc)) == []

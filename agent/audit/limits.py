@@ -10,25 +10,24 @@ The limits file is our own small TOML format, versioned like the policy::
     require_dp = true
 
 Every rule key is optional (an absent rule is not checked) but at least one must
-be given.  Validation is as strict as the policy's: unknown keys (with a
+be given.  The format is the JSON Schema ``agent/contracts/schemas/board-limits.json``
+(each rule's policy key, kind, unit and words are annotations there, read into
+:data:`RULES`).  Validation is as strict as the policy's: unknown keys (with a
 suggestion), wrong types, booleans for numbers and out-of-range values are
-errors naming the file and the key.  The rules are listed in :data:`RULES` and in
-``docs/audit.md``.
+errors naming the file and the key.  The rules are also listed in ``docs/audit.md``.
 """
 
 from __future__ import annotations
 
-import difflib
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from .. import contracts
 from ..errors import PolicyError
-from ..policy import NODE_KINDS, Policy
+from ..policy import Policy
 from .diff import fmt_value
 
-LIMITS_SCHEMA = 1
-GRANULARITIES = ("day", "week")
+LIMITS_SCHEMA: int = contracts.schema("board-limits")["properties"]["limits"]["properties"]["schema"]["const"]
 
 
 class LimitsError(PolicyError):
@@ -63,42 +62,15 @@ class Rule:
     words: str
 
 
-RULES: tuple[Rule, ...] = (
-    Rule("max_raw_seconds", "max", "retention.raw_seconds", "s",
-         "Raw files may exist at most this long after they are complete."),
-    Rule("max_feature_days", "max", "retention.feature_days", "days",
-         "Features may be kept at most this long."),
-    Rule("max_gps_buffer_minutes", "max", "retention.gps_buffer_minutes", "min",
-         "Location fixes may be buffered at most this long."),
-    Rule("forbid_quarantine", "forbid", "retention.quarantine", "",
-         "Rejected files must be destroyed at once, not held in quarantine."),
-    Rule("max_audio_snippet_seconds", "max", "schedule.audio_snippet_seconds", "s",
-         "Sound snippets may be at most this long."),
-    Rule("min_audio_interval_minutes", "min", "schedule.audio_interval_minutes", "min",
-         "Sound snippets may be taken at most this often."),
-    Rule("min_gps_interval_minutes", "min", "schedule.gps_interval_minutes", "min",
-         "Location fixes may be taken at most this often."),
-    Rule("max_mood_prompts_per_day", "max", "schedule.mood_prompts_per_day", "",
-         "At most this many mood prompts a day."),
-    Rule("forbidden_export_kinds", "none_of", "export.allow", "",
-         "These node kinds must never leave the device."),
-    Rule("allowed_time_granularity", "one_of", "export.time_granularity", "",
-         "Exported dates may be no finer than these."),
-    Rule("min_small_cell_threshold", "min", "export.small_cell_threshold", "",
-         "Counts below at least this threshold must be withheld."),
-    Rule("require_confirm_each_export", "require", "export.confirm_each", "",
-         "The participant must confirm each export."),
-    Rule("require_dp", "require", "privacy.dp", "",
-         "Exports must carry differential-privacy noise."),
-    Rule("max_epsilon_per_export", "max", "privacy.epsilon_per_export", "",
-         "Each export may spend at most this much epsilon."),
-    Rule("max_epsilon_total", "max", "privacy.epsilon_total", "",
-         "The whole study may spend at most this much epsilon."),
-    Rule("max_quiz_age_days", "max", "quiz.max_age_days", "days",
-         "Quiz trials may ask about days at most this old (episodes must be kept that long)."),
-)
+def _rules_from_schema() -> tuple[Rule, ...]:
+    props = contracts.schema("board-limits")["properties"]["limits"]["properties"]
+    return tuple(Rule(key, p["x-lethe-rule"]["kind"], p["x-lethe-rule"]["policy_key"], p.get("x-lethe-unit", ""),
+                      p["description"]) for key, p in props.items() if "x-lethe-rule" in p)
+
+
+# The rules, in file order, read from agent/contracts/schemas/board-limits.json.
+RULES: tuple[Rule, ...] = _rules_from_schema()
 RULES_BY_KEY = {r.key: r for r in RULES}
-HEADER_KEYS = ("schema", "name", "board", "notes")
 
 
 @dataclass
@@ -162,67 +134,25 @@ class LimitsReport:
                 "ok": self.ok, "results": [r.as_dict() for r in self.results]}
 
 
-def _bad(source, key, msg):
-    raise LimitsError(source, f"limits.{key}" if key else "limits", msg)
-
-
 def validate_limits(raw: dict, source: str = "<memory>") -> Limits:
-    """Validate a parsed limits document."""
-    if not isinstance(raw, dict) or set(raw) != {"limits"} or not isinstance(raw.get("limits"), dict):
-        extra = sorted(set(raw) - {"limits"}) if isinstance(raw, dict) else []
-        raise LimitsError(source, extra[0] if extra else "limits",
-                          "a limits file has exactly one table, [limits]"
-                          + (f"; unknown section [{extra[0]}]" if extra else ""))
+    """Validate a parsed limits document against ``board-limits.json``, then the rules the schema cannot say."""
+    if not isinstance(raw, dict) or not isinstance(raw.get("limits"), dict):
+        raise LimitsError(source, "limits", "a limits file has exactly one table, [limits]")
     t = raw["limits"]
     if "schema" not in t:
-        _bad(source, "schema", f"missing; this version of lethe reads schema = {LIMITS_SCHEMA}")
+        raise LimitsError(source, "limits.schema", f"missing; this version of lethe reads schema = {LIMITS_SCHEMA}")
     if isinstance(t["schema"], bool) or t["schema"] != LIMITS_SCHEMA:
-        _bad(source, "schema", f"schema {t['schema']!r} is not supported; this version of lethe reads "
-                               f"schema = {LIMITS_SCHEMA}")
-    allowed = list(HEADER_KEYS) + list(RULES_BY_KEY)
-    for key in t:
-        if key not in allowed:
-            near = difflib.get_close_matches(key, allowed, n=1, cutoff=0.75)
-            hint = f" (did you mean {near[0]!r}?)" if near else ""
-            _bad(source, key, f"unknown key{hint}; allowed keys: {', '.join(allowed)}")
-    for key in ("name", "board", "notes"):
-        if key in t and not isinstance(t[key], str):
-            _bad(source, key, f"value {t[key]!r} has the wrong type: expected a string")
+        raise LimitsError(source, "limits.schema", f"schema {t['schema']!r} is not supported; this version of "
+                                                   f"lethe reads schema = {LIMITS_SCHEMA}")
+    contracts.validate("board-limits", raw, source, syntax="toml", error=LimitsError)
     values = {}
     for key, v in t.items():
         rule = RULES_BY_KEY.get(key)
         if rule is None:
             continue
-        if rule.kind in ("max", "min"):
-            if isinstance(v, bool) or not isinstance(v, (int, float)):
-                _bad(source, key, f"value {v!r} has the wrong type: expected a number")
-            if not math.isfinite(v):
-                _bad(source, key, f"value {v!r} is out of range: expected a finite number")
-            if key.startswith("max_epsilon"):
-                if v <= 0:
-                    _bad(source, key, f"value {v!r} is out of range: expected > 0")
-            elif v < 0:
-                _bad(source, key, f"value {v!r} is out of range: expected >= 0")
-            v = float(v)
-        elif rule.kind in ("require", "forbid"):
-            if not isinstance(v, bool):
-                _bad(source, key, f"value {v!r} has the wrong type: expected true or false")
-        else:
-            choices = NODE_KINDS if rule.kind == "none_of" else GRANULARITIES
-            if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
-                _bad(source, key, f"value {v!r} has the wrong type: expected a list of names")
-            unknown = [x for x in v if x not in choices]
-            if unknown:
-                _bad(source, key, f"value {v!r} is out of range: expected names from {list(choices)} "
-                                  f"(unknown: {unknown})")
-            if len(set(v)) != len(v):
-                _bad(source, key, f"value {v!r}: expected a list without repeats")
-            if rule.kind == "one_of" and not v:
-                _bad(source, key, "value [] would allow no granularity: expected a non-empty list")
-            v = list(v)
-        values[key] = v
+        values[key] = float(v) if rule.kind in ("max", "min") else (list(v) if isinstance(v, list) else v)
     if not values:
-        _bad(source, "", f"no rule given; set at least one of: {', '.join(RULES_BY_KEY)}")
+        raise LimitsError(source, "limits", f"no rule given; set at least one of: {', '.join(RULES_BY_KEY)}")
     return Limits(values, t.get("name", ""), t.get("board", ""), source)
 
 

@@ -45,7 +45,7 @@ from ..errors import DataError
 
 __all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "iter_problems", "schema", "validate"]
 
-SCHEMA_NAMES = ("policy",)
+SCHEMA_NAMES = ("policy", "board-limits")
 
 
 class ContractError(DataError):
