@@ -29,7 +29,7 @@ _FIRST_LAYOUT = """CREATE TABLE records (seq INTEGER PRIMARY KEY AUTOINCREMENT, 
 
 def build_first_layout(home: Home, n_rows: int) -> None:
     """n_rows audio-feature-sized records sealed the way the first layout did."""
-    key = Keystore(home).ensure().vault_key()
+    key = Keystore(home, storage="plain").ensure().vault_key()
     aead = AESGCM(key)
     payload = json.dumps({"t": 1.0, "vec": [0.123456789] * 64, "dbfs": -23.5, "dba": 51.2},
                          separators=(",", ":")).encode()

@@ -509,6 +509,9 @@ class Intake:
 
 def open_items(ledger) -> dict[str, dict]:
     """Items whose latest ``received`` has no ``destroyed`` after it: ``{item: received_entry}``."""
+    if hasattr(ledger, "open_items"):
+        # The ledger's running state (checkpointed): start-up does not re-read the whole ledger.
+        return ledger.open_items()
     opened: dict[str, dict] = {}
     for e in ledger.entries():
         ev = e.get("event")
@@ -719,19 +722,15 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
     counts = {k: defaultdict(int) for k in ("received", "featurised", "rejected", "destroyed")}
     reasons: Counter = Counter()
     exp = []
-    kind_of: dict[str, str] = {}
     if h.ledger_path.exists():
-        for e in Ledger(h, signing_key=None).entries():
-            ev = e.get("event")
-            if ev in counts:
-                kind = e.get("kind", "unknown")
-                counts[ev][kind] += 1
-                if e.get("item"):
-                    kind_of[e["item"]] = kind
-                if ev == "rejected":
-                    reasons[e.get("reason", "?")] += 1
-                if ev == "destroyed" and e.get("exposure_s") is not None:
-                    exp.append(e["exposure_s"])
+        # The ledger's running state: its last signed checkpoint plus the entries after it.
+        state = Ledger(h, signing_key=None).state()
+        for kind, per in state.kinds.items():
+            for ev, n in per.items():
+                if n:
+                    counts[ev][kind] += n
+        reasons.update(state.reasons)
+        exp = state.exposures()  # millisecond resolution
     now = time.time() if now is None else float(now)
     files, subdirs, oldest = 0, 0, None
     try:
