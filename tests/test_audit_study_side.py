@@ -116,3 +116,26 @@ def test_withdrawn_home_with_a_forged_certificate_fails(enrolled):
     (home.root / CERT_NAME).write_text(json.dumps(cert))
     r = verify_home(home, enrolment=enrolment)
     assert r.exit_code == EXIT_INTEGRITY and r.verdict().startswith("FAILED: the home was withdrawn")
+
+
+def test_board_report_warns_about_plain_keys(enrolled, tmp_path):
+    from agent.audit.report import write_report
+
+    home, _ = enrolled  # the suite chooses plain key files (tests/conftest.py)
+    page = write_report(home, tmp_path / "r").read_text()
+    assert "Warning: this home keeps its keys as plain files" in page
+
+
+def test_board_report_of_a_withdrawn_home(enrolled, tmp_path):
+    import json
+
+    from agent.audit.report import write_report
+    from agent.participant.withdraw import withdraw
+
+    home, _ = enrolled
+    withdraw(home)
+    out = tmp_path / "r"
+    write_report(home, out)
+    figures = json.loads((out / "report.json").read_text())
+    assert figures["exit_code"] == EXIT_OK and figures["verdict"].startswith("WITHDRAWN")
+    assert main(["audit", "report", "--out", str(tmp_path / "r2"), "--home", str(home.root)]) == EXIT_OK

@@ -275,7 +275,8 @@ def report_figures(result) -> dict:
             "pending": len(r.pending), "kinds": r.kinds, "daily": r.daily, "rejections": r.rejections,
             "exports": [{"t": e["t"], "bundle_seq": e["bundle_seq"]} for e in r.exports],
             "policy": {"name": result.policy_name, "fingerprint": result.policy_fingerprint},
-            "device_key_id": r.device_key_id}
+            "device_key_id": r.device_key_id, "key_storage": getattr(result, "key_storage", None),
+            "withdrawn": getattr(result, "withdrawn", None)}
 
 
 def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
@@ -327,6 +328,13 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
             "or reordered entry shows. It checks that every raw file that arrived was destroyed, and no later "
             f"than the policy allows ({esc('not checked' if r.limit_s is None else f'{r.limit_s:g} seconds')} "
             "after it had finished arriving). It needs no password and opens no personal data.</p>"]
+    if result.key_storage == "plain":
+        body.append('<div class="verdict bad">Warning: this home keeps its keys as plain files (chosen at '
+                    "enrolment with --key-storage plain). Anyone who copied the home could read the vault and "
+                    "sign ledger entries as this device.</div>")
+    from .verify import PROVES
+
+    body += [f"<p>{esc(p)}</p>" for p in PROVES]
 
     key_rows = [
         ["Ledger entries", f"{r.entries}"],
