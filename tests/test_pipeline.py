@@ -191,7 +191,7 @@ def test_intake_counts_from_ledger_and_inbox(h, policy):
     assert c["rejected"] == {"mood": 1}
     assert c["destroyed"] == {"audio": 1, "mood": 1}
     assert c["inbox"]["files"] == 1 and c["inbox"]["limit_s"] == 30.0
-    assert c["inbox"]["subdirectories"] == 0
+    assert c["inbox"]["in_subfolders"] == 0 and c["inbox"]["unfinished"] == 0
     assert 0 <= c["inbox"]["oldest_age_s"] < 30.0
 
 
@@ -250,7 +250,8 @@ def test_file_past_its_deadline_is_taken_and_flagged_late(tmp_path):
 
 
 @pytest.mark.timeout(60)
-def test_drain_reports_instead_of_spinning_on_a_persistent_failure(h, policy, monkeypatch):
+def test_ledger_that_cannot_be_written_does_not_stop_destruction(h, policy, monkeypatch):
+    """Finding 5, injected ENOSPC (the real full disk is in tests/test_intake_disk_full.py)."""
     from agent.intake.pipeline import Intake, drain
 
     it = Intake(h, policy)
@@ -258,12 +259,19 @@ def test_drain_reports_instead_of_spinning_on_a_persistent_failure(h, policy, mo
     def full_disk(*a, **k):
         raise OSError(28, "No space left on device")
 
+    real = it.ledger.append_many
+    it.ledger.append("agent_start", mode="once")         # as run_agent does before anything else
     monkeypatch.setattr(it.ledger, "append_many", full_disk)
     drop(h.inbox, "a.mood.csv", mood_csv_bytes(policy))
     try:
         rep = drain(h, policy, settle_s=0.0, intake=it)
+        assert our_files(h.inbox) == []                  # destroyed by its deadline all the same
+        assert rep.total("destroyed") == 1
+        assert any("could not be written" in s for s in rep.skipped)
+        assert it.log.failures <= 3                      # backed off instead of spinning
+        events = [e for e, _ in it.log.pending]
+        assert events == ["received", "featurised", "destroyed"]
+        monkeypatch.setattr(it.ledger, "append_many", real)
+        assert it.log.flush(force=True)                  # recorded as soon as the ledger takes it
     finally:
         it.close()
-    assert rep.total("received") == 0
-    assert any("a.mood.csv" in s and "could not be processed" in s for s in rep.skipped)
-    assert our_files(h.inbox) == ["a.mood.csv"]  # left for a later run, never half-handled

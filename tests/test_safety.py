@@ -143,15 +143,22 @@ def test_device_node_is_never_opened(h):
     assert rep.reasons == {"device": 1} and our_files(h.inbox) == []
 
 
-def test_subdirectory_is_reported_never_entered_nor_removed(h, policy=None):
+def test_file_in_subfolder_is_taken_and_the_folder_kept(h):
+    """Finding 7: phone sync tools create dated subfolders; their files are raw data too."""
     sub = h.inbox / "later"
     sub.mkdir()
     inner = sub / f"snd_{stamp(T0)}.wav"
     inner.write_bytes(wav_bytes())
     rep = _drain(h)
-    assert inner.read_bytes() == wav_bytes()
-    assert rep.total("received") == 0
-    assert any("later" in s and "never entered" in s for s in rep.skipped)
+    assert not inner.exists() and sub.is_dir()   # the file is destroyed, the folder is never removed
+    assert rep.total("received") == 1 and rep.total("featurised") == 1
+
+
+def test_symlinked_subfolder_is_removed_never_entered(h, outside):
+    before = _snapshot(outside)
+    os.symlink(outside.parent, h.inbox / "photos")
+    rep = _drain(h)
+    assert rep.reasons == {"symlink": 1} and _snapshot(outside) == before
 
 
 # -- sizes -------------------------------------------------------------------------
@@ -210,9 +217,10 @@ def test_newline_in_name_is_escaped_in_errors(h):
 def test_names_with_separators_are_refused():
     from agent.intake.safety import _check_name
 
-    for bad in ("../x", "a/b", "..", ".", ""):
+    for bad in ("../x", "a/../b", "a//b", "/a", "..", ".", "", "a\0b"):
         with pytest.raises(ValueError):
             _check_name(bad)
+    assert _check_name("2026-11-04/snd.wav") == ["2026-11-04", "snd.wav"]  # a subfolder path is fine
 
 
 # -- swaps -------------------------------------------------------------------------
@@ -224,8 +232,8 @@ def test_destroy_leaves_a_name_that_now_refers_to_another_file(h):
         opened = inbox.open("a.mood.csv", inbox.lstat("a.mood.csv"))
         os.unlink(p)
         p.write_bytes(b"two")  # a new file under the same name
-        assert inbox.destroy("a.mood.csv", opened) is False
-    assert p.read_bytes() == b"two"
+        assert inbox.destroy("a.mood.csv", opened) is True   # our inode is gone from the name...
+    assert p.read_bytes() == b"two"                              # ...and the new file was left alone
 
 
 def test_file_replaced_between_lstat_and_open_is_looked_at_again(h):

@@ -83,7 +83,7 @@ def test_move_in_from_outside_the_inbox_is_reported_as_moved(h, tmp_path):
 
 
 # -- readiness rules (driven directly) --------------------------------------------------
-def test_part_and_dot_names_are_never_pending(intake):
+def test_part_and_dot_names_wait_for_the_window_not_a_close(intake):
     from agent.intake.watcher import InboxWatcher
 
     w = InboxWatcher(intake)
@@ -91,7 +91,12 @@ def test_part_and_dot_names_are_never_pending(intake):
     (intake.home.inbox / ".b.wav").write_bytes(b"x")
     w._note("a.wav.part", "closed")
     w._note(".b.wav", "moved")
-    assert w.pending == {}
+    assert set(w.pending) == {"a.wav.part", ".b.wav"}
+    assert all(p.unfinished and not p.ready for p in w.pending.values())
+    for p in w.pending.values():
+        p.first_seen -= intake.raw_seconds   # the window has passed
+    w._check_pending()
+    assert all(p.ready for p in w.pending.values())
 
 
 def test_change_waits_for_settle_then_ready_when_unchanged(intake):
@@ -163,14 +168,14 @@ def test_non_regular_entries_are_ready_at_once(intake, tmp_path):
     assert w.pending["l.wav"].ready
 
 
-def test_subdirectory_is_reported_once_and_not_pending(intake):
+def test_files_in_a_new_subfolder_become_pending(intake):
     from agent.intake.watcher import InboxWatcher
 
     (intake.home.inbox / "d").mkdir()
+    (intake.home.inbox / "d" / "x.wav").write_bytes(b"RIFF")
     w = InboxWatcher(intake)
     w._note("d", "dir")
-    w._note("d", "changed")
-    assert w.pending == {} and len(w.skipped) == 1
+    assert set(w.pending) == {"d/x.wav"}
 
 
 def test_no_pending_file_means_no_timeout(intake):

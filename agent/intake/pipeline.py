@@ -38,14 +38,14 @@ import logging
 import os
 import stat
 import time
-from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 
-from ..errors import RejectedInput
+from ..errors import LetheError, RejectedInput
 from ..home import Home
-from ..stats import exposure_summary
-from .item import classify, ignored
+from .item import classify
 from .safety import InboxDir, UnsafeEntry, entry_type
+from .scan import DESTROYING_PREFIX, Candidate, complete_time, unfinished_reason  # noqa: F401
+from .scan import scan as scan_inbox
 
 log = logging.getLogger("lethe.intake")
 logging.getLogger("lethe").addHandler(logging.NullHandler())  # library: silent unless the agent sets a log
@@ -53,6 +53,12 @@ logging.getLogger("lethe").addHandler(logging.NullHandler())  # library: silent 
 ITEMS_TABLE = "intake_items"   # item id -> {"kind", "t", "rows"}: which contents were already kept
 RECORDED_KINDS = ("audio", "gps", "accel", "mood", "unknown")
 _REFUSED_UNREAD = ("symlink", "fifo", "socket", "device", "hardlink")
+UNFINISHED_REASONS = {
+    "partial": "a .part file not completed within retention.raw_seconds; destroyed unread",
+    "hidden": "a hidden file (or one in a hidden folder) older than retention.raw_seconds; destroyed unread",
+}
+TAKEN_LIMIT = 2          # the agent died this often while parsing it: destroyed unparsed ("taken_twice")
+DESTROY_SECONDS = 2.0    # bound on the overwrites of one group (the unlinks follow regardless)
 
 
 @dataclass
@@ -75,6 +81,7 @@ class Outcome:
     warnings: list[str] = field(default_factory=list)
     name: str = field(default="", repr=False)   # the inbox name; never persist it
     featurise_s: float = 0.0
+    overwritten_bytes: int = 0
 
     @property
     def error(self) -> str | None:
@@ -94,22 +101,6 @@ class _Work:
     out: Outcome
     final: bool = False   # rejected before featurising (unsafe, unread, paused, unknown)
     res: object = None
-
-
-@dataclass
-class Candidate:
-    name: str
-    lst: os.stat_result
-    complete_at: float
-
-    @property
-    def deadline_key(self):
-        return (self.complete_at, self.name)
-
-
-def complete_time(st: os.stat_result, judged_at: float) -> float:
-    """``min(max(mtime, ctime), judged_at)``: see ``complete_at`` in the module docstring."""
-    return min(max(st.st_mtime, st.st_ctime), float(judged_at))
 
 
 class Intake:
@@ -163,8 +154,14 @@ class Intake:
             raise ValueError(f"workers must be a positive number of threads, got {workers!r}")
         self.workers = int(workers)
         self._executor = None
+        self.forced: set[str] = set()   # unfinished names the watcher saw past their window
+        self.group_files = 1     # grows while groups are quick (see agent.intake.drain)
+        self.log = LedgerWriter(self.home, self.ledger)
+        self.parsing = ParseMarks(self.home)
+        self.suspects = self.parsing.counts   # item -> lives that died while parsing it
 
     def close(self) -> None:
+        self.parsing.close()
         if self._executor is not None:
             self._executor.shutdown(wait=True)
             self._executor = None
@@ -195,32 +192,24 @@ class Intake:
 
     # -- scanning ------------------------------------------------------------
     def scan(self, judged_at: float | None = None, settle_s: float | None = None):
-        """Entries directly in the inbox, split into ``(ready, settling, skipped)``.
+        """Entries under the inbox (subfolders walked safely): ``(ready, settling, waiting)``.
 
-        ``ready`` is sorted oldest deadline first; ``settling`` are regular
-        files modified less than ``settle_s`` ago; ``skipped`` are
-        ``(name, why)`` pairs for subdirectories (never descended, never removed).
+        See :func:`agent.intake.scan.scan`: ``ready`` is sorted oldest deadline
+        first and includes unfinished names (``.part``, hidden) past the window,
+        to be destroyed unread; ``waiting`` are unfinished names still inside it.
         """
         judged_at = time.time() if judged_at is None else judged_at
         settle_s = float(self.policy.retention.settle_seconds if settle_s is None else settle_s)
-        ready, settling, skipped = [], [], []
-        for name in self.inbox.names():
-            if ignored(name):
-                continue
-            lst = self.inbox.lstat(name)
-            if lst is None:
-                continue
-            if stat.S_ISDIR(lst.st_mode):
-                skipped.append((name, "directory"))
-                continue
-            c = Candidate(name, lst, complete_time(lst, judged_at))
-            if stat.S_ISREG(lst.st_mode) and judged_at - max(lst.st_mtime, lst.st_ctime) < settle_s:
-                if judged_at - c.complete_at < self.raw_seconds / 2:
-                    settling.append(c)
-                    continue
-            ready.append(c)
-        ready.sort(key=lambda c: c.deadline_key)
-        return ready, settling, skipped
+        ready, settling, waiting = scan_inbox(self.inbox, judged_at, settle_s, self.raw_seconds)
+        if self.parsing.suspect_tags:
+            # Files a dead agent was parsing go last (and alone: see drain), so a kill that hit
+            # them by chance does not hit them again first thing in the next life.
+            ready.sort(key=lambda c: (self.is_suspect(c.name), c.deadline_key))
+        return ready, settling, waiting
+
+    def is_suspect(self, name: str) -> bool:
+        """Whether an agent died while parsing the file now at ``name`` (by its keyed name tag)."""
+        return bool(self.parsing.suspect_tags) and self.name_tag(name) in self.parsing.suspect_tags
 
     # -- files -------------------------------------------------------------------
     def process(self, name: str, judged_at: float | None = None) -> Outcome | None:
@@ -241,7 +230,19 @@ class Intake:
         backfill fast.  Entries that are gone, ignored, directories or changed
         under us are left out of the result.
         """
-        return self._back(self._front(names, judged_at))
+        t0 = time.monotonic()
+        outs = self._back(self._front(names, judged_at))
+        self._grew(time.monotonic() - t0)
+        return outs
+
+    def _grew(self, seconds: float) -> None:
+        """Adapt the group size to how long the last group took (bounded in files and time)."""
+        from . import drain as _drain_mod
+
+        if seconds > _drain_mod.GROUP_SECONDS:
+            self.group_files = max(1, self.group_files // 2)
+        else:
+            self.group_files = min(_drain_mod.BATCH_FILES, self.group_files * 2)
 
     def process_groups(self, groups, on_outcome=None) -> list[Outcome]:
         """:meth:`process_many` over several groups, the next group's reading and featurising
@@ -267,8 +268,9 @@ class Intake:
                     on_outcome(o)
 
         with ThreadPoolExecutor(max_workers=1, thread_name_prefix="lethe-commit") as ex:
-            fut = None
+            fut, started = None, 0.0
             for names in groups:
+                t0 = time.monotonic()
                 try:
                     works = self._front(names)
                 except (OSError, ValueError) as e:
@@ -276,9 +278,11 @@ class Intake:
                     works = []
                 if fut is not None:
                     collect(fut)
-                fut = ex.submit(self._back, works)
+                    self._grew(time.monotonic() - started)
+                fut, started = ex.submit(self._back, works), t0
             if fut is not None:
                 collect(fut)
+                self._grew(time.monotonic() - started)
         return outs
 
     def _front(self, names, judged_at: float | None = None) -> list:
@@ -291,9 +295,9 @@ class Intake:
                 if w is not None:
                     works.append(w)
             if works:
-                self.ledger.append_many([("received", {"item": w.out.item, "kind": w.out.kind,
-                                                       "bytes": w.out.bytes, "complete_at": w.out.complete_at})
-                                         for w in works])
+                self.log.write([("received", {"item": w.out.item, "kind": w.out.kind,
+                                              "bytes": w.out.bytes, "complete_at": w.out.complete_at})
+                                for w in works])
                 self._featurise_all(works)
             return works
         except BaseException:
@@ -303,7 +307,12 @@ class Intake:
             raise
 
     def _back(self, works) -> list[Outcome]:
-        """Steps 6-9 for a group: vault commit, ``featurised``/``rejected``, destroy, ``destroyed``."""
+        """Steps 6-9 for a group: vault commit, ``featurised``/``rejected``, destroy, ``destroyed``.
+
+        Destruction never waits for bookkeeping: a ledger that cannot be
+        written (disk full, a damaged line) only queues the entries
+        (:class:`LedgerWriter`); the files are destroyed all the same.
+        """
         try:
             if not works:
                 return []
@@ -313,15 +322,20 @@ class Intake:
                 o = w.out
                 if o.status == "rejected":
                     steps.append(("rejected", {"item": o.item, "kind": o.kind, "reason": o.reason}))
-                    log.warning("rejected item=%s kind=%s reason=%s type=%s name#=%s", o.item[:12], o.kind,
-                                o.reason, entry_type(w.lst), self.name_tag(w.name))
+                    log.warning("rejected item=%s kind=%s reason=%s type=%s", o.item[:12], o.kind,
+                                o.reason, entry_type(w.lst))
                 else:
                     steps.append(("featurised", {"item": o.item, "kind": o.kind, "rows": o.rows}))
-            self.ledger.append_many(steps)
+            self.log.write(steps)
             self._destroy_all(works)
-            self.ledger.append_many([("destroyed", {"item": w.out.item, "kind": w.out.kind,
-                                                    "complete_at": w.out.complete_at,
-                                                    "exposure_s": w.out.exposure_s}) for w in works])
+            gone = [w for w in works if w.out.removed]
+            for w in works:
+                if not w.out.removed:
+                    log.error("not_destroyed item=%s kind=%s: the entry could not be removed; looked at again",
+                              w.out.item[:12], w.out.kind)
+            self.log.write([("destroyed", {"item": w.out.item, "kind": w.out.kind,
+                                           "complete_at": w.out.complete_at,
+                                           "exposure_s": w.out.exposure_s}) for w in gone])
             return [w.out for w in works]
         finally:
             for w in works:
@@ -330,8 +344,9 @@ class Intake:
 
     def _prepare(self, name: str, judged_at: float):
         """lstat, safety checks, safe open and read, item id.  ``None``: nothing to take now."""
-        if ignored(name):
-            return None
+        unfinished = unfinished_reason(name)
+        if unfinished == "leftover":
+            return None   # see finish_leftovers
         lst = self.inbox.lstat(name)
         if lst is None or stat.S_ISDIR(lst.st_mode):
             return None
@@ -339,11 +354,17 @@ class Intake:
         complete_at = complete_time(lst, judged_at)
         opened, data, err = None, None, None
         refusal = self.inbox.refusal(name, lst)
-        if refusal is not None and refusal.reason in _REFUSED_UNREAD:
+        if unfinished is not None:
+            if name not in self.forced and judged_at - max(lst.st_mtime, lst.st_ctime) < self.raw_seconds:
+                return None   # a writer may still finish it
+            self.forced.discard(name)
+            err = UnsafeEntry(self.inbox.display(name), unfinished, UNFINISHED_REASONS[unfinished])
+            kind = "unknown"
+        elif refusal is not None and refusal.reason in _REFUSED_UNREAD:
             err = refusal
-        else:
+        if err is None or (unfinished is not None and stat.S_ISREG(lst.st_mode) and lst.st_nlink == 1):
             try:
-                # Oversize files are opened too, but only so they can be overwritten.
+                # Oversize and unfinished files are opened too, but only so they can be overwritten.
                 opened = self.inbox.open(name, lst, check_size=False)
             except UnsafeEntry as e:
                 if e.reason == "changed":
@@ -352,8 +373,8 @@ class Intake:
                     lst = self.inbox.lstat(name)
                     if lst is None:
                         return None
-                err = e
-            if opened is not None:
+                err = err or e
+            if err is None and opened is not None:
                 if opened.st.st_size > self.inbox.max_file_bytes:
                     err = UnsafeEntry(self.inbox.display(name), "too_large",
                                       f"{opened.st.st_size} bytes exceeds intake.max_file_bytes = "
@@ -373,6 +394,13 @@ class Intake:
             out = Outcome(shown, self.mac(data)[:32], kind, "rejected", bytes=len(data), complete_at=complete_at,
                           name=name)
             w = _Work(name, lst, opened, data, out)
+            if self.suspects.get(out.item, 0) >= TAKEN_LIMIT:
+                # Taken before without an outcome, the agent died each time: never parse it again.
+                w.final, w.data = True, None
+                out.reason = "taken_twice"
+                out.detail = (f"the agent died {self.suspects[out.item]} times while parsing it; "
+                              f"destroyed unparsed")
+                log.error("taken_twice item=%s kind=%s", out.item[:12], kind)
         self.seen_items.add(out.item)
         return w
 
@@ -398,6 +426,8 @@ class Intake:
         from . import featurise
 
         t0 = time.perf_counter()
+        # survives the process dying in the reader (not a power loss)
+        self.parsing.begin(w.out.item, self.name_tag(w.name))
         try:
             w.res = featurise(w.name, w.data, self.policy, now=self.now)
         except RejectedInput as e:
@@ -406,6 +436,7 @@ class Intake:
             w.out.reason, w.out.detail = "reader_error", f"{type(e).__name__} in the reader"
             log.error("reader_error item=%s kind=%s error=%s", w.out.item[:12], w.out.kind, type(e).__name__)
         finally:
+            self.parsing.end(w.out.item, self.name_tag(w.name))
             w.data = None  # the raw bytes are not needed any more
             w.out.featurise_s = time.perf_counter() - t0
 
@@ -456,20 +487,70 @@ class Intake:
         return n
 
     def _destroy_all(self, works) -> None:
-        """Overwrite through each descriptor, unlink each name after re-checking it, one directory fsync."""
-        held = [w.opened for w in works if w.opened is not None]
-        self._each(self.inbox.overwrite, held)  # fsync releases the GIL: overwrites overlap
+        """Rename aside, overwrite (bounded) through each descriptor, unlink, one folder fsync each.
+
+        An opened file is first renamed to ``.lethe-destroying-<item>-<inode>``
+        in its own folder, so a restart after a kill mid-destruction finishes
+        it (:meth:`finish_leftovers`) instead of taking its zero-filled remains
+        in as a new file.  Each overwrite is bounded by the allocated blocks,
+        ``intake.max_file_bytes`` and :data:`DESTROY_SECONDS`.
+        """
         for w in works:
-            w.out.removed = self.inbox.unlink_checked(w.name, w.opened, expect=w.lst)
+            if w.opened is not None and w.opened.fd >= 0:
+                w.name = self._aside(w)
+        held = [w for w in works if w.opened is not None]
+        deadline = time.monotonic() + DESTROY_SECONDS
+        self._each(lambda w: self.inbox.overwrite(w.opened, deadline=deadline), held)
+        for w in works:
+            w.out.removed = self.inbox.unlink_checked(w.name, w.opened, None if w.opened else w.lst)
+            if w.opened is not None:
+                w.out.overwritten_bytes = w.opened.overwritten
         # Closing the last descriptor of an unlinked file frees its blocks: also worth overlapping.
-        self._each(lambda o: o.close(), held)
+        self._each(lambda w: w.opened.close(), held)
         for w in works:
             w.opened = None
-        self.inbox.fsync()
+        for folder in sorted({w.name.rpartition("/")[0] for w in works}):
+            self.inbox.fsync(folder + "/x" if folder else None)
         t = time.time()
         for w in works:
             w.out.destroyed_at = t
             w.out.exposure_s = round(max(0.0, t - w.out.complete_at), 6)
+
+    def _aside(self, w) -> str:
+        """Rename an opened file to its leftover name in the same folder; the original name if that fails."""
+        folder, _, base = w.name.rpartition("/")
+        new_base = f"{DESTROYING_PREFIX}{w.out.item[:32]}-{w.opened.st.st_ino}"
+        with self.inbox.parent(w.name) as (dfd, base_now):
+            if dfd is None:
+                return w.name
+            try:
+                now = os.stat(base_now, dir_fd=dfd, follow_symlinks=False)
+                if (now.st_dev, now.st_ino) != (w.opened.st.st_dev, w.opened.st.st_ino):
+                    return w.name
+                os.rename(base_now, new_base, src_dir_fd=dfd, dst_dir_fd=dfd)
+            except OSError:
+                return w.name
+        return f"{folder}/{new_base}" if folder else new_base
+
+    def finish_leftovers(self) -> int:
+        """Destroy, unread, files whose destruction a killed agent had begun; returns how many.
+
+        Their items are closed by :meth:`reconcile` (they are never "seen" again).
+        """
+        from ..destroy import destroy_entry
+
+        n = 0
+        for c in self.scan(settle_s=0.0)[0]:
+            if c.unread != "leftover":
+                continue
+            with self.inbox.parent(c.name) as (dfd, base):
+                if dfd is not None and destroy_entry(dfd, base, max_bytes=self.inbox.max_file_bytes,
+                                                     expect=c.lst).gone:
+                    n += 1
+            self.inbox.fsync(c.name)
+        if n:
+            log.warning("finished %d destruction(s) a previous run had begun", n)
+        return n
 
     def _each(self, fn, items) -> None:
         if len(items) > 1 and self.workers > 1:
@@ -496,13 +577,18 @@ class Intake:
         Returns how many items were closed.
         """
         n = 0
-        for item, entry in open_items(self.ledger).items():
+        try:
+            opened = open_items(self.ledger)
+        except (OSError, LetheError, ValueError) as e:
+            self.log.alarm("ledger_unreadable", e)
+            return 0
+        for item, entry in opened.items():
             if item in self.seen_items:
                 continue
             complete_at = float(entry.get("complete_at") or started_at)
-            self.ledger.append("destroyed", item=item, kind=entry.get("kind", "unknown"),
-                               complete_at=complete_at,
-                               exposure_s=round(max(0.0, started_at - complete_at), 6))
+            self.log.write([("destroyed", {"item": item, "kind": entry.get("kind", "unknown"),
+                                           "complete_at": complete_at,
+                                           "exposure_s": round(max(0.0, started_at - complete_at), 6)})])
             n += 1
         return n
 
@@ -525,239 +611,19 @@ def open_items(ledger) -> dict[str, dict]:
     return opened
 
 
-# -- reports --------------------------------------------------------------------
-def exposure_stats(values) -> dict:
-    """``{"n", "median_s", "p95_s", "max_s"}`` rounded to 0.1 ms; empty: None.
-
-    The same statistics as the ledger verifier's (:func:`agent.stats.exposure_summary`,
-    Hyndman and Fan type 7), so ``lethe status`` and ``lethe audit verify`` agree.
-    """
-    st = exposure_summary(values)
-    return {k: (round(v, 4) if isinstance(v, float) else v) for k, v in st.items()}
 
 
-@dataclass
-class DrainReport:
-    """Counts of one drain by kind, rejections by reason, exposure statistics.
-
-    ``errors`` and ``skipped`` name files: show them to the participant, never persist them.
-    """
-
-    received: dict = field(default_factory=dict)
-    featurised: dict = field(default_factory=dict)
-    duplicate: dict = field(default_factory=dict)
-    rejected: dict = field(default_factory=dict)
-    destroyed: dict = field(default_factory=dict)
-    reasons: dict = field(default_factory=dict)
-    rows: int = 0
-    n_samples: dict = field(default_factory=dict)
-    exposure: dict = field(default_factory=dict)
-    over_limit: int = 0
-    recovered: int = 0
-    errors: list = field(default_factory=list)
-    skipped: list = field(default_factory=list)
-    seconds: float = 0.0
-    raw_seconds: float = 0.0
-
-    @classmethod
-    def from_outcomes(cls, outcomes, raw_seconds: float, **kw) -> "DrainReport":
-        rec, fea, dup, rej, des, why = (Counter() for _ in range(6))
-        samples = Counter()
-        rows = 0
-        for o in outcomes:
-            rec[o.kind] += 1
-            {"featurised": fea, "duplicate": dup, "rejected": rej}[o.status][o.kind] += 1
-            if o.status == "rejected":
-                why[o.reason] += 1
-            if o.destroyed_at is not None:
-                des[o.kind] += 1
-            rows += o.rows
-            samples[o.kind] += o.n_samples
-        exp = [o.exposure_s for o in outcomes]
-        return cls(received=dict(rec), featurised=dict(fea), duplicate=dict(dup), rejected=dict(rej),
-                   destroyed=dict(des), reasons=dict(why), rows=rows, n_samples=dict(samples),
-                   exposure=exposure_stats(exp),
-                   over_limit=sum(1 for x in exp if x is not None and x > raw_seconds),
-                   errors=[o.error for o in outcomes if o.error], raw_seconds=raw_seconds, **kw)
-
-    def total(self, which: str) -> int:
-        return sum(getattr(self, which).values())
-
-    def as_dict(self) -> dict:
-        return {k: getattr(self, k) for k in self.__dataclass_fields__}
-
-    def text(self) -> str:
-        def by_kind(d):
-            return ", ".join(f"{k} {d[k]}" for k in sorted(d)) or "none"
-
-        e = self.exposure
-        lines = [
-            f"received {self.total('received')} ({by_kind(self.received)})",
-            f"featurised {self.total('featurised')} ({by_kind(self.featurised)}), "
-            f"{self.total('duplicate')} already kept, {self.rows} feature rows written",
-            f"rejected {self.total('rejected')} ({by_kind(self.reasons)})",
-            f"destroyed {self.total('destroyed')} ({by_kind(self.destroyed)})",
-        ]
-        if e.get("n"):
-            lines.append(f"raw exposure: median {e['median_s']:.3f} s, p95 {e['p95_s']:.3f} s, "
-                         f"max {e['max_s']:.3f} s (limit {self.raw_seconds:g} s; "
-                         f"{self.over_limit} over the limit)")
-        if self.recovered:
-            lines.append(f"closed {self.recovered} item(s) left open by an interrupted run")
-        for s in self.skipped:
-            lines.append(f"skipped: {s}")
-        for err in self.errors:
-            lines.append(err)
-        lines.append(f"took {self.seconds:.2f} s")
-        return "\n".join(lines)
+from .ledgerlog import LedgerWriter, ParseMarks  # noqa: E402  (after Intake: it imports nothing from here)
+from .report import DrainReport, exposure_stats, intake_counts  # noqa: E402,F401  (compatibility)
 
 
-def drain(home, policy, now: float | None = None, *, settle_s: float | None = None,
-          intake: Intake | None = None, on_outcome=None) -> DrainReport:
-    """Process everything in the inbox, oldest deadline first, until it holds none of our files.
-
-    Files still being written (modified within ``settle_s``) are waited for;
-    files that arrive during the drain are taken too.  Subdirectories are
-    reported, never entered.  Does not take the home lock: :func:`run_agent`
-    and ``lethe run`` do.
-
-    Parameters
-    ----------
-    home : Home or path-like
-    policy : agent.policy.Policy
-    now : float, optional
-        Simulated clock passed to the readers (see :class:`Intake`).
-    settle_s : float, optional
-        Overrides ``policy.retention.settle_seconds``.
-    """
-    t0 = time.time()
-    own = intake is None
-    if own:
-        intake = Intake(home, policy, now=now)
-    outcomes, skipped = [], {}
-    stuck = 0
-    try:
-        while True:
-            ready, settling, dirs = intake.scan(settle_s=settle_s)
-            for name, why in dirs:
-                skipped[name] = f"{intake.inbox.display(name)}: {why}; never entered nor removed"
-            groups = ([c.name for c in g] for g in batches(ready, intake.inbox.max_file_bytes))
-            got = intake.process_groups(groups, on_outcome=on_outcome)
-            outcomes += got
-            if not ready and not settling:
-                break
-            stuck = stuck + 1 if ready and not got else 0
-            if stuck >= STUCK_PASSES:
-                # Something keeps failing (a full disk, a broken ledger): report instead of spinning.
-                for c in ready:
-                    skipped[c.name] = (f"{intake.inbox.display(c.name)}: could not be processed in "
-                                       f"{STUCK_PASSES} passes; see the agent log")
-                break
-            if stuck:
-                time.sleep(0.1 * stuck)
-            if not ready:
-                wait = min(max(0.0, float(settle_s if settle_s is not None else
-                                          policy.retention.settle_seconds)), 1.0)
-                time.sleep(max(wait / 4, 0.01))  # waiting for a writer to finish: short and bounded
-        recovered = intake.reconcile(t0)
-    finally:
-        if own:
-            intake.close()
-    return DrainReport.from_outcomes(outcomes, float(policy.retention.raw_seconds),
-                                     skipped=sorted(skipped.values()), recovered=recovered,
-                                     seconds=round(time.time() - t0, 3))
+_FROM_DRAIN = ("BATCH_BYTES", "BATCH_FILES", "STUCK_PASSES", "batches", "drain", "process_safely")
 
 
-BATCH_FILES = 32            # files taken together in a backfill
-STUCK_PASSES = 3            # drain passes without progress before it gives up and reports
-BATCH_BYTES = 32 << 20      # and at most this many raw bytes in memory at once
+def __getattr__(name):
+    """``drain`` and its constants moved to ``agent.intake.drain``; still importable from here."""
+    if name in _FROM_DRAIN:
+        from . import drain as _drain_mod
 
-
-def batches(candidates, max_file_bytes: int, max_files: int = BATCH_FILES, max_bytes: int = BATCH_BYTES):
-    """Split deadline-ordered candidates into groups for :meth:`Intake.process_many`."""
-    group, size = [], 0
-    for c in candidates:
-        n = min(int(c.lst.st_size), int(max_file_bytes))
-        if group and (len(group) >= max_files or size + n > max_bytes):
-            yield group
-            group, size = [], 0
-        group.append(c)
-        size += n
-    if group:
-        yield group
-
-
-def _process_safely(intake: Intake, names, outcomes: list) -> list:
-    try:
-        outs = intake.process_many(names)
-    except (OSError, ValueError) as e:
-        if len(names) > 1:  # find the one that fails; the others go through
-            outs = []
-            for n in names:
-                outs += _process_safely(intake, [n], [])
-        else:
-            # The agent keeps running; the name is shown on the terminal, not logged.
-            log.error("intake_error name#=%s error=%s", intake.name_tag(names[0]), type(e).__name__)
-            outs = []
-    outcomes.extend(outs)
-    return outs
-
-
-def intake_counts(home, policy=None, now: float | None = None) -> dict:
-    """Ledger-derived counts for ``lethe status``, plus the inbox's current raw files.
-
-    Returns
-    -------
-    dict
-        ``{"received": {kind: n}, "featurised": {...}, "rejected": {...},
-        "destroyed": {...}, "reasons": {reason: n}, "exposure": {...},
-        "inbox": {"files": n, "oldest_age_s": float | None, "limit_s": float,
-        "subdirectories": n}}``.
-        Reads the ledger without a signing key and lists the inbox without
-        opening any file.
-    """
-    from ..ledger import Ledger
-
-    h = home if isinstance(home, Home) else Home(home)
-    counts = {k: defaultdict(int) for k in ("received", "featurised", "rejected", "destroyed")}
-    reasons: Counter = Counter()
-    exp = []
-    if h.ledger_path.exists():
-        # The ledger's running state: its last signed checkpoint plus the entries after it.
-        state = Ledger(h, signing_key=None).state()
-        for kind, per in state.kinds.items():
-            for ev, n in per.items():
-                if n:
-                    counts[ev][kind] += n
-        reasons.update(state.reasons)
-        exp = state.exposures()  # millisecond resolution
-    now = time.time() if now is None else float(now)
-    files, subdirs, oldest = 0, 0, None
-    try:
-        with os.scandir(h.inbox) as it:
-            for d in it:
-                if ignored(d.name):
-                    continue
-                try:
-                    st = d.stat(follow_symlinks=False)
-                except FileNotFoundError:
-                    continue
-                if stat.S_ISDIR(st.st_mode):
-                    subdirs += 1  # never entered nor removed; reported so the participant can look
-                    continue
-                files += 1
-                age = now - max(st.st_mtime, st.st_ctime)
-                oldest = age if oldest is None else max(oldest, age)
-    except FileNotFoundError:
-        pass
-    if policy is None:
-        try:
-            policy = h.load_policy()
-        except Exception:
-            policy = None
-    limit = float(policy.retention.raw_seconds) if policy is not None else None
-    out = {k: dict(v) for k, v in counts.items()}
-    out.update(reasons=dict(reasons), exposure=exposure_stats(exp),
-               inbox={"files": files, "oldest_age_s": None if oldest is None else round(max(oldest, 0.0), 3),
-                      "limit_s": limit, "subdirectories": subdirs})
-    return out
+        return getattr(_drain_mod, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

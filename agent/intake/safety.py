@@ -26,8 +26,10 @@ from __future__ import annotations
 import errno
 import os
 import stat
+from contextlib import contextmanager
 from dataclasses import dataclass
 
+from ..destroy import destroy_entry, destroy_opened, open_subdir, overwrite_fd
 from ..errors import RejectedInput, StateError
 
 # Reason codes for entries refused before any byte is read.  They extend the
@@ -90,6 +92,7 @@ class OpenedFile:
     fd: int
     st: os.stat_result   # fstat of the open descriptor
     writable: bool       # False when the file could only be opened read-only
+    overwritten: int = 0  # zero bytes written over its data by destruction
 
     def close(self) -> None:
         if self.fd >= 0:
@@ -148,12 +151,46 @@ class InboxDir:
         return os.listdir(self.fd)
 
     def lstat(self, name: str) -> os.stat_result | None:
-        """``lstat`` of ``name`` in the inbox, or ``None`` if it no longer exists."""
-        _check_name(name)
+        """``lstat`` of ``name`` in the inbox, or ``None`` if it (or a folder on its way) no longer exists.
+
+        ``name`` may lie in a subfolder (``"2026-11-04/snd.wav"``): every folder on
+        the way is opened ``O_NOFOLLOW | O_DIRECTORY`` from the inbox descriptor,
+        so a folder swapped for a link is never followed.
+        """
+        with self.parent(name) as (dfd, base):
+            if dfd is None:
+                return None
+            try:
+                return os.stat(base, dir_fd=dfd, follow_symlinks=False)
+            except FileNotFoundError:
+                return None
+
+    @contextmanager
+    def parent(self, name: str):
+        """``(descriptor of the folder holding name, its last component)``; ``(None, base)`` if a folder is gone."""
+        parts = _check_name(name)
+        if len(parts) == 1:
+            yield self.fd, parts[0]
+            return
+        fds: list[int] = []
         try:
-            return os.stat(name, dir_fd=self.fd, follow_symlinks=False)
-        except FileNotFoundError:
-            return None
+            cur = self.fd
+            for part in parts[:-1]:
+                try:
+                    cur = open_subdir(cur, part)
+                except OSError as e:
+                    if e.errno in (errno.ENOENT, errno.ELOOP, errno.ENOTDIR, errno.ESTALE):
+                        cur = -1
+                        break
+                    raise
+                fds.append(cur)
+                if os.fstat(cur).st_dev != self.st.st_dev:
+                    cur = -1   # another file system mounted inside the inbox: never entered
+                    break
+            yield (None if cur == -1 else cur), parts[-1]
+        finally:
+            for fd in fds:
+                os.close(fd)
 
     def refusal(self, name: str, st: os.stat_result) -> UnsafeEntry | None:
         """Why ``name`` must not be read, judged from its ``lstat``; ``None`` if it may be."""
@@ -182,15 +219,20 @@ class InboxDir:
             ``hardlink`` or ``too_large`` as seen on the open descriptor,
             ``unreadable`` on a permission or I/O error.
         """
-        _check_name(name)
         shown = self.display(name)
         if not stat.S_ISREG(lst.st_mode):
             raise UnsafeEntry(shown, entry_type(lst) if entry_type(lst) != "dir" else "directory",
                               "not a regular file")
+        with self.parent(name) as (dfd, base):
+            if dfd is None:
+                raise UnsafeEntry(shown, "changed", "a folder on its way vanished or became a link")
+            return self._open_in(dfd, base, name, lst, shown, check_size)
+
+    def _open_in(self, dfd: int, base: str, name: str, lst, shown: str, check_size: bool) -> OpenedFile:
         writable = True
         try:
             # Read-write so destruction can overwrite through this very descriptor.
-            fd = os.open(name, os.O_RDWR | _OPEN_FLAGS, dir_fd=self.fd)
+            fd = os.open(base, os.O_RDWR | _OPEN_FLAGS, dir_fd=dfd)
         except OSError as e:
             if e.errno == errno.ELOOP:
                 raise UnsafeEntry(shown, "symlink", "became a symbolic link; not followed") from None
@@ -200,7 +242,7 @@ class InboxDir:
                 raise UnsafeEntry(shown, "unreadable", f"cannot open: {e.strerror}") from None
             writable = False
             try:
-                fd = os.open(name, os.O_RDONLY | _OPEN_FLAGS, dir_fd=self.fd)
+                fd = os.open(base, os.O_RDONLY | _OPEN_FLAGS, dir_fd=dfd)
             except OSError as e2:
                 raise UnsafeEntry(shown, "unreadable", f"cannot open: {e2.strerror}") from None
         opened = OpenedFile(name, fd, os.fstat(fd), writable)
@@ -242,102 +284,85 @@ class InboxDir:
 
     # -- destroying ----------------------------------------------------------
     def destroy(self, name: str, opened: OpenedFile | None = None,
-                expect: os.stat_result | None = None) -> bool:
-        """Destroy an inbox entry: overwrite through ``opened`` (best effort), unlink, fsync the directory.
+                expect: os.stat_result | None = None, *, deadline: float | None = None) -> bool:
+        """Destroy an inbox entry through :mod:`agent.destroy`, then fsync its folder.
 
         Parameters
         ----------
         name : str
-            The entry's name in the inbox.
+            The entry's name relative to the inbox (may lie in a subfolder).
         opened : OpenedFile, optional
-            The descriptor the file was read through; its bytes are overwritten
-            with zeros and fsynced when it is a single-link regular file we
-            could open for writing.  It is closed afterwards.
+            The descriptor the file was read through; the data it holds are
+            overwritten (bounded: allocated blocks, at most ``max_file_bytes``)
+            when it is a single-link file opened for writing.  Closed afterwards.
         expect : os.stat_result, optional
-            For an entry that was never opened: the ``lstat`` it must still
-            match (device, inode and ctime).
+            For an entry that was never opened: the ``lstat`` it must still match.
 
         Returns
         -------
         bool
-            True if the name was unlinked, False if it was already gone or now
-            refers to another file (which is then left alone).
+            True if the entry no longer exists under its name (unlinked, or
+            already gone); False if the name still refers to it.
         """
-        _check_name(name)
         try:
-            if opened is not None:
-                self.overwrite(opened)
-            removed = self.unlink_checked(name, opened, expect)
-            if removed:
-                self.fsync()
-            return removed
+            gone = self.unlink_checked(name, opened, expect, overwrite=True, deadline=deadline)
+            self.fsync(name)
+            return gone
         finally:
             if opened is not None:
                 opened.close()
 
-    def overwrite(self, opened: OpenedFile) -> bool:
-        """Zeros over the file through its descriptor, fsync'd; False when not done.
+    def overwrite(self, opened: OpenedFile, deadline: float | None = None) -> int:
+        """Zeros over the file's data through its descriptor, fsync'd; returns bytes written.
 
-        Skipped when the descriptor is read-only or the inode has gained
-        another link (those bytes belong to another name too).
+        Bounded by the allocated blocks and ``max_file_bytes`` (see
+        :func:`agent.destroy.overwrite_fd`); skipped when the descriptor is
+        read-only or the inode has gained another link.
         """
         if opened is None or opened.fd < 0 or not opened.writable:
-            return False
-        st = os.fstat(opened.fd)
-        if not stat.S_ISREG(st.st_mode) or st.st_nlink != 1 or st.st_size == 0:
-            return False
-        return _overwrite(opened.fd, st.st_size)
+            return 0
+        n, why = overwrite_fd(opened.fd, self.max_file_bytes, deadline=deadline)
+        opened.overwritten = n
+        return n
 
     def unlink_checked(self, name: str, opened: OpenedFile | None = None,
-                       expect: os.stat_result | None = None) -> bool:
+                       expect: os.stat_result | None = None, *, overwrite: bool = False,
+                       deadline: float | None = None) -> bool:
         """Unlink ``name`` only if it still is the file we hold (or, unopened, the one ``lstat`` saw).
 
-        The directory is not fsynced here (see :meth:`fsync`), so a group of
+        Returns True when the entry is gone from its name (see :class:`agent.destroy.Destroyed`).
+        The folder is not fsynced here (see :meth:`fsync`), so a group of
         unlinks shares one directory fsync.
         """
-        _check_name(name)
-        if opened is not None and opened.fd >= 0:
-            ident, strict = os.fstat(opened.fd), False  # held open: the inode cannot be reused
-        elif expect is not None:
-            ident, strict = expect, True
-        else:
+        if opened is None and expect is None:
             raise ValueError("unlink_checked() needs the file's identity: pass opened= or expect=")
-        now = self.lstat(name)
-        if now is None or not same_file(now, ident, strict=strict):
-            return False
-        if stat.S_ISDIR(now.st_mode):
-            return False  # never remove a directory
-        os.unlink(name, dir_fd=self.fd)
-        return True
+        with self.parent(name) as (dfd, base):
+            if dfd is None:
+                return True  # a folder on its way is gone or became a link: the entry is not there any more
+            if opened is not None and opened.fd >= 0:
+                d = destroy_opened(dfd, base, opened.fd, max_bytes=self.max_file_bytes, deadline=deadline,
+                                   overwrite=overwrite and opened.writable)
+                opened.overwritten = max(opened.overwritten, d.overwritten_bytes)
+            else:
+                d = destroy_entry(dfd, base, max_bytes=self.max_file_bytes, expect=expect, deadline=deadline)
+            return d.gone
 
-    def fsync(self) -> None:
+    def fsync(self, name: str | None = None) -> None:
+        """fsync the inbox, or the folder holding ``name``."""
         try:
-            os.fsync(self.fd)
+            if name is None or "/" not in name:
+                os.fsync(self.fd)
+                return
+            with self.parent(name) as (dfd, _):
+                if dfd is not None:
+                    os.fsync(dfd)
         except OSError:
             pass  # some file systems cannot fsync a directory; the unlink still happened
 
 
-def _overwrite(fd: int, size: int) -> bool:
-    """Zeros over the whole file, then fsync.  Best effort (see docs/intake.md, limits of deletion).
-
-    The fsync matters: dirty pages of an inode that is unlinked next may be
-    dropped without ever being written, leaving the old blocks as they were.
-    """
-    zeros = b"\0" * min(size, _CHUNK)
-    offset = 0
-    try:
-        while offset < size:
-            n = os.pwrite(fd, zeros[: min(size - offset, len(zeros))], offset)
-            if n <= 0:
-                return False
-            offset += n
-        os.fsync(fd)
-    except OSError:
-        return False
-    return True
-
-
-def _check_name(name: str) -> None:
-    # A name with a separator or a dot-dot could address something outside the inbox.
-    if not name or "/" in name or name in (".", "..") or "\0" in name:
+def _check_name(name: str) -> list[str]:
+    """Split an inbox-relative name into plain components (no empty, ``.`` or ``..`` part, no NUL)."""
+    parts = name.split("/") if isinstance(name, str) else []
+    if not parts or any(not p or p in (".", "..") or "\0" in p for p in parts):
         raise ValueError(f"{name!r} is not a plain file name inside the inbox")
+    return parts

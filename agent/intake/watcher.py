@@ -12,11 +12,13 @@ Readiness (``docs/intake.md``, "Readiness"): a file is taken
    it still changes: a writer that never finishes cannot keep raw data in the
    inbox past the window.
 
-Names ending ``.part`` or starting with ``.`` are ignored until renamed.
-Non-regular entries (symlinks, FIFOs, sockets, devices) cannot be "in
-progress" and are taken at once.  Subdirectories are reported once and never
-entered.  On start the inbox is swept; files already there are taken oldest
-deadline first.
+Names ending ``.part`` or starting with ``.`` (and names in hidden folders)
+wait for their writer until ``retention.raw_seconds`` after they were first
+seen, then are destroyed unread (``partial``, ``hidden``).  Non-regular entries
+(symlinks, FIFOs, sockets, devices) cannot be "in progress" and are taken at
+once.  Subfolders are watched and walked (never through a link; never
+removed).  On start, destructions a killed run had begun are finished, then the
+inbox is swept; files already there are taken oldest deadline first.
 
 The main loop blocks on a queue; its only timeouts are the nearest settle or
 retention deadline of a pending file, so an empty inbox costs no CPU.
@@ -32,8 +34,9 @@ import threading
 import time
 from dataclasses import dataclass, field
 
-from .item import ignored
-from .pipeline import DrainReport, Intake, _process_safely
+from .drain import process_safely
+from .pipeline import DrainReport, Intake
+from .scan import unfinished_reason, walk
 
 log = logging.getLogger("lethe.intake")
 
@@ -47,6 +50,7 @@ class Pending:
     due: float
     ready: bool = False
     forced_at: float = field(default=0.0)
+    unfinished: bool = False   # .part or hidden: ready only when the window has passed
 
 
 def _sig(st: os.stat_result) -> tuple:
@@ -61,12 +65,14 @@ class _Handler:
         self.q = q
 
     def _name(self, path) -> str | None:
+        """The inbox-relative name of an event's path (any depth), or None when outside the inbox."""
         if not path:
             return None
-        path = os.fsdecode(path)
-        if os.path.dirname(os.path.normpath(path)) != self.inbox:
+        path = os.path.normpath(os.fsdecode(path))
+        if not path.startswith(self.inbox + os.sep):
             return None
-        return os.path.basename(path)
+        rel = path[len(self.inbox) + 1:]
+        return rel if rel and ".." not in rel.split(os.sep) else None
 
     def dispatch(self, event) -> None:
         from watchdog.events import (DirCreatedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
@@ -147,7 +153,7 @@ class InboxWatcher:
             observer = Observer(generate_full_events=True)  # inotify: moves in from outside are moves
         except TypeError:
             observer = Observer()
-        observer.schedule(_Handler(self.intake.inbox.path, self.q), self.intake.inbox.path, recursive=False,
+        observer.schedule(_Handler(self.intake.inbox.path, self.q), self.intake.inbox.path, recursive=True,
                           event_filter=[FileClosedEvent, FileMovedEvent, FileCreatedEvent, FileModifiedEvent,
                                         FileDeletedEvent, DirCreatedEvent, DirMovedEvent])
         observer.daemon = True
@@ -168,8 +174,8 @@ class InboxWatcher:
             self.observer = None
 
     def sweep(self) -> None:
-        """Note every entry already in the inbox (called once at start)."""
-        for name in self.intake.inbox.names():
+        """Note every entry already in the inbox, subfolders included (at start, and when a folder appears)."""
+        for name, _ in walk(self.intake.inbox):
             self._note(name, "sweep")
 
     # -- the loop ----------------------------------------------------------------
@@ -178,6 +184,7 @@ class InboxWatcher:
         t0 = time.time()
         if self.observer is None:
             self.start()
+        self.intake.finish_leftovers()
         self.sweep()
         self._process_ready()
         self.recovered = self.intake.reconcile(t0)
@@ -195,6 +202,7 @@ class InboxWatcher:
             if msg is not None:
                 self._handle(*msg)
             self._drain_queue()  # take everything already queued before working
+            self.intake.log.flush()  # entries the ledger could not take yet: retried with back-off
             self._check_pending()
             self._process_ready()
             self._maybe_maintain()
@@ -218,11 +226,19 @@ class InboxWatcher:
         now = time.time()
         soonest = self.next_maintenance if self.maintenance is not None else None
         if self.pending:
-            files = min(min(p.due, p.first_seen + self.force_s) for p in self.pending.values())
+            files = min(self._due(p) for p in self.pending.values())
             soonest = files if soonest is None else min(soonest, files)
+        retry = self.intake.log.wait_s()
+        if retry is not None:
+            soonest = now + retry if soonest is None else min(soonest, now + retry)
         if soonest is None:
             return None  # nothing to wait for: block until an event
         return max(0.0, soonest - now)
+
+    def _due(self, p: Pending) -> float:
+        if p.unfinished:
+            return p.first_seen + self.intake.raw_seconds
+        return min(p.due, p.first_seen + self.force_s)
 
     # -- events ------------------------------------------------------------------
     def _handle(self, what: str, name: str) -> None:
@@ -240,19 +256,28 @@ class InboxWatcher:
         self._note(name, what)
 
     def _note(self, name: str, what: str) -> None:
-        if ignored(name):
-            return
+        why = unfinished_reason(name)
+        if why == "leftover":
+            return   # our own rename before a destruction
         lst = self.intake.inbox.lstat(name)
         if lst is None:
             self.pending.pop(name, None)
             return
         if stat.S_ISDIR(lst.st_mode):
-            self._report_dir(name)
+            if what in ("dir", "moved", "changed") and name not in self.dirs_reported:
+                self.dirs_reported.add(name)
+                self.sweep()   # a folder arrived (a sync tool's dated folder): take what it holds
             return
         now = time.time()
         p = self.pending.get(name)
         if p is None:
-            p = self.pending[name] = Pending(first_seen=now, sig=_sig(lst), due=now + self.settle_s)
+            first = now
+            if why is not None:
+                first = min(now, max(lst.st_mtime, lst.st_ctime))  # already old when we first look
+            p = self.pending[name] = Pending(first_seen=first, sig=_sig(lst), due=now + self.settle_s,
+                                             unfinished=why is not None)
+        if p.unfinished:
+            return       # waits for a rename, or for the window to pass (_check_pending)
         if not stat.S_ISREG(lst.st_mode) or what in ("closed", "moved"):
             p.ready = True
         elif what == "sweep":
@@ -264,18 +289,13 @@ class InboxWatcher:
             p.due = now + self.settle_s
             p.ready = False
 
-    def _report_dir(self, name: str) -> None:
-        if name in self.dirs_reported:
-            return
-        self.dirs_reported.add(name)
-        msg = f"{self.intake.inbox.display(name)}: directory; never entered nor removed"
-        self.skipped.append(msg)
-        log.warning("skipped_directory name#=%s", self.intake.name_tag(name))
-
     def _check_pending(self) -> None:
         now = time.time()
         for name, p in list(self.pending.items()):
             if p.ready:
+                continue
+            if p.unfinished:
+                p.ready = now >= p.first_seen + self.intake.raw_seconds
                 continue
             if now >= p.first_seen + self.force_s:
                 p.ready = True  # the retention deadline beats an unfinished writer
@@ -293,8 +313,6 @@ class InboxWatcher:
                 p.sig, p.due = sig, now + self.settle_s
 
     def _process_ready(self) -> None:
-        from .pipeline import BATCH_FILES
-
         while True:
             # Oldest deadline first: the file that has existed longest goes next.
             order = []
@@ -303,14 +321,19 @@ class InboxWatcher:
                 if lst is None:
                     del self.pending[name]
                     continue
-                order.append((min(max(lst.st_mtime, lst.st_ctime), self.pending[name].first_seen), name))
+                order.append((self.intake.is_suspect(name),
+                              min(max(lst.st_mtime, lst.st_ctime), self.pending[name].first_seen), name))
             if not order:
                 return
             order.sort()
-            names = [n for _, n in order]
-            for i in range(0, len(names), BATCH_FILES):
-                group = [n for n in names[i:i + BATCH_FILES] if n in self.pending and self.pending[n].ready]
+            names = [n for *_, n in order]
+            while names:
+                size = self.intake.group_files
+                group, names = names[:size], names[size:]
+                group = [n for n in group if n in self.pending and self.pending[n].ready]
                 for n in group:
+                    if self.pending[n].unfinished:
+                        self.intake.forced.add(n)   # its window passed while we watched it
                     del self.pending[n]
                 self._take(group)
                 # Events that arrived while working may make other files ready, or change these.
@@ -330,7 +353,7 @@ class InboxWatcher:
             self._handle(*msg)
 
     def _take(self, names) -> None:
-        outs = _process_safely(self.intake, names, self.outcomes)
+        outs = process_safely(self.intake, names, self.outcomes)
         done = set()
         for out in outs:
             done.add(out.name)
@@ -339,7 +362,7 @@ class InboxWatcher:
                 self.on_outcome(out)
         now = time.time()
         for n in names:
-            if n in done or ignored(n):
+            if n in done or unfinished_reason(n) == "leftover":
                 continue
             lst = self.intake.inbox.lstat(n)
             if lst is not None and not stat.S_ISDIR(lst.st_mode):
