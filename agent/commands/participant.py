@@ -232,9 +232,14 @@ def _pause(args) -> int:
     home = home_from(args).require()
     until = time.time() + parse_duration(args.duration) if args.duration else None
     st = set_paused(home, until=until, ledger=_ledger(home))
-    when = (time.strftime("%Y-%m-%d %H:%M", time.localtime(until)) if until else "you run 'lethe resume'")
-    emit(args, st, f"Paused until {when}. Arriving raw files are still destroyed within the retention "
-                   f"window; nothing is kept from them.")
+    if until:
+        import datetime as dt
+
+        when = dt.datetime.fromtimestamp(until, home.timezone()).strftime("%a %d %b %H:%M")
+    else:
+        when = "you run 'lethe resume'"
+    emit(args, st, f"Paused until {when}. Files that arrive are destroyed without being read; "
+                   f"nothing is kept from them.")
     return 0
 
 
@@ -243,7 +248,7 @@ def _resume(args) -> int:
 
     home = home_from(args).require()
     st = clear_pause(home, ledger=_ledger(home))
-    emit(args, st, "Resumed: arriving files are featurised again.")
+    emit(args, st, "Resumed: files that arrive are taken in again.")
     return 0
 
 
@@ -264,15 +269,19 @@ def _withdraw(args) -> int:
             from ..errors import UsageError
 
             raise UsageError("withdrawal destroys everything; confirm in a terminal or pass --yes")
-        print("This destroys everything lethe holds on this laptop: codes, episodes, answers, place "
-              "names, keys and the ledger. Only a signed withdrawal certificate remains.")
+        unsent = sum(1 for p in home.outbox.iterdir() if p.is_file()) if home.outbox.exists() else 0
+        print("This cannot be undone. It destroys everything lethe holds on this laptop: the codes, your "
+              "place names, your memory-test answers, the keys and the record of what happened."
+              + (f" {unsent} prepared summary file(s) not yet sent to the study are destroyed too."
+                 if unsent else "")
+              + " Only a signed note that you withdrew remains.")
         reply = input(f"Type the study id ({cfg.get('study_id')}) to withdraw: ")
         if reply.strip() != cfg.get("study_id"):
             print("Not withdrawn.")
             return 1
     res = withdraw(home)
-    emit(args, res, f"Withdrawn. Everything was destroyed; send the certificate to the study team: "
-                    f"{res['certificate']}")
+    emit(args, res, f"You have withdrawn; everything lethe held was destroyed. Send this signed note to the "
+                    f"study team so they can remove what they already received: {res['certificate']}")
     return 0
 
 
