@@ -214,3 +214,12 @@ def test_wav_burst_in_m_per_s2_is_a_bad_unit(default_policy):
 
 def test_wav_burst_of_one_sample_is_too_short(default_policy):
     assert reason(accel_wav(_xyz(1)), default_policy, name=WAV_NAME) == "too_short"
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 600, 601])
+def test_partition_median_equals_numpy_median(n):
+    # Reference: numpy.median (the mean of the two middle values for even n).
+    from agent.intake.readers.accel import _median
+
+    x = np.random.default_rng(n).standard_normal(n)
+    assert _median(x) == float(np.median(x))

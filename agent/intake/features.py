@@ -356,17 +356,15 @@ def welch_psd(x: np.ndarray, fs: float, nperseg: int) -> tuple[np.ndarray, np.nd
     scaling, mean over segments; written in numpy because scipy's general
     machinery costs more than the transform for windows of a hundred samples.
     """
-    from numpy.lib.stride_tricks import as_strided
-
     x = np.ascontiguousarray(x, dtype=np.float64)
     step = nperseg - nperseg // 2
     n = x.shape[-1]
     n_seg = (n - nperseg) // step + 1
-    # Overlapping segments as a read-only view: (..., n_seg, nperseg).
-    seg = as_strided(x, shape=x.shape[:-1] + (n_seg, nperseg),
-                     strides=x.strides[:-1] + (step * x.strides[-1], x.strides[-1]), writeable=False)
+    # Overlapping segments as a read-only view of x: (..., n_seg, nperseg).
+    seg = np.ndarray(shape=x.shape[:-1] + (n_seg, nperseg), dtype=x.dtype, buffer=x,
+                     strides=x.strides[:-1] + (step * x.strides[-1], x.strides[-1]))
     win, win_ss = _welch_window(nperseg)
-    seg = (seg - seg.mean(axis=-1, keepdims=True)) * win
+    seg = (seg - seg.sum(axis=-1, keepdims=True) / nperseg) * win
     spec = np.abs(np.fft.rfft(seg, axis=-1))
     spec *= spec
     spec /= fs * win_ss
@@ -374,7 +372,14 @@ def welch_psd(x: np.ndarray, fs: float, nperseg: int) -> tuple[np.ndarray, np.nd
         spec[..., 1:] *= 2.0
     else:
         spec[..., 1:-1] *= 2.0
-    return np.fft.rfftfreq(nperseg, 1.0 / fs), spec.mean(axis=-2)
+    return _rfft_hz(nperseg, float(fs)), spec.sum(axis=-2) / n_seg
+
+
+@lru_cache(maxsize=16)
+def _rfft_hz(n: int, fs: float) -> np.ndarray:
+    f = np.fft.rfftfreq(n, 1.0 / fs)
+    f.flags.writeable = False
+    return f
 
 
 def dominant_hz(mag: np.ndarray, rate_hz: float, sd_g: np.ndarray | None = None) -> np.ndarray:
@@ -408,33 +413,27 @@ def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: fl
     counts = np.bincount(k, minlength=n_win)
     expected = rate_hz * window_s
     keep = np.flatnonzero(counts >= 0.5 * expected)
-    starts = np.concatenate([[0], np.cumsum(counts)])
-    enmo_sum = np.bincount(k, weights=enmo, minlength=n_win)
-    mag_sum = np.bincount(k, weights=mag, minlength=n_win)
-    mag_sq = np.bincount(k, weights=mag * mag, minlength=n_win)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        enmo_mean = enmo_sum / counts
-        mag_mean = mag_sum / counts
-        sd = np.sqrt(np.maximum(mag_sq / counts - mag_mean**2, 0.0))
-    dom = np.zeros(n_win)
+    n_kept = counts[keep]   # at least one sample each: no division by zero below
+    enmo_mean = np.bincount(k, weights=enmo, minlength=n_win)[keep] / n_kept
+    mag_mean = np.bincount(k, weights=mag, minlength=n_win)[keep] / n_kept
+    sd = np.sqrt(np.maximum(np.bincount(k, weights=mag * mag, minlength=n_win)[keep] / n_kept - mag_mean**2, 0.0))
+    dom = np.zeros(keep.size)
     if keep.size:
-        lengths = counts[keep]
-        length = int(lengths[0])
-        if (lengths == length).all() and (starts[keep] == starts[keep[0]] + length * (keep - keep[0])).all():
-            # The usual burst: every kept window full and back to back, one reshape.
-            first = int(starts[keep[0]])
-            block = mag[first:first + length * keep.size].reshape(keep.size, length)
-            dom[keep] = dominant_hz(block, rate_hz, sd_g=sd[keep])
+        length = int(n_kept[0])
+        if keep.size == n_win and (n_kept == length).all():
+            # The usual burst: every window full and back to back from the first sample.
+            dom[:] = dominant_hz(mag[:length * n_win].reshape(n_win, length), rate_hz, sd_g=sd)
         else:
             # Batch the windows of equal length through one Welch call each.
+            starts = np.concatenate([[0], np.cumsum(counts)])
             by_len: dict[int, list[int]] = {}
-            for w in keep:
-                by_len.setdefault(int(counts[w]), []).append(int(w))
-            for length, ws in by_len.items():
-                block = np.stack([mag[starts[w]:starts[w] + length] for w in ws])
-                dom[ws] = dominant_hz(block, rate_hz, sd_g=sd[ws])
-    table = np.column_stack([t[0] + keep * window_s, enmo_mean[keep], sd[keep], dom[keep]]).tolist()
-    active = (enmo_mean[keep] >= ACTIVE_ENMO_G).astype(int).tolist()
+            for i, w in enumerate(keep):
+                by_len.setdefault(int(counts[w]), []).append(i)
+            for length, idx in by_len.items():
+                block = np.stack([mag[starts[keep[i]]:starts[keep[i]] + length] for i in idx])
+                dom[idx] = dominant_hz(block, rate_hz, sd_g=sd[idx])
+    table = np.column_stack([t[0] + keep * window_s, enmo_mean, sd, dom]).tolist()
+    active = (enmo_mean >= ACTIVE_ENMO_G).astype(int).tolist()
     rows = [r + [a] for r, a in zip(table, active, strict=True)]
     return rows, int(n_win - len(keep))
 
