@@ -101,8 +101,16 @@ def demo_inbox(dst: Path, days: int, seed: int = 7) -> list[Path]:
     return files
 
 
+# Compiled bytecode for the children, kept out of the source tree (set by main()).  An installed
+# agent has its bytecode compiled at install; a process started with PYTHONDONTWRITEBYTECODE
+# (as some sandboxes set it) would recompile every module on every start and measure that instead.
+PYCACHE: Path | None = None
+
+
 def child_env(home) -> dict:
-    env = {k: v for k, v in os.environ.items() if k != "NUMBA_CACHE_DIR"}  # the CLI points it into the home
+    env = {k: v for k, v in os.environ.items() if k not in ("NUMBA_CACHE_DIR", "PYTHONDONTWRITEBYTECODE")}
+    if PYCACHE is not None:
+        env["PYTHONPYCACHEPREFIX"] = str(PYCACHE)
     # Plain key files: the fictional demo data needs no OS keyring, and the benchmark must not touch one.
     env.update(LETHE_NO_KEYRING="1", LETHE_KEY_STORAGE="plain", PYTHONPATH=str(ROOT))
     return env
@@ -338,6 +346,8 @@ def main(argv=None) -> int:
     res: dict = {"cores": os.cpu_count(), "days": args.days, "load_average_1min_at_start": os.getloadavg()[0],
                  "date_utc": time.strftime("%Y-%m-%d %H:%M", time.gmtime())}
     work = Path(tempfile.mkdtemp(prefix="lethe-bench-intake-"))
+    global PYCACHE
+    PYCACHE = work / "pycache"
     try:
         staged = work / "staged"
         t0 = time.perf_counter()
