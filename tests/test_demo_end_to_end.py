@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 import json
+from pathlib import Path
 
 import pytest
 
@@ -36,6 +37,10 @@ def test_two_day_demo_runs_every_stage(tmp_path):
     assert payload["policy_fingerprint"] == load_policy(bundled_policy_path("default")).fingerprint
     assert "truth" not in json.dumps(payload)  # the generator's ground truth never leaves
     assert (tmp_path / "work" / "audit-report" / "index.html").exists()
+    # the agent uploaded the enrolment and the bundle to the demo's study server; the dashboard shows them
+    assert facts["server_counts"]["enrolled"] == 1 and facts["server_counts"]["bundles"] == 1
+    assert facts["dashboard_ok"] is True and facts["dashboard"] in text
+    assert facts["uploaded"] == [Path(facts["bundle"]).name]
 
 
 def test_demo_refuses_a_used_directory(tmp_path):

@@ -15,6 +15,8 @@ def register(sub) -> None:
     p.add_argument("--workdir", metavar="DIR",
                    help="new or empty directory to work in (default: a fresh temporary directory)")
     p.add_argument("--policy", metavar="FILE", help="study policy (default: policies/default.toml)")
+    p.add_argument("--serve", action="store_true",
+                   help="keep the demo's study server running at the end, for its dashboard (Ctrl-C stops it)")
     add_json(p)
     p.set_defaults(func=_demo)
 
@@ -44,7 +46,8 @@ def _demo(args) -> int:
 
         os.environ["NUMBA_CACHE_DIR"] = os.path.join(platformdirs.user_cache_dir("lethe"), "numba")
     out = io.StringIO() if args.json else sys.stdout
-    facts = run_demo(args.workdir, days=args.days, seed=args.seed, policy_path=args.policy, out=out)
+    facts = run_demo(args.workdir, days=args.days, seed=args.seed, policy_path=args.policy, out=out,
+                     serve=args.serve)
     if args.json:
         emit(args, facts)
     return 0

@@ -91,6 +91,34 @@ def register(sub) -> None:
     add_json(iv)
     iv.set_defaults(func=_invite)
 
+    an = with_dir(ps.add_parser("analyse", help="cohort results: model against each rival, bootstrap on Dask"))
+    an.add_argument("--database", metavar="URL", help="read from the study server's database")
+    an.add_argument("--scheduler", metavar="tcp://HOST:8786", help="an existing Dask scheduler (default: a "
+                    "LocalCluster on this machine)")
+    an.add_argument("--workers", type=int, default=2, help="LocalCluster worker processes (default 2)")
+    an.add_argument("--boot", type=int, default=2000, help="bootstrap resamples (default 2000)")
+    an.add_argument("--seed", type=int, default=0)
+    an.add_argument("--out", metavar="FILE", help="also write the results as JSON")
+    add_json(an)
+    an.set_defaults(func=_analyse)
+
+    pl = ps.add_parser("plan", help="study planning: power by simulating and fitting synthetic participants "
+                                    "on Dask")
+    pl.add_argument("--participants", type=int, nargs="+", default=[20, 40, 80], metavar="N")
+    pl.add_argument("--trials", type=int, nargs="+", default=[40, 80], metavar="M",
+                    help="answered memory-test trials per participant")
+    pl.add_argument("--beta", type=float, default=1.0, help="mean cue strength of the synthetic participants")
+    pl.add_argument("--beta-sd", type=float, default=0.5, help="its spread across participants")
+    pl.add_argument("--gamma", type=float, default=0.5, help="how much choices follow familiarity (the rival)")
+    pl.add_argument("--studies", type=int, default=200, help="simulated studies per design (default 200)")
+    pl.add_argument("--alpha", type=float, default=0.05)
+    pl.add_argument("--power", type=float, default=0.8, help="target power (default 0.8)")
+    pl.add_argument("--seed", type=int, default=0)
+    pl.add_argument("--scheduler", metavar="tcp://HOST:8786")
+    pl.add_argument("--workers", type=int, default=2)
+    add_json(pl)
+    pl.set_defaults(func=_plan)
+
     vw = with_dir(ps.add_parser("verify-withdrawal", help="check a withdrawal certificate and record the withdrawal"))
     vw.add_argument("file")
     add_json(vw)
@@ -171,13 +199,7 @@ def _open(args) -> int:
 def _merge(args) -> int:
     from ..study.cohort.merge import merge
 
-    source = args.dir
-    if args.database:
-        from ..study.keys import load_public
-        from ..study.server.store import Store
-
-        source = Store(args.database, load_public(args.dir)["study_id"])
-    tables = merge(source, args.out)
+    tables = merge(_source(args), args.out)
     emit(args, {k: str(v) for k, v in tables.items()},
          "\n".join(f"{k}: {v}" for k, v in tables.items()))
     return 0
@@ -241,4 +263,47 @@ def _invite(args) -> int:
     codes = store.invite(args.count, args.note)
     emit(args, {"invitations": codes},
          "one-time invitation codes (shown once; only their hashes are kept):\n" + "\n".join(codes))
+    return 0
+
+
+def _progress(what):
+    import sys
+
+    def show(done, total):
+        if sys.stderr.isatty() or done == total:
+            sys.stderr.write(f"\r{what}: {done}/{total} tasks done" + ("\n" if done == total else ""))
+            sys.stderr.flush()
+    return show
+
+
+def _source(args):
+    if not getattr(args, "database", None):
+        return args.dir
+    from ..study.keys import load_public
+    from ..study.server.store import Store
+
+    return Store(args.database, load_public(args.dir)["study_id"])
+
+
+def _analyse(args) -> int:
+    import json
+    from pathlib import Path
+
+    from ..study.cohort.analyse import analyse, analyse_text
+
+    res = analyse(_source(args), scheduler=args.scheduler, n_workers=args.workers, n_boot=args.boot,
+                  seed=args.seed, progress=_progress("bootstrap"))
+    if args.out:
+        Path(args.out).write_text(json.dumps(res, indent=1, sort_keys=True) + "\n", "utf-8")
+    emit(args, res, analyse_text(res))
+    return 0
+
+
+def _plan(args) -> int:
+    from ..study.cohort.plan import PlanModel, plan, plan_text
+
+    res = plan(args.participants, args.trials, model=PlanModel(args.beta, args.beta_sd, args.gamma),
+               n_studies=args.studies, alpha=args.alpha, target_power=args.power, seed=args.seed,
+               scheduler=args.scheduler, n_workers=args.workers, progress=_progress("simulated fits"))
+    emit(args, res, plan_text(res))
     return 0

@@ -33,6 +33,7 @@ class DemoContext:
     out: object = sys.stdout
     started: float = field(default_factory=time.monotonic)
     facts: dict = field(default_factory=dict)
+    server: object = None  # the study server (agent.study.server.run.ServerThread) while the demo runs
 
     @property
     def study_dir(self) -> Path:
@@ -50,7 +51,7 @@ class DemoContext:
         self.say(f"== {title}  (t+{time.monotonic() - self.started:.1f} s)")
 
 
-def run_demo(workdir=None, days: int = 14, seed: int = 7, policy_path=None, out=None) -> dict:
+def run_demo(workdir=None, days: int = 14, seed: int = 7, policy_path=None, out=None, serve: bool = False) -> dict:
     """Run every stage on a fresh fictional participant and return the facts printed."""
     from ..policy import bundled_policy_path
 
@@ -71,10 +72,22 @@ def run_demo(workdir=None, days: int = 14, seed: int = 7, policy_path=None, out=
                       out=out or sys.stdout)
     ctx.say(f"lethe demo: a fictional participant, {days} simulated day(s), seed {seed}")
     ctx.say(f"work directory: {workdir}")
-    for step in STEPS:
-        step(ctx)
-    ctx.stage("Done")
-    ctx.say(f"Everything is in {workdir}")
+    try:
+        for step in STEPS:
+            step(ctx)
+        ctx.stage("Done")
+        ctx.say(f"Everything is in {workdir}")
+        ctx.say(f"Researcher's dashboard: {ctx.facts['dashboard']} (password {ctx.facts['dashboard_password']})")
+        if serve:
+            ctx.say("The study server keeps running for the dashboard; press Ctrl-C to stop it.")
+            try:
+                while True:
+                    time.sleep(3600)
+            except KeyboardInterrupt:
+                pass
+    finally:
+        if getattr(ctx, "server", None) is not None:
+            ctx.server.stop()
     ctx.facts["workdir"] = str(workdir)
     ctx.facts["seconds"] = round(time.monotonic() - ctx.started, 1)
     return ctx.facts
@@ -86,14 +99,28 @@ def researcher_setup(ctx: DemoContext) -> None:
     from ..study.card import write_card
     from ..study.keys import study_keygen
 
-    ctx.stage("Researcher: study keys and study card")
+    import secrets
+
+    from ..study.server.app import ServerSettings
+    from ..study.server.run import ServerThread
+
+    ctx.stage("Researcher: study keys, study server and study card")
     policy = load_policy(ctx.policy_path)
     study_keygen(ctx.study_dir, policy.study.study_id, DEMO_PASSPHRASE)
+    # The study server on loopback only, with a self-signed certificate whose pin goes on the card.
+    password = secrets.token_urlsafe(12)
+    server = ServerThread(ctx.study_dir, DEMO_PASSPHRASE, ServerSettings(password))  # certificate and port
     card = write_card(ctx.study_dir, [ctx.policy_path], contact=policy.study.contact,
-                      out=ctx.workdir / "harbour-days.card.json")
+                      out=ctx.workdir / "harbour-days.card.json", server_url=server.url, server_pin=server.pin)
+    ctx.server = server.start()
+    ctx.facts.update(server_url=server.url, dashboard=f"{server.url}/dashboard", dashboard_password=password,
+                     server_pin=server.pin)
     ctx.facts["card"] = str(card)
-    ctx.say(f"Created the study key pair (HPKE, X25519) in {ctx.study_dir / 'keys'} and the study card "
-            f"{card.name}, approving policy {policy.policy.name} ({policy.fingerprint[:16]}...).")
+    ctx.facts["invitation"] = server.ctx.store.invite(1, "demo participant")[0]
+    ctx.say(f"Created the study key pair (HPKE, X25519) in {ctx.study_dir / 'keys'}, started the study server at "
+            f"{server.url} (self-signed certificate, SHA-256 pin {server.pin[:16]}...), and wrote the study card "
+            f"{card.name}, approving policy {policy.policy.name} ({policy.fingerprint[:16]}...) and naming the "
+            f"server and its pin. One invitation code issued: {ctx.facts['invitation']}.")
 
 
 def participant_enrols(ctx: DemoContext) -> None:
@@ -117,6 +144,13 @@ def participant_enrols(ctx: DemoContext) -> None:
                 now=start, enrolment_out=ctx.workdir / "enrolment.json", confirm_fingerprint=published,
                 key_storage=storage)
     enroll(ctx.study_dir, ctx.workdir / "enrolment.json")
+    from ..uploader import Uploader
+
+    up = Uploader(Path(ctx.home_dir))
+    up.enqueue_enrolment(ctx.facts["invitation"], ctx.workdir / "enrolment.json")
+    sent = up.run_once()
+    ctx.say(f"The agent sent the enrolment with the invitation code to the study server "
+            f"({'acknowledged' if sent['sent'] else 'not acknowledged: ' + str(sent['error'])}).")
     ctx.facts["pseudonym"] = res["pseudonym"]
     ctx.say(f"The participant read the consent text, confirmed study id {policy.study.study_id}, "
             f"compared the study key fingerprint {published[:16]}... with the published one, "
@@ -298,7 +332,17 @@ def export_bundle_step(ctx: DemoContext) -> None:
     path = export_bundle(home, policy, now=_now(ctx), confirm=confirm)
     ctx.facts["bundle"] = str(path)
     ctx.say(shown.get("text", "").rstrip())
-    ctx.say(f"The participant confirmed; sealed and signed bundle: {path.name} ({path.stat().st_size} bytes).")
+    ctx.say(f"The participant confirmed; sealed and signed bundle: {path.name} ({path.stat().st_size} bytes), "
+            f"prepared in the outbox.")
+    from ..uploader import Uploader, queue_status
+
+    up = Uploader(home)
+    up.enqueue_outbox()
+    up.run_once()
+    st = queue_status(home)
+    ctx.facts["uploaded"] = [s["name"] for s in st["sent"] if s["kind"] == "bundle"]
+    ctx.say(f"The agent uploaded it over pinned HTTPS: {len(ctx.facts['uploaded'])} bundle(s) sent "
+            f"(acknowledged by the study server), {len(st['prepared'])} still prepared and waiting.")
 
 
 def researcher_opens(ctx: DemoContext) -> None:
@@ -315,6 +359,32 @@ def researcher_opens(ctx: DemoContext) -> None:
     rep = report(ctx.study_dir, ctx.workdir / "cohort" / "report")
     tables = sorted({Path(p).stem for p in merged.values()})
     ctx.say(f"Cohort tables ({', '.join(tables)}) in {ctx.workdir / 'cohort'}; report at {rep}.")
+    counts = ctx.server.ctx.store.counts()
+    ctx.facts["server_counts"] = counts
+    seen = _dashboard_check(ctx)
+    ctx.say(f"The study server holds {counts['enrolled']} enrolled participant(s) and {counts['bundles']} "
+            f"bundle(s), verified on arrival exactly as 'lethe study open' verifies. The researcher's dashboard "
+            f"{'shows the cohort' if seen else 'could not be read'}: {ctx.facts['dashboard']} "
+            f"(password {ctx.facts['dashboard_password']}; the server stops when the demo ends unless it was "
+            f"started with --serve).")
+
+
+def _dashboard_check(ctx) -> bool:
+    """Log in to the dashboard as the researcher would and check it lists the cohort."""
+    import httpx
+
+    from ..uploader import pinned_context
+
+    verify = pinned_context(ctx.facts["server_url"], ctx.facts["server_pin"])
+    with httpx.Client(base_url=ctx.facts["server_url"], verify=verify, timeout=60) as c:
+        r = c.post("/login", content=f"password={ctx.facts['dashboard_password']}".encode(),
+                   headers={"Content-Type": "application/x-www-form-urlencoded"})
+        if r.status_code != 303:
+            return False
+        page = c.get("/dashboard").text
+    ok = 'id="n-enrolled">1<' in page and 'id="n-bundles">1<' in page
+    ctx.facts["dashboard_ok"] = ok
+    return ok
 
 
 def ethics_board_audits(ctx: DemoContext) -> None:

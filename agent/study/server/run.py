@@ -58,3 +58,56 @@ def serve(study_dir, passphrase, settings: ServerSettings, *, host: str = "127.0
             ready(f"https://{host}:{port}", pin)
         server.startup = startup  # type: ignore[method-assign]
     server.run()
+
+
+class ServerThread:
+    """The study server in a background thread of this process (the demo; loopback use).
+
+    ``start()`` returns once the socket is bound; ``stop()`` shuts it down.
+    """
+
+    def __init__(self, study_dir, passphrase, settings: ServerSettings, *, host: str = "127.0.0.1",
+                 port: int = 0, database: str | None = None):
+        import socket
+
+        from .tls import cert_pin, self_signed
+
+        self.cert, self.key = self_signed(study_dir, hosts=("localhost", "127.0.0.1", host))
+        self.pin = cert_pin(Path(self.cert).read_bytes())
+        if port == 0:
+            with socket.socket() as s:
+                s.bind((host, 0))
+                port = s.getsockname()[1]
+        self.host, self.port = host, port
+        self.url = f"https://{host}:{port}"
+        self.study_dir, self.passphrase, self.settings, self.database = study_dir, passphrase, settings, database
+        self.ctx = None
+        self._server = None
+        self._thread = None
+
+    def start(self) -> ServerThread:
+        import threading
+        import time
+
+        import uvicorn
+
+        self.ctx, app = build(self.study_dir, self.passphrase, self.settings, self.database)
+        cfg = uvicorn.Config(app, host=self.host, port=self.port, ssl_certfile=str(self.cert),
+                             ssl_keyfile=str(self.key), log_level="warning", access_log=False, server_header=False)
+        self._server = uvicorn.Server(cfg)
+        self._server.install_signal_handlers = lambda: None  # type: ignore[method-assign]
+        self._thread = threading.Thread(target=self._server.run, name="lethe-study-server", daemon=True)
+        self._thread.start()
+        deadline = time.monotonic() + 30
+        while not self._server.started:
+            if not self._thread.is_alive() or time.monotonic() > deadline:
+                raise StateError(f"the study server did not start on {self.url}")
+            time.sleep(0.02)
+        return self
+
+    def stop(self) -> None:
+        if self._server is not None:
+            self._server.should_exit = True
+            self._thread.join(15)
+        if self.ctx is not None:
+            self.ctx.store.close()
