@@ -48,19 +48,29 @@ def test_error_names_source_key_and_expectation():
     with pytest.raises(ContractError) as e:
         validate("policy", _policy(quiz__options=1), "p.json")
     assert e.value.key == "quiz.options"
-    assert str(e.value) == "p.json: [quiz.options] value 1 is out of range: expected >= 2"
+    assert str(e.value) == "p.json: [quiz.options] expected >= 2, got 1"
     assert isinstance(e.value, DataError)
 
 
 def test_json_syntax_calls_an_object_an_object():
     doc = _policy()
     doc["episodes"] = 3
-    with pytest.raises(ContractError, match=r"\[episodes\] value 3 has the wrong type: expected an object"):
+    with pytest.raises(ContractError, match=r"\[episodes\] expected an object, got an integer"):
         validate("policy", doc, "p.json")
 
 
+def test_toml_syntax_words_values_and_tables():
+    doc = _policy(quiz__options=1)
+    with pytest.raises(ContractError, match=r"\[quiz.options\] value 1 is out of range: expected >= 2"):
+        validate("policy", doc, "p.toml", syntax="toml")
+    doc = _policy()
+    doc["episodes"] = 3
+    with pytest.raises(ContractError, match=r"\[episodes\] expected a table \[episodes\], got int"):
+        validate("policy", doc, "p.toml", syntax="toml")
+
+
 def test_non_finite_number_is_refused():
-    with pytest.raises(ContractError, match=r"\[retention.raw_seconds\] value inf is not allowed: expected a finite"):
+    with pytest.raises(ContractError, match=r"\[retention.raw_seconds\] expected a finite number, got inf"):
         validate("policy", _policy(retention__raw_seconds=float("inf")), "p.json")
 
 
@@ -69,7 +79,7 @@ def test_error_class_can_be_chosen():
         def __init__(self, source, key, message):
             super().__init__(f"{source}|{key}|{message}")
 
-    with pytest.raises(Mine, match=r"^x\|quiz.foils\|value 'often'"):
+    with pytest.raises(Mine, match=r"^x\|quiz.foils\|expected one of 'uniform', 'frequency', got 'often'"):
         validate("policy", _policy(quiz__foils="often"), "x", error=Mine)
 
 

@@ -45,7 +45,7 @@ from ..errors import DataError
 
 __all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "iter_problems", "schema", "validate"]
 
-SCHEMA_NAMES = ("policy", "board-limits")
+SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal")
 
 
 class ContractError(DataError):
@@ -93,34 +93,32 @@ def _validator(name: str) -> Draft202012Validator:
 # -- messages ----------------------------------------------------------------------------
 _TYPE_WORDS = {"number": "a number", "integer": "an integer", "string": "a string", "boolean": "true or false",
                "array": "a list", "object": "an object", "null": "null"}
+_JSON_TYPE = {bool: "true or false", int: "an integer", float: "a number", str: "a string", list: "a list",
+              dict: "an object", type(None): "null"}
 
 
 def _dotted(path) -> str:
-    """Dotted object keys up to the first list index (a list is named as a whole)."""
-    parts = []
-    for p in path:
+    """Dotted key: ``places[1].sound``; a trailing list index is dropped (the list is named as a whole)."""
+    out = ""
+    path = list(path)
+    for n, p in enumerate(path):
         if isinstance(p, int):
-            break
-        parts.append(str(p))
-    return ".".join(parts)
+            if n == len(path) - 1:
+                break
+            out += f"[{p}]"
+        else:
+            out += f".{p}" if out else str(p)
+    return out
 
 
-def _index(path) -> int | None:
-    for p in path:
-        if isinstance(p, int):
-            return p
-    return None
+def _item(path) -> int | None:
+    path = list(path)
+    return path[-1] if path and isinstance(path[-1], int) else None
 
 
 def _type_words(t, syntax: str) -> str:
     ts = t if isinstance(t, list) else [t]
-    words = []
-    for x in ts:
-        w = _TYPE_WORDS.get(x, x)
-        if x == "object" and syntax == "toml":
-            w = "a table"
-        words.append(w)
-    return " or ".join(words)
+    return " or ".join("a table" if x == "object" and syntax == "toml" else _TYPE_WORDS.get(x, x) for x in ts)
 
 
 def _show(value) -> str:
@@ -132,13 +130,32 @@ def _member_noun(schema_obj: dict) -> str:
     return schema_obj.get("x-lethe-member", "field")
 
 
+class _Say:
+    """Words in the house style of a format: TOML files ("value X is out of range: expected Y")
+    or JSON documents ("expected Y, got X")."""
+
+    def __init__(self, syntax: str):
+        self.toml = syntax == "toml"
+        self.syntax = syntax
+
+    def bad_value(self, v, expected: str) -> str:
+        return f"value {_show(v)} is out of range: expected {expected}" if self.toml else \
+            f"expected {expected}, got {_show(v)}"
+
+    def bad_type(self, v, expected: str) -> str:
+        if self.toml:
+            return f"value {_show(v)} has the wrong type: expected {expected}"
+        return f"expected {expected}, got {_JSON_TYPE.get(type(v), type(v).__name__)}"
+
+
 def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
     """(dotted key, message) for one jsonschema error."""
+    say = _Say(syntax)
     path = list(err.absolute_path)
     key = _dotted(path)
-    idx = _index(path)
-    where = f"item {idx} " if idx is not None else ""
+    item = _item(path)
     v, kw, sch = err.instance, err.validator, err.schema
+    whole = getattr(err, "_lethe_list", None) if item is not None else None
     if kw == "additionalProperties":
         allowed = list(sch.get("properties", {}))
         extra = [k for k in v if k not in allowed] if isinstance(v, dict) else []
@@ -157,67 +174,51 @@ def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
         sub = sch.get("properties", {}).get(name, {})
         noun = _member_noun(sch)
         dotted = f"{key}.{name}" if key else name
-        if sub.get("type") == "object":
-            return dotted, f"missing {_member_noun(sch)} [{name}]"
+        if noun == "section":
+            return dotted, f"missing section [{name}]"
         desc = sub.get("description") or _type_words(sub.get("type", "?"), syntax)
         return dotted, f"required {noun} is missing ({desc.rstrip('.')})"
     if kw == "type":
         if sch.get("type") == "object" and syntax == "toml":
             return key, f"expected a table [{key}], got {type(v).__name__}"
-        return key, f"{where}value {_show(v)} has the wrong type: expected {_type_words(sch['type'], syntax)}"
+        return key, say.bad_type(v, _type_words(sch["type"], syntax))
     if kw in ("minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum"):
         sign = {"minimum": ">=", "maximum": "<=", "exclusiveMinimum": ">", "exclusiveMaximum": "<"}[kw]
-        return key, f"{where}value {_show(v)} is out of range: expected {sign} {err.validator_value}"
+        return key, say.bad_value(v, f"{sign} {err.validator_value}")
     if kw == "const":
-        return key, f"{where}value {_show(v)} is not allowed: expected {_show(err.validator_value)}"
+        return key, say.bad_value(v, _show(err.validator_value))
     if kw == "enum":
-        choices = ", ".join(repr(c) for c in err.validator_value)
-        if idx is not None:
-            return key, f"value {_show(_parent_list(err))} is out of range: expected a list drawn from " \
-                        f"{list(err.validator_value)} (unknown: {_unknown(err)})"
-        return key, f"value {_show(v)} is out of range: expected one of {choices}"
+        if whole is not None:
+            unknown = [x for x in whole if x not in err.validator_value]
+            return key, say.bad_value(whole, f"a list drawn from {list(err.validator_value)} (unknown: {unknown})")
+        return key, say.bad_value(v, "one of " + ", ".join(repr(c) for c in err.validator_value))
     if kw == "uniqueItems":
-        return key, f"value {_show(v)} is out of range: expected a list without repeats"
+        return key, say.bad_value(v, "a list without repeats")
     if kw == "minItems":
-        n = err.validator_value
-        return key, f"value {_show(v)} is out of range: expected a non-empty list" if n == 1 else \
-            f"value {_show(v)}: expected at least {n} items"
+        return key, say.bad_value(v, "a non-empty list" if err.validator_value == 1
+                                  else f"at least {err.validator_value} items")
     if kw == "maxItems":
-        return key, f"value of {len(v)} items: expected at most {err.validator_value}"
+        return key, say.bad_value(f"{len(v)} items", f"at most {err.validator_value} items")
     if kw in ("minLength", "maxLength"):
         words = "at least" if kw == "minLength" else "at most"
-        return key, f"{where}value {_show(v)}: expected {words} {err.validator_value} characters"
+        return key, say.bad_value(v, f"{words} {err.validator_value} characters")
     if kw in ("pattern", "format"):
         expected = sch.get("x-lethe-expected") or (_FORMAT_WORDS.get(err.validator_value) if kw == "format"
                                                     else f"text matching {err.validator_value}")
-        if idx is not None:
-            return key, f"value {_show(_parent_list(err))} is out of range: expected {expected} (got {_show(v)})"
-        return key, f"value {_show(v)} is out of range: expected {expected}"
-    if kw in ("minProperties", "maxProperties"):
-        return key, f"{err.message}"
+        if whole is not None:
+            return key, say.bad_value(whole, f"{expected} (item {item}: {_show(v)})")
+        return key, say.bad_value(v, expected)
     expected = sch.get("x-lethe-expected")
-    return key, f"{where}value {_show(v)}: expected {expected}" if expected else f"{where}{err.message}"
-
-
-def _parent_list(err: ValidationError):
-    # the list that holds the failing item (err.parent is not set for items; walk from the root)
-    return getattr(err, "_lethe_list", err.instance)
-
-
-def _unknown(err: ValidationError) -> list:
-    lst = _parent_list(err)
-    allowed = err.validator_value
-    return [x for x in lst if x not in allowed] if isinstance(lst, list) else [err.instance]
+    return key, say.bad_value(v, expected) if expected else err.message
 
 
 _PRIORITY = {"additionalProperties": 0, "required": 1, "type": 2, "const": 3}
 
 
 def _order(err: ValidationError) -> tuple:
-    # Document order of the path's object keys, then the kind of error: the
-    # first problem a reader meets is reported, unknown names before values.
-    return (len(_dotted(err.absolute_path).split(".")) if _dotted(err.absolute_path) else 0,
-            _PRIORITY.get(err.validator, 9))
+    # Shallow problems first, and among them unknown or missing names before
+    # values: the first problem a reader would meet is reported.
+    return (len(err.absolute_path), _PRIORITY.get(err.validator, 9))
 
 
 def _non_finite(obj, path=()) -> Iterator[tuple[tuple, float]]:
@@ -241,7 +242,7 @@ def iter_problems(name: str, obj: Any, *, syntax: str = "json") -> Iterator[tupl
     """Every ``(dotted key, message)`` problem of ``obj`` against schema ``name``, most relevant first."""
     for path, v in _non_finite(obj):
         key = _dotted(path)
-        yield key, f"value {v!r} is not allowed: expected a finite number"
+        yield key, _Say(syntax).bad_value(v, "a finite number")
     errors = list(_validator(name).iter_errors(obj))
     for e in errors:
         p = list(e.absolute_path)

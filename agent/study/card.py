@@ -20,39 +20,22 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import re
+import dataclasses
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from .. import contracts
 from ..errors import DataError, IntegrityError, StateError
 from ..fsutil import write_private
 from ..identity import device_key_id
 from ..canonical import dumps as canonical_json
-from .keys import PUBLIC_KEY_BYTES, SUITES, _check_study_id, b64d, b64e, key_fingerprint, load_public
+from .keys import PUBLIC_KEY_BYTES, SUITES, b64d, b64e, key_fingerprint, load_public
 
 CARD_FORMAT = "lethe-study-card"
 CARD_VERSION = 2
 CARD_VERSION_SERVER = 3  # version 2 plus "server": {"url", "certificate_sha256"} (docs/server.md)
 ENROLMENT_FORMAT = "lethe-enrolment"
 ENROLMENT_VERSION = 2
-
-_HEX64 = re.compile(r"^[0-9a-f]{64}$")
-_HEX16 = re.compile(r"^[0-9a-f]{16}$")
-_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
-_PSEUDONYM = re.compile(r"^[A-Za-z0-9_-]{4,64}$")
-
-CARD_FIELDS = {
-    "format": str, "version": int, "study_id": str, "suite": str, "kem": str, "kdf": str, "aead": str,
-    "public_key": str, "key_fingerprint": str, "approved_policies": list, "contact": str,
-    "consent_text": str, "issued": str,
-}
-ENROLMENT_FIELDS = {
-    "format": str, "version": int, "study_id": str, "pseudonym": str, "device_public_key": str,
-    "device_key_id": str, "policy_fingerprint": str, "created": str, "signature": str,
-}
-# Optional: the device ledger's origin (its first entry's hash; docs/ledger.md), signed with the rest.
-ENROLMENT_OPTIONAL = {"log_origin": str}
-
 
 @dataclass(frozen=True)
 class StudyCard:
@@ -101,25 +84,6 @@ def _check_header(doc, fmt: str, version: int, source, what: str) -> None:
                         f"this lethe reads version {version}")
 
 
-def _check_fields(doc, spec: dict, source, what: str, optional: dict | None = None) -> None:
-    if not isinstance(doc, dict):
-        raise DataError(f"{source}: expected a JSON object ({what})")
-    optional = optional or {}
-    unknown = sorted(set(doc) - set(spec) - set(optional))
-    if unknown:
-        raise DataError(f"{source}: [{unknown[0]}] unknown field in a {what}; "
-                        f"allowed: {', '.join([*spec, *optional])}")
-    for k, t in optional.items():
-        if k in doc and not isinstance(doc[k], t):
-            raise DataError(f"{source}: [{k}] expected {t.__name__}, got {type(doc[k]).__name__}")
-    for k, t in spec.items():
-        if k not in doc:
-            raise DataError(f"{source}: [{k}] required field is missing from the {what}")
-        v = doc[k]
-        if not isinstance(v, t) or (t is int and isinstance(v, bool)):
-            raise DataError(f"{source}: [{k}] expected {t.__name__}, got {type(v).__name__}")
-
-
 def _read_json(path, what: str) -> dict:
     p = Path(path)
     try:
@@ -141,53 +105,31 @@ def _read_json(path, what: str) -> dict:
 def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
     """Validate a card document strictly and return a :class:`StudyCard`.
 
-    Version 2 has no server; version 3 adds ``server`` = ``{"url": "https://...",
-    "certificate_sha256": hex64}``, where agents upload and the certificate they pin.
+    The shape is ``agent/contracts/schemas/study-card.json``.  Version 2 has no
+    server; version 3 adds ``server`` = ``{"url": "https://...", "certificate_sha256": hex64}``,
+    where agents upload and the certificate they pin.  Beyond the schema: the
+    suite's algorithms, the key length and the key fingerprint.
     """
-    server = None
-    if isinstance(doc, dict) and doc.get("format") == CARD_FORMAT and doc.get("version") == CARD_VERSION_SERVER:
-        _check_fields(doc, {**CARD_FIELDS, "server": dict}, source, "study card")
-        server = _check_server(doc["server"], source)
-        doc = {k: v for k, v in doc.items() if k != "server"} | {"version": CARD_VERSION}
-    _check_header(doc, CARD_FORMAT, CARD_VERSION, source, "study card")
-    _check_fields(doc, CARD_FIELDS, source, "study card")
-    _check_study_id(doc["study_id"], source)
+    version = doc.get("version") if isinstance(doc, dict) else None
+    _check_header(doc, CARD_FORMAT, CARD_VERSION_SERVER if version == CARD_VERSION_SERVER else CARD_VERSION,
+                  source, "study card")
+    contracts.validate("study-card", doc, source)
     suite = doc["suite"]
-    if suite not in SUITES:
-        raise DataError(f"{source}: [suite] {suite!r} is not one of {', '.join(SUITES)}")
     for k in ("kem", "kdf", "aead"):
         if doc[k] != SUITES[suite][k]:
             raise DataError(f"{source}: [{k}] {doc[k]!r} does not match suite {suite!r} ({SUITES[suite][k]!r})")
     public = b64d(doc["public_key"], what="public_key", source=source)
     if len(public) != PUBLIC_KEY_BYTES[suite]:
-        raise DataError(f"{source}: [public_key] a {suite!r} key has {PUBLIC_KEY_BYTES[suite]} bytes, got {len(public)}")
-    if not _HEX64.match(doc["key_fingerprint"]):
-        raise DataError(f"{source}: [key_fingerprint] expected 64 lower-case hex digits")
+        raise DataError(f"{source}: [public_key] a {suite!r} key has {PUBLIC_KEY_BYTES[suite]} bytes, "
+                        f"got {len(public)}")
     if key_fingerprint(public) != doc["key_fingerprint"]:
         raise IntegrityError(f"{source}: [key_fingerprint] does not match the card's public key "
                              f"(card says {doc['key_fingerprint'][:16]}…, key hashes to "
                              f"{key_fingerprint(public)[:16]}…)")
-    pols = doc["approved_policies"]
-    if not pols or not all(isinstance(p, str) and _HEX64.match(p) for p in pols) or len(set(pols)) != len(pols):
-        raise DataError(f"{source}: [approved_policies] expected a non-empty list of distinct policy "
-                        f"fingerprints (64 lower-case hex digits each)")
-    if not _DATE.match(doc["issued"]):
-        raise DataError(f"{source}: [issued] expected a date YYYY-MM-DD, got {doc['issued']!r}")
-    return StudyCard(doc["study_id"], suite, public, doc["key_fingerprint"], tuple(pols),
+    server = (doc["server"]["url"].rstrip("/"), doc["server"]["certificate_sha256"]) if "server" in doc else None
+    return StudyCard(doc["study_id"], suite, public, doc["key_fingerprint"], tuple(doc["approved_policies"]),
                      doc["contact"], doc["consent_text"], doc["issued"], str(source),
                      *(server or (None, None)))
-
-
-def _check_server(v, source) -> tuple[str, str]:
-    if not isinstance(v, dict) or set(v) != {"url", "certificate_sha256"}:
-        raise DataError(f"{source}: [server] expected an object with exactly 'url' and 'certificate_sha256'")
-    url, pin = v["url"], v["certificate_sha256"]
-    if not isinstance(url, str) or not re.fullmatch(r"https://[A-Za-z0-9.\-\[\]:]+(:\d{1,5})?/?", url):
-        raise DataError(f"{source}: [server.url] expected https://HOST[:PORT], got {url!r}")
-    if not isinstance(pin, str) or not _HEX64.match(pin):
-        raise DataError(f"{source}: [server.certificate_sha256] expected 64 lower-case hex digits "
-                        f"(SHA-256 of the server certificate, DER)")
-    return url.rstrip("/"), pin
 
 
 def load_card(path) -> StudyCard:
@@ -223,10 +165,10 @@ def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.da
     card = StudyCard(pub["study_id"], pub["suite"], pub["public_key"], pub["key_fingerprint"],
                      tuple(fps), contact, pols[0].study.consent_text, issued)
     if server_url is not None or server_pin is not None:
-        url, pin = _check_server({"url": server_url, "certificate_sha256": server_pin}, "study card")
-        card = StudyCard(*[getattr(card, f) for f in ("study_id", "suite", "public_key", "key_fingerprint",
-                                                      "approved_policies", "contact", "consent_text", "issued",
-                                                      "source")], server_url=url, server_pin=pin)
+        server = {"url": server_url, "certificate_sha256": server_pin}
+        contracts.validate("study-card", {**card.as_dict(), "version": CARD_VERSION_SERVER, "server": server},
+                           "study card")
+        card = dataclasses.replace(card, server_url=server_url.rstrip("/"), server_pin=server_pin)
     return card
 
 
@@ -299,10 +241,6 @@ def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, 
         checks every bundle's log against it (``docs/ledger.md``).
     """
     check_policy_approved(card, policy)
-    if log_origin is not None and not _HEX64.match(log_origin):
-        raise DataError(f"[log_origin] {log_origin!r}: expected 64 lower-case hex digits")
-    if not isinstance(pseudonym, str) or not _PSEUDONYM.match(pseudonym):
-        raise DataError(f"[pseudonym] {pseudonym!r}: expected 4-64 characters from A-Z a-z 0-9 _ -")
     pub = _raw_public(device_private_key)
     created = (created or _dt.datetime.now(_dt.timezone.utc).date()).isoformat()
     doc = {"format": ENROLMENT_FORMAT, "version": ENROLMENT_VERSION, "study_id": card.study_id,
@@ -310,6 +248,8 @@ def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, 
            "policy_fingerprint": policy.fingerprint, "created": created}
     if log_origin is not None:
         doc["log_origin"] = log_origin
+    # Checked before signing: a bad pseudonym or log origin names the field.
+    contracts.validate("enrolment", {**doc, "signature": ""}, "<new enrolment>")
     doc["signature"] = b64e(device_private_key.sign(canonical_json(doc)))
     return doc
 
@@ -337,21 +277,12 @@ def verify_enrolment(doc: dict, source="<memory>") -> dict:
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
     _check_header(doc, ENROLMENT_FORMAT, ENROLMENT_VERSION, source, "enrolment")
-    _check_fields(doc, ENROLMENT_FIELDS, source, "enrolment", ENROLMENT_OPTIONAL)
-    if "log_origin" in doc and not _HEX64.match(doc["log_origin"]):
-        raise DataError(f"{source}: [log_origin] expected 64 lower-case hex digits")
-    _check_study_id(doc["study_id"], source)
-    if not _PSEUDONYM.match(doc["pseudonym"]):
-        raise DataError(f"{source}: [pseudonym] expected 4-64 characters from A-Z a-z 0-9 _ -")
+    contracts.validate("enrolment", doc, source)
     pub = b64d(doc["device_public_key"], what="device_public_key", source=source)
     if len(pub) != 32:
         raise DataError(f"{source}: [device_public_key] an Ed25519 public key has 32 bytes, got {len(pub)}")
-    if not _HEX16.match(doc["device_key_id"]) or doc["device_key_id"] != device_key_id(pub):
+    if doc["device_key_id"] != device_key_id(pub):
         raise DataError(f"{source}: [device_key_id] does not match the device public key")
-    if not _HEX64.match(doc["policy_fingerprint"]):
-        raise DataError(f"{source}: [policy_fingerprint] expected 64 lower-case hex digits")
-    if not _DATE.match(doc["created"]):
-        raise DataError(f"{source}: [created] expected a date YYYY-MM-DD")
     sig = b64d(doc["signature"], what="signature", source=source)
     body = canonical_json({k: v for k, v in doc.items() if k != "signature"})
     try:

@@ -16,27 +16,19 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import re
 from dataclasses import dataclass
 from pathlib import Path
 
+from .. import contracts
 from ..errors import DataError, IntegrityError, StateError
 from ..fsutil import write_private
 from ..canonical import dumps as canonical_json
 from ..identity import device_key_id
-from .card import _PSEUDONYM, _check_fields, _check_header, _read_json
-from .keys import _check_study_id, b64d, b64e
+from .card import _check_header, _read_json
+from .keys import b64d, b64e
 
 WITHDRAWAL_FORMAT = "lethe-withdrawal"
 WITHDRAWAL_VERSION = 1
-
-FIELDS = {
-    "format": str, "version": int, "study_id": str, "pseudonym": str, "device_public_key": str,
-    "device_key_id": str, "time": str, "ledger_head": dict, "counts_destroyed": dict, "signature": str,
-}
-_TIME = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}Z$")
-_TABLE = re.compile(r"^[a-z][a-z0-9_]{0,63}$")
-
 
 def _minute_utc(now) -> str:
     if now is None:
@@ -72,7 +64,7 @@ def make_withdrawal_certificate(study_id: str, pseudonym: str, device_private_ke
            "time": _minute_utc(now),
            "ledger_head": {"seq": int(ledger_head["seq"]), "hash": str(ledger_head["hash"])},
            "counts_destroyed": {str(k): int(v) for k, v in sorted(counts_destroyed.items())}}
-    _check_body(doc, "<new certificate>")
+    contracts.validate("withdrawal", {**doc, "signature": ""}, "<new certificate>")
     doc["signature"] = b64e(device_private_key.sign(canonical_json(doc)))
     return doc
 
@@ -80,21 +72,6 @@ def make_withdrawal_certificate(study_id: str, pseudonym: str, device_private_ke
 def write_withdrawal_certificate(path, cert: dict) -> Path:
     write_private(Path(path), (json.dumps(cert, indent=2, sort_keys=True) + "\n").encode())
     return Path(path)
-
-
-def _check_body(doc: dict, source) -> None:
-    _check_study_id(doc["study_id"], source)
-    if not _PSEUDONYM.match(doc["pseudonym"]):
-        raise DataError(f"{source}: [pseudonym] expected 4-64 characters from A-Z a-z 0-9 _ -")
-    if not _TIME.match(doc["time"]):
-        raise DataError(f"{source}: [time] expected UTC minutes YYYY-MM-DDTHH:MMZ, got {doc['time']!r}")
-    head = doc["ledger_head"]
-    if (set(head) != {"seq", "hash"} or not isinstance(head["seq"], int) or isinstance(head["seq"], bool)
-            or head["seq"] < 0 or not isinstance(head["hash"], str) or not head["hash"]):
-        raise DataError(f"{source}: [ledger_head] expected {{'seq': int >= 0, 'hash': str}}")
-    for k, v in doc["counts_destroyed"].items():
-        if not _TABLE.match(k) or not isinstance(v, int) or isinstance(v, bool) or v < 0:
-            raise DataError(f"{source}: [counts_destroyed.{k}] expected a table name and a count >= 0")
 
 
 @dataclass(frozen=True)
@@ -119,8 +96,7 @@ def verify_withdrawal_signature(cert: dict, public_key=None, source="<memory>") 
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
     _check_header(cert, WITHDRAWAL_FORMAT, WITHDRAWAL_VERSION, source, "withdrawal certificate")
-    _check_fields(cert, FIELDS, source, "withdrawal certificate")
-    _check_body(cert, source)
+    contracts.validate("withdrawal", cert, source)
     pub = b64d(cert["device_public_key"], what="device_public_key", source=source)
     if len(pub) != 32 or device_key_id(pub) != cert["device_key_id"]:
         raise DataError(f"{source}: [device_key_id] does not match the device public key")
@@ -128,8 +104,9 @@ def verify_withdrawal_signature(cert: dict, public_key=None, source="<memory>") 
         given = public_key if isinstance(public_key, bytes) else public_key.public_bytes(
             serialization.Encoding.Raw, serialization.PublicFormat.Raw)
         if given != pub:
+            want = device_key_id(given) if len(given) == 32 else f"a key of {len(given)} bytes"
             raise IntegrityError(f"{source}: [device_public_key] is not the expected device key "
-                                 f"(certificate names {cert['device_key_id']}, expected {device_key_id(given) if len(given) == 32 else 'a key of ' + str(len(given)) + ' bytes'})")
+                                 f"(certificate names {cert['device_key_id']}, expected {want})")
     sig = b64d(cert["signature"], what="signature", source=source)
     body = canonical_json({k: v for k, v in cert.items() if k != "signature"})
     try:
