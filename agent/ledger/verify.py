@@ -12,6 +12,7 @@ import os
 import time
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
+from typing import Any
 from pathlib import Path
 
 from cryptography.exceptions import InvalidSignature
@@ -167,7 +168,7 @@ class _Signatures:
         self.pending: list[tuple[int, str, str]] = []
         self.futures: list = []
         self.failed: list[int] = []
-        self.pool = None
+        self.pool: Any = None  # a ProcessPoolExecutor once the ledger is long enough
         self.seen = 0
 
     def add(self, seq: int, sig: str, h: str) -> None:
@@ -629,11 +630,13 @@ def verify_log_continuity(previous: dict | None, current: dict, origin: str | No
             out.append(f"no consistency proof from the previous bundle's log size {p_size} (proofs from "
                        f"{sizes or 'none'}): the device did not record that export")
         else:
-            nodes = [_hex32(x) for x in proof.get("proof") or []]
+            maybe = [_hex32(x) for x in proof.get("proof") or []]
+            nodes = [x for x in maybe if x is not None]
             if _hex32(proof.get("from_root")) != p_root:
                 out.append(f"rewrite: the first {p_size} entries now have a different root than in the "
                            f"previous bundle")
-            elif None in nodes or not merkle.verify_consistency(p_size, size, p_root, root, nodes):
+            elif len(nodes) != len(maybe) or p_root is None \
+                    or not merkle.verify_consistency(p_size, size, p_root, root, nodes):
                 out.append(f"rewrite: the consistency proof from {p_size} to {size} entries does not hold: "
                            f"entries the previous bundle covered were changed or removed")
     p_counts, c_counts = previous.get("counts") or {}, current.get("counts") or {}
