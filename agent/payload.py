@@ -165,6 +165,7 @@ def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
         out_params[k] = _num(params.get(k))
     ref = params.get("reference_pair")
     out_params["reference_pair"] = ref if isinstance(ref, str) and ref in theta else None
+    _project_recovery(fit, params, out_params)
     cv = fit.get("cv") or {}
     folds = [_numeric_map(f) for f in (cv.get("folds") or []) if isinstance(f, Mapping)]
     baselines = {}
@@ -178,8 +179,69 @@ def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
     if isinstance(fit.get("chance_level"), Mapping) and "chance_level" not in baselines:
         baselines["chance_level"] = _numeric_map(fit["chance_level"])
     n_trials = fit.get("n_trials")
-    return {"params": out_params, "cv": {"pooled": _numeric_map(cv.get("pooled")), "folds": folds},
-            "baselines": baselines, "n_trials": int(n_trials) if isinstance(n_trials, int) else None}
+    out = {"params": out_params, "cv": {"pooled": _numeric_map(cv.get("pooled")), "folds": folds},
+           "baselines": baselines, "n_trials": int(n_trials) if isinstance(n_trials, int) else None}
+    paired = {name: {m: _numeric_map({m: v}) for m, v in diff.items() if isinstance(v, Mapping)}
+              for name, diff in (fit.get("paired") or {}).items()
+              if isinstance(name, str) and _NAME.match(name) and isinstance(diff, Mapping)}
+    if paired:
+        out["paired"] = {name: {k: x for part in d.values() for k, x in part.items()}
+                         for name, d in paired.items()}
+    return out
+
+
+# -- the fitted parameters and their recovery (owned with agent/model; docs/model.md) --------------
+_PARAM = re.compile(r"^(theta\[[a-z|-]{3,40}\]|beta|tau)$")
+_GROUP = re.compile(r"^[a-z|-]{3,40}$")
+_PAIR_FAMILY = {"hour": "time", "weekday": "time", "week": "time", "place": "place",
+                "sound": "context", "motion": "context", "mood": "context"}
+
+
+def _pair_group(pair: str, groups) -> str | None:
+    """The weight group of a kind pair: the pair itself (full weights) or its family class."""
+    if pair in groups:
+        return pair
+    a, _, b = pair.partition("|")
+    fa, fb = _PAIR_FAMILY.get(a, a), _PAIR_FAMILY.get(b, b)
+    for name in (f"{fa}-{fb}", f"{fb}-{fa}"):
+        if name in groups:
+            return name
+    return None
+
+
+def _project_recovery(fit: Mapping, params: Mapping, out_params: dict) -> None:
+    """Carry each fitted parameter with its recovery figures; hold back the unidentifiable.
+
+    With an on-device recovery in the fit, ``params.recovery`` lists every
+    free parameter as ``{"value", "r", "bias", "rmse", "identifiable"}`` (log
+    scale figures), and ``theta``/``beta``/``tau`` keep only the identifiable
+    ones (a θ pair when its group is identifiable; the reference group, fixed
+    to 1, always), so cohort summaries built from those leave the others out by
+    default while the figures still travel.
+    """
+    groups = {k: _num(v) for k, v in (params.get("theta_groups") or {}).items()
+              if isinstance(k, str) and _GROUP.match(k) and _num(v) is not None}
+    if groups:
+        out_params["groups"] = groups
+    rec = (fit.get("recovery") or {}).get("params") if isinstance(fit.get("recovery"), Mapping) else None
+    if not isinstance(rec, Mapping):
+        return
+    table = {}
+    for name, row in rec.items():
+        if not (isinstance(name, str) and _PARAM.match(name) and isinstance(row, Mapping)):
+            continue
+        value = params.get(name) if name in ("beta", "tau") else groups.get(name[6:-1])
+        table[name] = {"value": _num(value), "r": _num(row.get("r")), "bias": _num(row.get("bias")),
+                       "rmse": _num(row.get("rmse")), "identifiable": row.get("identifiable") is True}
+    out_params["recovery"] = table
+    for k in ("beta", "tau"):
+        if k in table and not table[k]["identifiable"]:
+            out_params[k] = None
+    for pair in list(out_params["theta"]):
+        g = _pair_group(pair, groups)
+        row = table.get(f"theta[{g}]") if g is not None else None
+        if row is not None and not row["identifiable"]:
+            del out_params["theta"][pair]
 
 
 def project_quiz(score: Mapping | None, fit_pooled: Mapping | None = None) -> dict | None:
@@ -459,11 +521,21 @@ def _model(v, p):
     _obj(v, p, {
         "params": lambda d, q: _obj(d, q, {"theta": _map(_PAIR, "'kind|kind'", _numv),
                                            "beta": _nullable(_numv), "tau": _nullable(_numv),
-                                           "reference_pair": _nullable(_str_rx(_PAIR, "'kind|kind'"))}),
+                                           "reference_pair": _nullable(_str_rx(_PAIR, "'kind|kind'"))},
+                                    {"groups": _map(_GROUP, "a weight group name", _numv),
+                                     "recovery": _map(_PARAM, "'theta[group]', 'beta' or 'tau'", _recovery_row)}),
         "cv": lambda d, q: _obj(d, q, {"pooled": _NUMMAP, "folds": _list(_NUMMAP, 100)}),
         "baselines": _map(_NAME, "a baseline name", _NUMMAP),
         "n_trials": _nullable(_int(0)),
-    })
+    }, {"paired": _map(_NAME, "a rival name", _NUMMAP)})
+
+
+def _recovery_row(v, p):
+    def flag(x, q):
+        if not isinstance(x, bool):
+            _fail(q, f"expected true or false, got {x!r}")
+    _obj(v, p, {"value": _nullable(_numv), "r": _nullable(_numv), "bias": _nullable(_numv),
+                "rmse": _nullable(_numv), "identifiable": flag})
 
 
 def _quiz(v, p):

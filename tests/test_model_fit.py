@@ -183,7 +183,7 @@ def test_frequency_baseline_prefers_the_most_visited_place_at_that_hour():
 @pytest.fixture(scope="module")
 def fitted(demo):
     eps, g, _, _, rows = demo
-    return fit_model(g, rows, None, seed=0, episodes=eps, folds=3, restarts=2)
+    return fit_model(g, rows, None, seed=0, episodes=eps, folds=3, restarts=2, recovery_sims=0)
 
 
 def test_fit_beats_chance_with_interval_excluding_chance(fitted):
@@ -275,3 +275,17 @@ def test_fit_notes_a_disconnected_graph(fitted):
     # the strongest-cap 10-day graph leaves some hour nodes without edges
     assert fitted.fit["components"] > 1
     assert any("connected components" in n for n in fitted.notes)
+
+
+def test_fit_carries_recovery_figures_and_identifiability(demo):
+    # issue 11, item 3: every fit runs recovery at the participant's own design
+    eps, g, _, _, rows = demo
+    f = fit_model(g, rows, None, seed=0, episodes=eps, folds=3, restarts=1, recovery_sims=6)
+    rec = f.recovery
+    assert rec["n_sims"] == 6 and rec["n_trials"] == f.n_answered and rec["draws"] == "around the fit"
+    assert set(rec["params"]) == set(f.params["identifiable"])
+    for name, row in rec["params"].items():
+        assert set(row) == {"r", "bias", "rmse", "identifiable"}
+        assert row["identifiable"] == (row["r"] is not None and row["r"] >= 0.7), name
+    assert "recovery r" in f.table()
+    json.dumps(f.to_dict())

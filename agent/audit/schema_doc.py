@@ -122,6 +122,7 @@ PHRASES: dict[str, str] = {
     "quiz.seed": 'The quiz seed is now',
     "model.folds": 'Cross-validation folds are now',
     "model.restarts": 'Optimiser restarts are now',
+    "model.recovery_sims": 'Parameter-recovery simulations per fit are now',
     "export.allow": 'Exported node kinds are now',
     "export.include_edge_list": 'Sending the edge list is now',
     "export.include_model": 'Sending model parameters is now',

@@ -18,11 +18,13 @@ from ..errors import DataError
 from .compare import information_criteria, paired_differences
 from .crossval import chance_metrics, cross_validate
 from .rivals import LABELS as RIVAL_LABELS
+from .recovery import recover, recovery_summary
 from .rivals import model_and_rivals
 from .design import TrialDesign, as_model_graph, cue_kind_weights
 
 DEFAULT_FOLDS = 5
 DEFAULT_RESTARTS = 2
+DEFAULT_RECOVERY_SIMS = 30
 LABELS = {"model": "cue-biased eigenvector", **RIVAL_LABELS}
 
 
@@ -93,7 +95,8 @@ def _policy_int(policy, section, key, default):
 
 def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episodes=None,
               folds: int | None = None, restarts: int | None = None,
-              weights: str = "grouped", n_jobs: int | None = None) -> FitResult:
+              weights: str = "grouped", n_jobs: int | None = None,
+              recovery_sims: int | None = None) -> FitResult:
     """Fit the model on the participant's choices; cross-validate it and the baselines.
 
     Parameters
@@ -114,6 +117,11 @@ def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episode
         Type-pair weight classes (default) or one weight per kind pair.
     n_jobs : int, optional
         Worker processes for the fits (default: every usable core).
+    recovery_sims : int, optional
+        Simulations of the parameter recovery run after the fit at this
+        participant's own trials and graph (default ``model.recovery_sims``,
+        30 without a policy; 0 skips it).  Parameters recovered with
+        ``r < 0.7`` are marked not identifiable.
     """
     from threadpoolctl import threadpool_limits
 
@@ -121,11 +129,11 @@ def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episode
     # several (thread start-up dominates an eigh of that size)
     with threadpool_limits(limits=1, user_api="blas"):
         return _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts, weights,
-                          n_jobs)
+                          n_jobs, recovery_sims)
 
 
 def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts, weights,
-               n_jobs) -> FitResult:
+               n_jobs, recovery_sims) -> FitResult:
     t0 = time.perf_counter()
     mg = as_model_graph(graph)
     if not mg.type_pairs:
@@ -156,6 +164,19 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
               "cue_weights": dict(cue_kind_weights(mg)),
               "rivals": {k: v.params() for k, v in full.items() if k != "model"}}
     t_full = time.perf_counter() - t0
+    sims = (recovery_sims if recovery_sims is not None
+            else _policy_int(policy, "model", "recovery_sims", DEFAULT_RECOVERY_SIMS))
+    recovery = None
+    if sims:
+        rec = recover(mg, answered.trials, n_sims=max(int(sims), 3), seed=seed, around=model.p,
+                      spec=model.spec, n_jobs=n_jobs)
+        recovery = recovery_summary(rec)
+        params["identifiable"] = {n: row["identifiable"] for n, row in recovery["params"].items()}
+        bad = [n for n, ok in params["identifiable"].items() if not ok]
+        if bad:
+            notes.append("not identifiable at this participant's design (recovery r < "
+                         f"{recovery['threshold']}): {', '.join(bad)}")
+    t_rec = time.perf_counter() - t0 - t_full
     fold_sizes = cv_all.pop("_folds")
     lps, held = cv_all.pop("_lp"), cv_all.pop("_rows")
     paired = paired_differences(lps, design, held, seed=seed)
@@ -185,10 +206,10 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
         cv=cv_all["model"],
         baselines={name: cv_all[name] for name in preds if name != "model"},
         n_trials=len(design), n_answered=n_ans, n_skipped=len(design) - n_ans,
-        paired=paired, in_sample=in_sample,
+        paired=paired, in_sample=in_sample, recovery=recovery,
         fit={"nll": model.nll, "n_params": model.n_params, "restarts": r, "runs": model.runs,
              "converged": model.converged, "folds": len(fold_sizes), "fold_sizes": fold_sizes,
-             "seconds_fits": round(t_full, 3), "seconds_total": round(time.perf_counter() - t0, 3),
+             "seconds_fits": round(t_full, 3), "seconds_recovery": round(t_rec, 3), "seconds_total": round(time.perf_counter() - t0, 3),
              "n_nodes": mg.n, "components": int(n_comp), "type_pairs": [f"{a}|{b}" for a, b in mg.type_pairs]},
         chance_level=chance_metrics(design, rows),
         participant_accuracy=_prop(pa, n_ans),

@@ -70,19 +70,34 @@ def routine_episodes(days: int = 14, seed: int = 0, start: date = date(2026, 11,
     return out
 
 
-def quiz_trials(episodes, n_trials: int, options: int = 4, seed: int = 0) -> list[dict]:
-    """Probe ``n_trials`` hours with a known place; foils drawn uniformly from the other places."""
+def quiz_trials(episodes, n_trials: int, options: int = 4, seed: int = 0,
+                foils: str = "uniform") -> list[dict]:
+    """Probe ``n_trials`` hours with a known place.
+
+    Foils are drawn from the other places uniformly (``foils="uniform"``) or in
+    proportion to how often each was visited (``"frequency"``, frequency-matched:
+    the usual places are then foils as often as they are answers), as
+    ``quiz.foils`` does in :func:`agent.quiz.generate_trials`.
+    """
+    if foils not in ("uniform", "frequency"):
+        raise ValueError(f"foils {foils!r}: expected 'uniform' or 'frequency'")
     rng = np.random.default_rng(seed)
     known = [e for e in episodes if e.get("place") is not None]
     places = sorted({e["place"] for e in known})
+    visits = {p: sum(1 for e in known if e["place"] == p) for p in places}
     if len(places) < options:
         raise ValueError(f"need at least {options} distinct places for {options} options, got {len(places)}")
     pick = rng.choice(len(known), size=min(n_trials, len(known)), replace=False)
     out = []
     for i, j in enumerate(sorted(pick)):
         e = known[j]
-        foils = [p for p in places if p != e["place"]]
-        opts = [e["place"]] + [str(f) for f in rng.choice(foils, options - 1, replace=False)]
+        pool = [p for p in places if p != e["place"]]
+        if foils == "frequency":
+            w = np.array([visits[p] for p in pool], dtype=float)
+            drawn = rng.choice(pool, options - 1, replace=False, p=w / w.sum())
+        else:
+            drawn = rng.choice(pool, options - 1, replace=False)
+        opts = [e["place"]] + [str(f) for f in drawn]
         rng.shuffle(opts)
         out.append({"trial_id": f"T{i:04d}", "episode": e["key"], "date": e["date"], "hour": e["hour"],
                     "weekday": e["weekday"], "week": e["week"], "options": [str(o) for o in opts],
