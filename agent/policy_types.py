@@ -114,6 +114,7 @@ class ModelSection:
 
     folds: int
     restarts: int
+    recovery_sims: int
 
 @dataclass(frozen=True)
 class ExportSection:
