@@ -154,6 +154,8 @@ class Intake:
             raise ValueError(f"workers must be a positive number of threads, got {workers!r}")
         self.workers = int(workers)
         self._executor = None
+        # LETHE_TAKEN_LIMIT: for fault-injection tests whose outside kills land on innocent files.
+        self.taken_limit = int(os.environ.get("LETHE_TAKEN_LIMIT", TAKEN_LIMIT))
         self.forced: set[str] = set()   # unfinished names the watcher saw past their window
         self.group_files = 1     # grows while groups are quick (see agent.intake.drain)
         self.log = LedgerWriter(self.home, self.ledger)
@@ -204,7 +206,8 @@ class Intake:
         if self.parsing.suspect_tags:
             # Files a dead agent was parsing go last (and alone: see drain), so a kill that hit
             # them by chance does not hit them again first thing in the next life.
-            ready.sort(key=lambda c: (self.is_suspect(c.name), c.deadline_key))
+            # GPS files keep their order: the stays folded from the buffer depend on it.
+            ready.sort(key=lambda c: (self.is_suspect(c.name) and classify(c.name) != "gps", c.deadline_key))
         return ready, settling, waiting
 
     def is_suspect(self, name: str) -> bool:
@@ -394,7 +397,7 @@ class Intake:
             out = Outcome(shown, self.mac(data)[:32], kind, "rejected", bytes=len(data), complete_at=complete_at,
                           name=name)
             w = _Work(name, lst, opened, data, out)
-            if self.suspects.get(out.item, 0) >= TAKEN_LIMIT:
+            if self.suspects.get(out.item, 0) >= self.taken_limit:
                 # Taken before without an outcome, the agent died each time: never parse it again.
                 w.final, w.data = True, None
                 out.reason = "taken_twice"

@@ -35,6 +35,7 @@ import time
 from dataclasses import dataclass, field
 
 from .drain import process_safely
+from .item import classify
 from .pipeline import DrainReport, Intake
 from .scan import unfinished_reason, walk
 
@@ -321,7 +322,7 @@ class InboxWatcher:
                 if lst is None:
                     del self.pending[name]
                     continue
-                order.append((self.intake.is_suspect(name),
+                order.append((self.intake.is_suspect(name) and classify(name) != "gps",
                               min(max(lst.st_mtime, lst.st_ctime), self.pending[name].first_seen), name))
             if not order:
                 return
