@@ -128,3 +128,32 @@ def test_unnameable_tz_gives_no_guess():
     env = {"PATH": "/usr/bin:/bin", "TZ": "EST5EDT4,M3.2.0,M11.1.0", "PYTHONPATH": str(REPO)}
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, cwd=REPO)
     assert r.stdout.strip() == "None"
+
+
+def _three_mood_answers(root):
+    from agent.home import Home
+    from agent.participant.web.views import write_mood_answer
+
+    home = Home(root)
+    policy = home.load_policy()
+    for i in range(3):
+        write_mood_answer(home, policy, {e: policy.schedule.mood_scale_min + i for e in policy.schedule.emotions},
+                          now=1_790_000_000.0 + i)
+
+
+def test_backfill_progress_bar_on_a_terminal(tmp_path):
+    import pexpect
+
+    root = make_page_home(tmp_path, days=1)
+    _three_mood_answers(root)
+    child = pexpect.spawn(sys.executable, ["-m", "agent.cli", "--home", str(root), "run", "--once"],
+                          cwd=str(REPO), encoding="utf-8", timeout=300, dimensions=(30, 120))
+    child.expect(r"files taken in.*3/3")
+    child.expect(pexpect.EOF)
+
+
+def test_no_progress_bar_off_a_terminal(tmp_path):
+    root = make_page_home(tmp_path, days=1)
+    _three_mood_answers(root)
+    r = lethe("run", "--once", home=root)
+    assert r.returncode == 0 and "files taken in" not in r.stderr and "\r" not in r.stderr

@@ -40,31 +40,10 @@ def _default(o):
     raise TypeError(f"not JSON serialisable: {type(o).__name__}")
 
 
-class Progress:
-    """A one-line progress bar on a terminal; silent when stderr is not a TTY."""
+def progress(total: int | None, desc: str, unit: str = "it", stream=None):
+    """A tqdm progress bar on stderr when stderr is a terminal; silent (disabled) otherwise."""
+    from tqdm import tqdm
 
-    def __init__(self, total: int, label: str, stream=None):
-        self.total = max(int(total), 1)
-        self.label = label
-        self.stream = stream or sys.stderr
-        self.enabled = self.stream.isatty()
-        self.n = 0
-
-    def update(self, k: int = 1) -> None:
-        self.n += k
-        if self.enabled:
-            frac = min(self.n / self.total, 1.0)
-            bar = "#" * int(frac * 30)
-            self.stream.write(f"\r{self.label} [{bar:<30}] {self.n}/{self.total}")
-            self.stream.flush()
-
-    def close(self) -> None:
-        if self.enabled:
-            self.stream.write("\n")
-            self.stream.flush()
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.close()
+    stream = stream or sys.stderr
+    return tqdm(total=total, desc=desc, unit=unit, file=stream, disable=not stream.isatty(), leave=False,
+                dynamic_ncols=True)

@@ -55,14 +55,24 @@ def _demo(args) -> int:
 
 def _simulate(args) -> int:
     import os
+    import sys
 
     from ..demo.record import record
     from ._common import home_from
 
+    from ._common import progress
+
     os.environ.setdefault("MPLBACKEND", "Agg")
     quiet = bool(args.json)
-    totals = record(home_from(args), days=args.days, seed=args.seed,
-                    say=(lambda s: None) if quiet else print)
+    with progress(args.days, "simulated days", unit="day") as bar:
+        def say(line: str) -> None:
+            if line.startswith("day "):
+                bar.update(1)
+            if bar.disable and not quiet:
+                print(line)
+            elif not bar.disable:
+                bar.write(line, file=sys.stderr)
+        totals = record(home_from(args), days=args.days, seed=args.seed, say=say)
     emit(args, totals, f"Wrote {totals['files']} simulated raw files; the inbox is empty again. "
                        f"Next: 'lethe codebook' to code them into places, sounds and motion, then "
                        f"'lethe status', 'lethe places', 'lethe quiz'.")

@@ -61,11 +61,22 @@ def _run(args) -> int:
                   file=sys.stderr, flush=True)
 
     companion = None
+    bar = None
+    on_outcome = None
+    if args.once:
+        # a backfill can be thousands of files: a bar on a terminal, nothing otherwise
+        from ._common import progress
+
+        waiting = sum(1 for p in home.inbox.iterdir() if not p.name.startswith(".")) if home.inbox.exists() else 0
+        bar = progress(waiting, "files taken in", unit="file")
+        on_outcome = lambda _o: bar.update(1)  # noqa: E731
     old = {s: signal.signal(s, _stop) for s in (signal.SIGTERM, signal.SIGINT)}
     try:
         report = run_agent(home, policy, once=args.once, settle_s=args.settle, stop_event=stop,
-                           on_ready=_ready)
+                           on_ready=_ready, on_outcome=on_outcome)
     finally:
+        if bar is not None:
+            bar.close()
         for s, h in old.items():
             signal.signal(s, h)
         if companion is not None:
