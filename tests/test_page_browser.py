@@ -251,7 +251,8 @@ def test_5_export_declined_then_confirmed(world, browser):
     click(browser, "form[action='/leaves/prepare'] button")
     click(browser, "button[value='confirm']")
     text = by(browser, "main").text
-    assert "has not been sent yet" in text and "prepared (in the outbox, not sent yet)" in text
+    assert "has not been sent yet" in text
+    assert "prepared (in the outbox; this study has no server, so copy it to the study as agreed)" in text
     assert [p.name.endswith("000001.lethe") for p in outbox.iterdir()] == [True]
     shot(browser, "leaves")
 

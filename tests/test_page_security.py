@@ -166,3 +166,18 @@ def test_no_resource_from_the_network(server, logged_in):
         text = c.get(path).text
         assert not re.search(r"(src|href)=\"(https?:)?//", text), path
         assert "@import" not in text and "url(http" not in text
+
+
+def test_bundle_state_says_sent_only_after_the_server_acknowledged():
+    # the shape documented by agent.uploader.queue_status
+    from agent.participant.web.views import bundle_state
+
+    up = {"server": "https://study.example:8443",
+          "prepared": [{"kind": "bundle", "name": "b2.lethe", "attempts": 2, "last_error": "timed out"}],
+          "sent": [{"kind": "bundle", "name": "b1.lethe", "sent_at": 1.0}],
+          "failed": [{"kind": "bundle", "name": "b3.lethe", "message": "unknown device"}]}
+    assert bundle_state("b1.lethe", up).startswith("sent")
+    assert bundle_state("b2.lethe", up) == "prepared, waiting to be sent (tried 2 times: timed out)"
+    assert bundle_state("b3.lethe", up) == "refused by the study server: unknown device"
+    assert bundle_state("b4.lethe", up).startswith("prepared")
+    assert bundle_state("b1.lethe", {"server": None}).startswith("prepared")

@@ -373,8 +373,8 @@ def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_wi
     # -------------------------------------------------------------- what leaves
     async def leaves_page(request: Request):
         ex = st.export
-        rows = await run_in_threadpool(views.outbox, home)
-        return render(request, "leaves.html", ex=ex, rows=rows, title="What leaves")
+        ob = await run_in_threadpool(views.outbox, home)
+        return render(request, "leaves.html", ex=ex, ob=ob, rows=ob["rows"], title="What leaves")
 
     async def leaves_prepare(request: Request, form):
         if st.export is not None and st.export.preview and st.export.result is None and not st.export._done.is_set():
@@ -393,9 +393,24 @@ def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_wi
         if ex.error:
             return back("/leaves", f"Not prepared: {ex.error}")
         if yes and result is not None:
+            from ...uploader import Uploader
+
+            queued = await run_in_threadpool(lambda: Uploader(home).enqueue_outbox())
             return back("/leaves", f"Prepared {Path(result).name}: sealed for the study and signed. It is in "
-                                   f"the outbox and has not been sent yet.")
+                                   f"the outbox and has not been sent yet"
+                                   + (" (it waits for 'Send now' or the next upload)." if queued else "."))
         return back("/leaves", "Declined. Nothing was prepared and nothing leaves.")
+
+    async def leaves_send(request: Request, form):
+        from ...uploader import Uploader
+
+        def work():
+            up = Uploader(home)
+            up.enqueue_outbox()
+            return up.run_once()
+        res = await run_in_threadpool(work)
+        msg = f"Tried to send: {res['sent']} sent, {max(res['waiting'] - res['sent'], 0)} still waiting."
+        return back("/leaves", msg + (f" Problem: {res['error']}" if res.get("error") else ""))
 
     # -------------------------------------------------------------- pause / withdraw
     def _pause_state():
@@ -482,6 +497,7 @@ def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_wi
         Route("/leaves", _get(leaves_page)),
         Route("/leaves/prepare", _post(leaves_prepare), methods=["POST"]),
         Route("/leaves/decide", _post(leaves_decide), methods=["POST"]),
+        Route("/leaves/send", _post(leaves_send), methods=["POST"]),
         Route("/pause", _get(pause_page)),
         Route("/pause", _post(pause_post), methods=["POST"]),
         Route("/resume", _post(resume_post), methods=["POST"]),

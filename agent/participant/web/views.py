@@ -147,17 +147,42 @@ def answer_fate(home: Home, last: dict | None) -> str | None:
 
 
 # ----------------------------------------------------------------------------- what leaves
-def outbox(home: Home) -> list[dict]:
-    """Bundles in the outbox: prepared, not sent (this build has no uploader yet)."""
+def bundle_state(name: str, up: dict) -> str:
+    """One outbox bundle's state in words, from :func:`agent.uploader.queue_status`.
+
+    "sent" only once the study server acknowledged it; "prepared" before.
+    """
+    if not up.get("server"):
+        return "prepared (in the outbox; this study has no server, so copy it to the study as agreed)"
+    for s in up.get("sent", []):
+        if s["kind"] == "bundle" and s["name"] == name:
+            return "sent (the study server confirmed it has it)"
+    for f in up.get("failed", []):
+        if f["kind"] == "bundle" and f["name"] == name:
+            return f"refused by the study server: {f['message']}"
+    for w in up.get("prepared", []):
+        if w["kind"] == "bundle" and w["name"] == name:
+            return "prepared, waiting to be sent" + (f" (tried {w['attempts']} times: {w['last_error']})"
+                                                     if w.get("attempts") else "")
+    return "prepared (in the outbox, not queued for sending yet)"
+
+
+def outbox(home: Home) -> dict:
+    """Bundles in the outbox with their state, and the uploader's last contact."""
+    from ...uploader import queue_status
+
     zone = home.timezone()
+    up = queue_status(home)
     rows = []
     if home.outbox.exists():
         for p in sorted(home.outbox.iterdir()):
             if p.is_file() and p.suffix == ".lethe":
                 st = p.stat()
                 rows.append({"name": p.name, "bytes": st.st_size, "when": local_text(st.st_mtime, zone),
-                             "state": "prepared (in the outbox, not sent yet)"})
-    return rows
+                             "state": bundle_state(p.name, up)})
+    return {"rows": rows, "server": up.get("server"), "last_contact": local_text(up.get("last_contact"), zone)
+            if up.get("last_contact") else None, "last_error": up.get("last_error"),
+            "waiting": len(up.get("prepared", []))}
 
 
 def withdraw_counts(home: Home) -> dict:
