@@ -153,15 +153,15 @@ def _keyring():
     if os.environ.get("LETHE_NO_KEYRING"):
         return None
     try:
-        import keyring  # optional dependency
+        import keyring
         import keyring.backends.fail
-    except Exception:
+    except Exception:  # noqa: BLE001 - a broken install (or one removed on purpose) means "no keyring"
         return None
     try:
         backend = keyring.get_keyring()
         if isinstance(backend, keyring.backends.fail.Keyring) or backend.priority <= 0:
             return None
-    except Exception:
+    except Exception:  # noqa: BLE001 - backends raise their own errors (D-Bus, locked collection)
         return None
     return keyring
 
@@ -267,7 +267,7 @@ class Keystore:
         return all((self.keys_dir / n).exists() for n in (VAULT_KEY_FILE, CONTENT_KEY_FILE,
                                                             DEVICE_KEY_FILE, DEVICE_PUB_FILE))
 
-    def ensure(self) -> "Keystore":
+    def ensure(self) -> Keystore:
         """Create any missing key (idempotent); existing keys are never replaced."""
         old = os.umask(0o077)
         try:
@@ -494,8 +494,8 @@ class Keystore:
                     kr = _keyring()
                     if kr is not None:
                         kr.delete_password(doc["service"], doc["account"])
-            except Exception:
-                pass  # a damaged or absent file is removed below all the same
+            except Exception:  # noqa: BLE001 - a damaged or absent file is removed below all the same
+                pass
         for name in (VAULT_KEY_FILE, CONTENT_KEY_FILE, DEVICE_KEY_FILE, DEVICE_KDF_FILE, DEVICE_PUB_FILE):
             path = self.keys_dir / name
             if path.exists() or path.is_symlink():

@@ -8,7 +8,6 @@ import json
 import os
 import stat
 import sys
-import types
 
 import cryptography_vectors
 import pytest

@@ -70,7 +70,8 @@ def violation_words(v: dict) -> str:
     if v.get("check") == "not_destroyed":
         age = v.get("age_s") or 0.0
         words = approx_duration(age)
-        return f"{where} was received but no destruction is recorded {words} after it was complete (limit {v['limit_s']:g} s)"
+        return (f"{where} was received but no destruction is recorded {words} after it was complete "
+                f"(limit {v['limit_s']:g} s)")
     return f"{where}: {v.get('message', v.get('check'))}"
 
 
