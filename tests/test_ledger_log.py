@@ -273,3 +273,16 @@ def test_study_open_accepts_a_continued_ledger(tmp_path):
     home, study = make_world(tmp_path)
     res = open_bundles(study, [export_bundle(home, now=T0), export_bundle(home, now=T0)], PASS)
     assert [r.ok for r in res] == [True, True]
+
+
+def test_opening_reads_only_after_the_checkpoint(home, ledger):
+    # Issue 15: start-up and status read the checkpoint and the entries after it, not the
+    # whole ledger.  Shown by damage placed before the checkpoint, which only a full read sees.
+    fill(ledger, CHECKPOINT_EVERY // 2 + 10)
+    data = bytearray(home.ledger_path.read_bytes())
+    data[5:9] = b"XXXX"  # inside line 1, long before the checkpoint
+    home.ledger_path.write_bytes(bytes(data))
+    assert Ledger(home).state().damaged == 0       # from the checkpoint on
+    (home.root / CHECKPOINT_NAME).unlink()
+    assert Ledger(home).state().damaged == 1       # the whole file
+    assert not verify_ledger(home, policy=1e9, now=T0).ok  # the verifier always reads everything
