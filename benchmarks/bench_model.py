@@ -1,23 +1,28 @@
-"""Benchmark of the memory model: per-trial solver times and full cross-validated fits.
+"""Benchmark of the memory model: per-trial retrieval against its floor, and full fits.
 
 Run: ``/work/venv/bin/python benchmarks/bench_model.py [--quick]``.
 
-Part 1 times one batch of 200 trials (3-node cues, 4 options) on random sparse
-graphs with n = 100, 300, 1000 nodes (mean degree about 5, like the capped
-graph), for the fast secular solver (one eigh of W for the batch, then all
-trials vectorised; the eigh is included, amortised over the batch) and for the
-per-trial reference solvers: dense scipy.linalg.eigh of M, shifted power
-iteration and scipy.sparse.linalg.eigsh (single runs from the cue, i.e.
-``canonical=False``).  Slow references are timed on a subset of the trials and
-reported per trial; ratios come from the same run.  Every solver's activations
-are checked against the dense one.
+Part 1 times one batch of T = 200 trials (3-node cues, 4 options) on random
+sparse graphs with n = 100, 300, 1000 nodes (mean degree about 5, like the
+capped graph): the fast secular solver (one eigh of W for the batch, then all
+trials vectorised; the eigh included, amortised over the batch) against the
+**floor** -- that same eigh amortised over the trials plus one O(n) pass per
+trial (a length-n dot product per trial, vectorised) -- and against the
+per-trial reference solvers (dense scipy.linalg.eigh of M, shifted power
+iteration, scipy.sparse.linalg.eigsh, single runs from the cue).  Every solver
+and the floor are run once before timing (warm-up: imports, caches, BLAS
+start-up), then timed best of ``--repeat``.  Target: fast within 1.25x of the
+floor at n = 300 and 1000.  Every solver's activations are checked against the
+dense one.  The eigh drivers of LAPACK (``evr``, ``evd``, ``ev``) are timed at
+the same sizes.
 
-Part 2 times ``fit_model`` (5 folds, 4 restarts, model and all baselines) on a
-synthetic 14-day demo participant and a synthetic 3-month participant.
+Part 2 times ``fit_model`` (5 folds, the policy's 2 restarts, the model and
+every rival, fits in worker processes on every core) on a synthetic
+participant-month (30 days, 200 answered trials): target under 5 s on 2 cores;
+and the same with the 30-simulation on-device recovery: target under 60 s.
 
 BLAS runs single-threaded (threadpoolctl): at these sizes thread start-up costs
-more than it saves, and the figures do not depend on other load on the machine
-as much.
+more than it saves.
 """
 
 from __future__ import annotations
@@ -39,20 +44,35 @@ def random_sparse_graph(n, mean_degree, rng):
     return a + a.T
 
 
-def per_trial(n, n_trials, rng, subset):
+def _best(fn, repeat):
+    fn()  # warm-up
+    best = np.inf
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
+def per_trial(n, n_trials, rng, subset, repeat=3):
+    import scipy.linalg as la
+
     w = random_sparse_graph(n, 5.0, rng)
     cue_idx = np.array([rng.choice(n, 3, replace=False) for _ in range(n_trials)])
     cue_w = np.full((n_trials, 3), 1 / np.sqrt(3))
     rows = np.array([rng.choice(n, 4, replace=False) for _ in range(n_trials)])
     beta = 2.0
 
-    t = time.perf_counter()
-    solver = RankOneSolver(w)
-    t_eigh = time.perf_counter() - t
-    t = time.perf_counter()
-    fast = solver.solve(cue_idx, cue_w, beta, rows)
-    t_solve = time.perf_counter() - t
-    fast_per = (t_eigh + t_solve) / n_trials
+    t_fast = _best(lambda: RankOneSolver(w).solve(cue_idx, cue_w, beta, rows), repeat)
+    fast = RankOneSolver(w).solve(cue_idx, cue_w, beta, rows)
+    fast_per = t_fast / n_trials
+    # the floor: the one eigh every exact method needs, plus one O(n) pass per trial
+    a = rng.random((n_trials, n))
+    b = rng.random((n_trials, n))
+    t_eigh = _best(lambda: la.eigh(w), repeat)
+    t_pass = _best(lambda: np.einsum("tn,tn->t", a, b), repeat)
+    floor_per = (t_eigh + t_pass) / n_trials
+    drivers = {d: _best(lambda d=d: la.eigh(w, driver=d), repeat) for d in ("evr", "evd", "ev")}
 
     def x_of(i):
         x = np.zeros(n)
@@ -60,12 +80,13 @@ def per_trial(n, n_trials, rng, subset):
         return x
 
     k = min(subset, n_trials)
-    out = {"n": n, "trials": n_trials, "fast_per_trial_s": fast_per, "fast_eigh_s": t_eigh,
-           "fast_solve_per_trial_s": t_solve / n_trials}
+    out = {"n": n, "trials": n_trials, "fast_per_trial_s": fast_per, "floor_per_trial_s": floor_per,
+           "fast_over_floor": fast_per / floor_per, "eigh_drivers_s": drivers}
     err = 0.0
     for name, fn in (("dense", lambda x: dense_activation(w, x, beta)[0]),
                      ("power", lambda x: power_activation(w, x, beta, canonical=False).v),
                      ("eigsh", lambda x: eigsh_activation(w, x, beta, canonical=False)[0])):
+        fn(x_of(0))  # warm-up
         t = time.perf_counter()
         vs = [fn(x_of(i)) for i in range(k)]
         dt = (time.perf_counter() - t) / k
@@ -77,52 +98,58 @@ def per_trial(n, n_trials, rng, subset):
     return out
 
 
-def fit_time(days, n_trials, seed=0, cap_rule=None):
+def fit_time(days, n_trials, seed=0, cap_rule=None, recovery_sims=0):
     from agent.graph import CooccurrenceGraph
-    from agent.model.design import ModelGraph
     from agent.model.fit import fit_model
-    from agent.model.synthetic import quiz_trials, routine_episodes, simulate_answers
+    from agent.model.panel import simulate_type
+    from agent.model.synthetic import quiz_trials, routine_episodes
+    from agent.policy import bundled_policy_path, load_policy
 
+    policy = load_policy(bundled_policy_path("default"))
     eps = routine_episodes(days, seed=seed)
-    g = CooccurrenceGraph.from_episodes(eps, None, cap_rule=cap_rule)
-    mg = ModelGraph.from_graph(g)
+    g = CooccurrenceGraph.from_episodes(eps, policy, cap_rule=cap_rule)
     trials = quiz_trials(eps, n_trials, seed=seed + 1)
-    rows = simulate_answers(mg, trials, mg.theta_dict(np.ones(len(mg.type_pairs))), 2.0, 0.2, seed=seed + 2)
+    rows = simulate_type("model", g, trials, eps, seed=seed + 2)
     t = time.perf_counter()
-    res = fit_model(g, rows, None, seed=0, episodes=eps, folds=5, restarts=4)
+    res = fit_model(g, rows, policy, seed=0, episodes=eps, recovery_sims=recovery_sims)
     dt = time.perf_counter() - t
-    d = res.to_dict()
-    return {"days": days, "trials": n_trials, "cap_rule": cap_rule, "nodes": mg.n,
-            "type_pairs": len(mg.type_pairs), "seconds": dt,
-            "agreement": d["cv"]["pooled"]["agreement"]["value"],
-            "agreement_ci": d["cv"]["pooled"]["agreement"]["ci"]}
+    return {"days": days, "trials": n_trials, "cap_rule": g.cap_rule, "nodes": g.n_nodes, "seconds": dt,
+            "fits_s": res.fit["seconds_fits"], "recovery_s": res.fit["seconds_recovery"],
+            "restarts": res.fit["restarts"]}
 
 
 def main(argv=None):
+    import os
+
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="smaller subsets for the slow references")
+    ap.add_argument("--repeat", type=int, default=3, help="timing repeats (best of)")
     args = ap.parse_args(argv)
     rng = np.random.default_rng(0)
+    print(f"cores usable: {len(os.sched_getaffinity(0))}, load average {os.getloadavg()[0]:.1f}")
     with threadpool_limits(limits=1, user_api="blas"):
-        print("per-trial solver time (200 trials, beta = 2, 3-node cue, 4 options)")
-        print(f"{'n':>5} {'fast ms':>9} {'dense ms':>9} {'power ms':>9} {'eigsh ms':>9} "
-              f"{'dense/fast':>11} {'power/fast':>11} {'eigsh/fast':>11} {'max diff':>9}")
+        print("per-trial retrieval (T = 200 trials, beta = 2, 3-node cue, 4 options), best of "
+              f"{args.repeat} after a warm-up")
+        print(f"{'n':>5} {'fast ms':>9} {'floor ms':>9} {'fast/floor':>10} {'dense/fast':>11} "
+              f"{'power/fast':>11} {'eigsh/fast':>11} {'max diff':>9}   eigh drivers evr/evd/ev ms")
         subsets = {100: 200, 300: 60, 1000: 10} if not args.quick else {100: 40, 300: 10, 1000: 3}
         for n in (100, 300, 1000):
-            r = per_trial(n, 200, rng, subsets[n])
-            print(f"{n:>5} {1e3 * r['fast_per_trial_s']:>9.3f} {1e3 * r['dense_per_trial_s']:>9.3f} "
-                  f"{1e3 * r['power_per_trial_s']:>9.3f} {1e3 * r['eigsh_per_trial_s']:>9.3f} "
-                  f"{r['dense_over_fast']:>11.1f} {r['power_over_fast']:>11.1f} {r['eigsh_over_fast']:>11.1f} "
-                  f"{r['max_abs_diff']:>9.1e}")
-        print()
-        print("full 5-fold fit (4 restarts; model + chance, frequency, centrality, time-links)")
-        for days, n_trials, rule in ((14, 100, "arrival"), (14, 100, "strongest"), (91, 300, "arrival"),
-                                     (91, 300, "strongest")):
-            r = fit_time(days, n_trials, cap_rule=rule)
-            lo, hi = r["agreement_ci"]
-            print(f"  {days:>3} days, {n_trials} trials, cap {rule:<9}: {r['nodes']} nodes, "
-                  f"{r['type_pairs']} type pairs, {r['seconds']:.1f} s; held-out agreement "
-                  f"{r['agreement']:.3f} [{lo:.2f}, {hi:.2f}]")
+            r = per_trial(n, 200, rng, subsets[n], args.repeat)
+            dr = r["eigh_drivers_s"]
+            print(f"{n:>5} {1e3 * r['fast_per_trial_s']:>9.4f} {1e3 * r['floor_per_trial_s']:>9.4f} "
+                  f"{r['fast_over_floor']:>10.2f} {r['dense_over_fast']:>11.1f} {r['power_over_fast']:>11.1f} "
+                  f"{r['eigsh_over_fast']:>11.1f} {r['max_abs_diff']:>9.1e}   "
+                  f"{1e3 * dr['evr']:.1f}/{1e3 * dr['evd']:.1f}/{1e3 * dr['ev']:.1f}"
+                  + ("   (target <= 1.25: " + ("met" if r["fast_over_floor"] <= 1.25 else "MISSED") + ")"
+                     if n in (300, 1000) else ""))
+    print()
+    print("5-fold fit of a participant-month (30 days, 200 trials; model + 6 rivals; worker processes)")
+    r = fit_time(30, 200)
+    print(f"  cap {r['cap_rule']}, {r['nodes']} nodes, {r['restarts']} restarts: {r['seconds']:.1f} s "
+          f"(target < 5 s: {'met' if r['seconds'] < 5 else 'MISSED'})")
+    r = fit_time(30, 200, recovery_sims=30)
+    print(f"  the same with 30-simulation recovery: {r['seconds']:.1f} s (fits {r['fits_s']:.1f} s, recovery "
+          f"{r['recovery_s']:.1f} s; target < 60 s: {'met' if r['seconds'] < 60 else 'MISSED'})")
 
 
 if __name__ == "__main__":

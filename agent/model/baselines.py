@@ -43,13 +43,13 @@ from .likelihood import (LOG_TAU_BOUNDS, ActivationCache, ModelSpec, model_log_p
 # relative change of the objective at which L-BFGS-B stops; 1e-7 of an NLL near
 # 50 is 5e-6 nats, far below anything the held-out metrics can resolve
 FTOL = 1e-7
-GTOL = 1e-4  # largest projected gradient component, in nats per log-unit
+GTOL = 1e-3  # largest projected gradient component, in nats per log-unit
 SCREEN = 8  # random draws screened per restart
 # line-search steps per iteration (default 20): at a jump of the piecewise-smooth
 # objective extra steps only spend evaluations without getting past it
 MAXLS = 10
-# log β of the two starts taken from the nested β = 0 fit (β relative to λ1)
-LOG_BETA_BOUNDS_START = (np.log(0.01), np.log(0.2))
+# log β of the start taken from the nested β = 0 fit (β relative to λ1)
+LOG_BETA_NESTED_START = np.log(0.05)
 
 
 class Chance:
@@ -220,8 +220,7 @@ class EigenModel:
                         beta_relative=spec.beta_relative)
         inner = EigenModel(sub, restarts=1, seed=self.seed, maxiter=self.maxiter).fit(design, rng=rng)
         theta_p, tau_p = inner.p[:-1], inner.p[-1]
-        lo, hi = LOG_BETA_BOUNDS_START
-        return [np.concatenate([theta_p, [b], [tau_p]]) for b in (lo, hi)]
+        return [np.concatenate([theta_p, [LOG_BETA_NESTED_START], [tau_p]])]
 
     def log_probabilities(self, design: TrialDesign) -> np.ndarray:
         return model_log_probabilities(self.spec, ActivationCache(self.spec.graph, design), self.p)
