@@ -40,57 +40,43 @@ def _metric_table(metrics) -> dict:
 
 
 def _plot_accuracy(quiz, metrics, path: Path) -> bool:
-    """Two panels per participant, each point with its 95% interval.
+    """Distributions across participants (readable at any cohort size, no row per person).
 
-    Left: held-out agreement with the participant's own choices (what the model
-    is fitted to), the model against each baseline.  Right: accuracy against the
-    true place, the participant's own score (Wilson interval) beside the model's
-    and the baselines'.  Chance is the red line.
+    Left: participants' own memory-test accuracy, with the chance level in red.
+    Then one panel per baseline: the model's held-out agreement minus the
+    baseline's, per participant (right of zero: the model did better).
     """
     rows = [r for r in _latest(quiz) if r["answered"]]
-    if not rows:
-        return False
     table = _metric_table(metrics)
+    diffs: dict[str, list[float]] = {}
+    for d in table.values():
+        model = d.get("cv", {}).get("agreement")
+        for src, m in d.items():
+            if src.startswith("baseline:") and src != "baseline:chance_level" and model is not None \
+                    and m.get("agreement") is not None:
+                diffs.setdefault(src[9:], []).append(model - m["agreement"])
+    if not rows and not diffs:
+        return False
     plt = _fig()
-    fig, axes = plt.subplots(1, 2, figsize=(12, 0.9 * len(rows) + 2.2), sharey=True)
-    sources = ["cv"] + sorted({s for d in table.values() for s in d
-                               if s.startswith("baseline:") and s != "baseline:chance_level"})
-    labels = {"cv": "model (held out)"}
-    markers = ["o", "s", "^", "D", "v", "P", "X"]
-    step = 0.7 / max(len(sources), 1)
-    for ax, metric, title in ((axes[0], "agreement", "Held-out agreement with the participant's choices"),
-                              (axes[1], "accuracy", "Accuracy against the true place")):
-        for y, r in enumerate(rows):
-            d = table.get(r["pseudonym"], {})
-            for i, src in enumerate(sources):
-                m = d.get(src, {})
-                v = m.get(metric)
-                if v is None:
-                    continue
-                lo, hi = m.get(f"{metric}_ci_low", v), m.get(f"{metric}_ci_high", v)
-                yy = y - 0.35 + (i + 0.5) * step
-                ax.errorbar(v, yy, xerr=[[max(v - lo, 0)], [max(hi - v, 0)]], fmt=markers[i % len(markers)],
-                            color=f"C{i}", capsize=2, markersize=5,
-                            label=labels.get(src, src.replace("baseline:", "baseline: ")) if y == 0 else None)
-            if metric == "accuracy":
-                lo, hi = wilson_interval(r["correct"], r["answered"])
-                ax.errorbar(r["accuracy"], y + 0.42, xerr=[[r["accuracy"] - lo], [hi - r["accuracy"]]],
-                            fmt="*", color="black", capsize=3, markersize=9,
-                            label="participant's own score" if y == 0 else None)
-            if r.get("chance") is not None:
-                ax.axvline(r["chance"], color="tab:red", lw=1, label="chance" if y == 0 else None)
-        ax.set_xlim(0, 1)
-        ax.set_xlabel(f"{metric} (fraction of answered trials, 95% intervals)")
-        ax.set_title(title, fontsize=10)
-    axes[0].set_yticks(range(len(rows)), [r["pseudonym"] for r in rows])
-    handles, names = [], []
-    for ax in axes:
-        for h, n in zip(*ax.get_legend_handles_labels()):
-            if n not in names:
-                handles.append(h)
-                names.append(n)
-    fig.legend(handles, names, loc="lower center", ncol=4, fontsize=8, bbox_to_anchor=(0.5, 0.0))
-    fig.tight_layout(rect=(0, 0.12, 1, 1))
+    n_panels = 1 + len(diffs)
+    fig, axes = plt.subplots(1, n_panels, figsize=(4 * n_panels, 3.2), squeeze=False)
+    ax = axes[0][0]
+    acc = [r["accuracy"] for r in rows if r.get("accuracy") is not None]
+    if acc:
+        ax.hist(acc, bins=min(30, max(5, len(acc) // 10)), range=(0, 1), color="#4a7ab0")
+        chance = [r["chance"] for r in rows if r.get("chance") is not None]
+        if chance:
+            ax.axvline(sum(chance) / len(chance), color="tab:red", lw=1, label="chance")
+            ax.legend(fontsize=8)
+    ax.set_title(f"Participants' accuracy (n = {len(acc)})", fontsize=9)
+    ax.set_xlabel("fraction of answered trials correct", fontsize=8)
+    ax.set_ylabel("participants", fontsize=8)
+    for ax, (name, vals) in zip(axes[0][1:], sorted(diffs.items()), strict=True):
+        ax.hist(vals, bins=min(30, max(5, len(vals) // 10)), color="#5b8c5a")
+        ax.axvline(0, color="tab:red", lw=1)
+        ax.set_title(f"model - {name} (n = {len(vals)})", fontsize=9)
+        ax.set_xlabel("difference in held-out agreement", fontsize=8)
+    fig.tight_layout()
     fig.savefig(path, dpi=100)
     plt.close(fig)
     return True
@@ -106,7 +92,8 @@ def _plot_parameters(params, path: Path) -> bool:
     fig, ax = plt.subplots(figsize=(7, 0.35 * len(pairs) + 1.5))
     ax.boxplot(data, orientation="horizontal", widths=0.6)
     for i, d in enumerate(data, start=1):
-        ax.plot(d, [i] * len(d), "o", color="tab:blue", alpha=0.6, markersize=4)
+        if len(d) <= 30:  # individual values only while they stay readable
+            ax.plot(d, [i] * len(d), "o", color="tab:blue", alpha=0.6, markersize=4)
     ax.set_yticks(range(1, len(pairs) + 1), pairs)
     ax.set_xlabel("fitted weight θ")
     ax.set_title("Parameter distributions per type pair")
@@ -117,34 +104,27 @@ def _plot_parameters(params, path: Path) -> bool:
 
 
 def _plot_coverage(coverage, path: Path) -> bool:
+    """Histogram of hours observed per participant (latest bundle)."""
     rows = _latest(coverage)
     if not rows:
         return False
-    plt = _fig()
-    import numpy as np
+    from .cohort import plots
 
-    kinds = sorted({k[6:] for r in rows for k in r if k.startswith("hours_")})
-    x = np.arange(len(rows))
-    w = 0.8 / (len(kinds) + 1)
-    fig, ax = plt.subplots(figsize=(max(6, 1.2 * len(rows) + 3.5), 3.5))
-    ax.bar(x, [r["hours"] for r in rows], w, label="hours observed", color="grey")
-    for i, k in enumerate(kinds, start=1):
-        ax.bar(x + i * w, [r.get(f"hours_{k}", 0) for r in rows], w, label=k)
-    ax.set_xticks(x + w * len(kinds) / 2, [r["pseudonym"] for r in rows], rotation=30, ha="right")
-    ax.set_ylabel("hours")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8)
-    ax.set_title("Coverage per participant")
-    fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
+    png = plots.histogram([r["hours"] for r in rows], xlabel="hours with data", title="Coverage")
+    if png is None:
+        return False
+    path.write_bytes(png)
     return True
 
 
-def _table(rows, cols) -> str:
+def _table(rows, cols, limit: int = 50) -> str:
+    more = len(rows) - limit
+    rows = rows[:limit]
     head = "".join(f"<th>{html.escape(c)}</th>" for c in cols)
     body = "".join("<tr>" + "".join(f"<td>{html.escape(_fmt(r.get(c)))}</td>" for c in cols) + "</tr>"
                    for r in rows)
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+    note = f"<p>… and {more} more rows: see the merged tables.</p>" if more > 0 else ""
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>{note}"
 
 
 def _fmt(v) -> str:
