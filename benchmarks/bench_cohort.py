@@ -85,7 +85,10 @@ def bench_open(n_bundles: int, n_devices: int) -> dict:
     merge_s = time.perf_counter() - t
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
-    rows = {k: sum(1 for _ in open(v)) - 1 for k, v in out.items()}
+    rows = {}
+    for k, v in out.items():
+        with open(v) as f:
+            rows[k] = sum(1 for _ in f) - 1
     return {"bundles": len(files), "devices": n_devices, "seal_s": round(seal_s, 1),
             "open_s": round(open_s, 1), "open_batches_s": [round(b, 2) for b in batches],
             "merge_s": round(merge_s, 1), "merge_peak_mib": round(peak / 2**20, 1),
@@ -122,7 +125,8 @@ def bench_plan(n_fits: int, trials: int = 120) -> dict:
     import numpy as np
 
     same = all(np.array_equal(a, b) for a, b in zip(local, dist, strict=True))
-    return {"participants_fitted": n_fits, "trials_each": trials, "one_process_s": round(one_s, 2), "local_cluster_2_workers_s": round(two_s, 2),
+    return {"participants_fitted": n_fits, "trials_each": trials, "one_process_s": round(one_s, 2),
+            "local_cluster_2_workers_s": round(two_s, 2),
             "speedup": round(one_s / two_s, 2), "identical_results": same, "cpus": os.cpu_count(),
             "load_average_1min_after": round(os.getloadavg()[0], 1)}
 

@@ -12,6 +12,8 @@ Run: ``/work/venv/bin/python benchmarks/bench_server.py [--devices 1000] [--conc
    restarted; clients retry with back-off until acknowledged.  Counted: lost
    (acknowledged or sent but not in the database), duplicated (rows per
    device and sequence number above one), "already have" answers.
+3. Service time: 200 uploads one at a time (nothing queued in front of the
+   server), against ``GET /v1`` one at a time.
 
 Loopback only.  The clients run on the same cores as the server.  Nothing here
 is asserted; figures go to docs/benchmarks.md.
@@ -198,6 +200,16 @@ def run(backend: str, n: int, concurrency: int) -> dict:
                                "p99_ms": round(pct(lat, 99) * 1e3, 1), **st,
                                "lost": len(expected - set(per)), "duplicated": sum(v - 1 for v in per.values()),
                                "stored": len(per)}
+        # Service time: one upload at a time (no queueing in front of the server), 200 devices.
+        k = min(200, n)
+        third = [s.seal(payload, seq=3, device=d) for d in devices[:k]]
+        lat, st = asyncio.run(upload_all(url, ctx, third, 1))
+        out["one_at_a_time"] = {"uploads": k, "p50_ms": round(pct(lat, 50) * 1e3, 1),
+                                "p99_ms": round(pct(lat, 99) * 1e3, 1), **st}
+        lat, _ = asyncio.run(upload_all(url, ctx, [b""] * k, 1, path="/v1"))
+        out["one_at_a_time_reference_get_v1_ms"] = {"p50": round(pct(lat, 50) * 1e3, 1),
+                                                    "p99": round(pct(lat, 99) * 1e3, 1)}
+        out["load_average_1min_after"] = round(os.getloadavg()[0], 1)
     finally:
         server.send_signal(signal.SIGKILL)
         server.wait()

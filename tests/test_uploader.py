@@ -208,3 +208,25 @@ def test_server_killed_mid_upload_loses_nothing(tmp_path):
         server.send_signal(signal.SIGKILL)
         server.wait(10)
         store.close()
+
+
+def test_server_refuses_a_ledger_that_does_not_continue(setup):
+    # The enrolment names a log origin the device's ledger does not start with (a reset ledger):
+    # the bundle is refused with 422 ledger_discontinuity and stored nowhere (docs/server.md).
+    from agent.bundle import home_card
+    from agent.keystore import Keystore
+    from agent.study.card import make_enrolment
+
+    home, _, srv = setup
+    doc = make_enrolment(home_card(home), home.load_policy(), home.read_config()["pseudonym"],
+                         Keystore(home).device_key(), log_origin="ab" * 32)
+    (home.root / "enrolment.json").write_text(json.dumps(doc))
+    up = Uploader(home)
+    up.enqueue_enrolment(srv.ctx.store.invite(1)[0])
+    export_bundle(home, now=NOW)
+    up.enqueue_outbox()
+    res = up.run_once()
+    assert res["sent"] == 1 and res["failed"] == 1
+    (f,) = queue_status(home)["failed"]
+    assert f["kind"] == "bundle" and "reset" in f["message"]
+    assert srv.ctx.store.counts()["bundles"] == 0
