@@ -7,7 +7,8 @@ centroids, no timestamps finer than ``export.time_granularity``, no place names
 and no audio.  :func:`validate_payload` refuses any field the schema does not
 know, both before sealing (export) and after opening (researcher).
 
-Schema version 1 is specified field by field in ``docs/bundle-format.md``.
+Schema version 2 is specified field by field in ``docs/bundle-format.md``; its
+machine-readable contract is ``agent/contracts/schemas/payload.json``.
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ import re
 import secrets
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
+from . import contracts
 from .errors import DataError
 
 PAYLOAD_SCHEMA = 2
@@ -26,10 +28,7 @@ PAYLOAD_SCHEMA = 2
 RELABELLED = ("place", "sound", "motion")
 RELABEL_TABLE = "relabel"
 
-_HEX64 = re.compile(r"^[0-9a-f]{64}$")
 _NAME = re.compile(r"^[A-Za-z0-9_.:|+-]{1,80}$")
-_NODE = re.compile(r"^(hour|weekday|week|place|sound|motion|mood):[A-Za-z0-9_.+-]{1,40}$")
-_PAIR = re.compile(r"^(hour|weekday|week|place|sound|motion|mood)\|(hour|weekday|week|place|sound|motion|mood)$")
 _DAY = re.compile(r"^\d{4}-\d{2}-\d{2}$")
 _WEEK = re.compile(r"^\d{4}-W\d{2}$")
 
@@ -394,211 +393,41 @@ def build_payload_and_relabel(home, policy, vault, now: float | None = None):
 
 
 # ----------------------------------------------------------------------------- schema
-def _fail(path: str, msg: str):
-    raise DataError(f"payload [{path}] {msg}")
-
-
-def _is_int(v) -> bool:
-    return isinstance(v, int) and not isinstance(v, bool)
-
-
-def _is_num(v) -> bool:
-    return (_is_int(v) or isinstance(v, float)) and math.isfinite(v)
-
-
-def _obj(v, path, required: dict, optional: dict | None = None):
-    if not isinstance(v, dict):
-        _fail(path, f"expected an object, got {type(v).__name__}")
-    optional = optional or {}
-    for k in v:
-        if k not in required and k not in optional:
-            _fail(f"{path}.{k}" if path else k, "unknown field: the payload schema does not know it "
-                  f"(allowed here: {', '.join(list(required) + list(optional))})")
-    for k, check in required.items():
-        if k not in v:
-            _fail(f"{path}.{k}" if path else k, "required field is missing")
-        check(v[k], f"{path}.{k}" if path else k)
-    for k, check in optional.items():
-        if k in v:
-            check(v[k], f"{path}.{k}" if path else k)
-
-
-def _int(min_=0):
-    def c(v, p):
-        if not _is_int(v) or v < min_:
-            _fail(p, f"expected an integer >= {min_}, got {v!r}")
-    return c
-
-
-def _numv(v, p):
-    if not _is_num(v):
-        _fail(p, f"expected a finite number, got {v!r}")
-
-
-def _nullable(check):
-    def c(v, p):
-        if v is not None:
-            check(v, p)
-    return c
-
-
-def _str_rx(rx, what):
-    def c(v, p):
-        if not isinstance(v, str) or not rx.match(v):
-            _fail(p, f"expected {what}, got {v!r}")
-    return c
-
-
-def _map(key_rx, key_what, val_check):
-    def c(v, p):
-        if not isinstance(v, dict):
-            _fail(p, f"expected an object, got {type(v).__name__}")
-        for k, x in v.items():
-            if not isinstance(k, str) or not key_rx.match(k):
-                _fail(f"{p}.{k}", f"unexpected key: expected {key_what}")
-            val_check(x, f"{p}.{k}")
-    return c
-
-
-def _list(check, max_len=10**6):
-    def c(v, p):
-        if not isinstance(v, list) or len(v) > max_len:
-            _fail(p, "expected a list")
-        for i, x in enumerate(v):
-            check(x, f"{p}[{i}]")
-    return c
-
-
-def _const(value):
-    def c(v, p):
-        if v != value or type(v) is not type(value):
-            _fail(p, f"expected {value!r}, got {v!r}")
-    return c
-
-
-def _one_of(*choices):
-    def c(v, p):
-        if v not in choices:
-            _fail(p, f"expected one of {choices}, got {v!r}")
-    return c
-
-
-_KIND = _one_of("hour", "weekday", "week", "place", "sound", "motion", "mood")
-_KIND_RX = re.compile(r"^(place|sound|motion|mood)$")
-
-
-def _edge_list(v, p):
-    _obj(v, p, {"degree_cap": _int(1), "nodes": _list(_str_rx(_NODE, "a node id 'kind:label'")),
-                "edges": _list(_list(_int(0), 2))})
-    n = len(v["nodes"])
-    if len(set(v["nodes"])) != n:
-        _fail(f"{p}.nodes", "node ids must be distinct")
-    for i, e in enumerate(v["edges"]):
-        if len(e) != 2 or not e[0] < e[1] < n:
-            _fail(f"{p}.edges[{i}]", f"expected [i, j] with i < j < {n}")
-
-
-def _counts(v, p):
-    _obj(v, p, {
-        "pairs": _map(re.compile(r"^(" + _PAIR.pattern[1:-1] + r"|other)$"), "'kind|kind' or 'other'",
-                      _nullable(_int(0))),
-        "suppressed": _list(_str_rx(_PAIR, "'kind|kind'")),
-        "merged": _list(_str_rx(_PAIR, "'kind|kind'")),
-        "hours": _int(0),
-        "hours_by_kind": _map(_KIND_RX, "a non-time node kind", _int(0)),
-        "small_cell_threshold": _int(0),
-        "small_cell_rule": _one_of("suppress", "merge"),
-        "dp": _nullable(lambda d, q: _obj(d, q, {
-            "mechanism": _const("discrete_laplace"), "library": _const("opendp"), "epsilon": _numv,
-            "scale": _numv, "sensitivity": _int(1), "unit": _one_of("episode", "day")})),
-    })
-
-
-_NUMMAP = _map(_NAME, "a metric name", _numv)
-
-
-def _model(v, p):
-    _obj(v, p, {
-        "params": lambda d, q: _obj(d, q, {"theta": _map(_PAIR, "'kind|kind'", _numv),
-                                           "beta": _nullable(_numv), "tau": _nullable(_numv),
-                                           "reference_pair": _nullable(_str_rx(_PAIR, "'kind|kind'"))},
-                                    {"groups": _map(_GROUP, "a weight group name", _numv),
-                                     "recovery": _map(_PARAM, "'theta[group]', 'beta' or 'tau'", _recovery_row)}),
-        "cv": lambda d, q: _obj(d, q, {"pooled": _NUMMAP, "folds": _list(_NUMMAP, 100)}),
-        "baselines": _map(_NAME, "a baseline name", _NUMMAP),
-        "n_trials": _nullable(_int(0)),
-    }, {"paired": _map(_NAME, "a rival name", _NUMMAP)})
-
-
-def _recovery_row(v, p):
-    def flag(x, q):
-        if not isinstance(x, bool):
-            _fail(q, f"expected true or false, got {x!r}")
-    _obj(v, p, {"value": _nullable(_numv), "r": _nullable(_numv), "bias": _nullable(_numv),
-                "rmse": _nullable(_numv), "identifiable": flag})
-
-
-def _quiz(v, p):
-    _obj(v, p, {"trials": _int(0), "answered": _int(0), "correct": _int(0),
-                "accuracy": _nullable(_numv), "chance": _nullable(_numv), "p_value": _nullable(_numv),
-                "agreement": _nullable(_numv)})
-
-
-def _ledger(v, p):
-    _obj(v, p, {"counts": _map(_NAME, "an event counter name", _int(0)), "violations": _int(0),
-                "head": lambda d, q: _obj(d, q, {"seq": _int(0),
-                                                 "hash": _str_rx(re.compile(r"^[0-9a-f]{1,128}$"), "hex")})},
-         {"max_exposure_s": _nullable(_numv), "median_exposure_s": _nullable(_numv),
-          "p95_exposure_s": _nullable(_numv)})
-
-
-_HEXH = re.compile(r"^[0-9a-f]{64}$")
-
-
-def _log(v, p):
-    # The ledger's Merkle log (docs/ledger.md): at most 8 proofs of at most 64 hashes each.
-    _obj(v, p, {"size": _int(0), "root": _str_rx(_HEXH, "64 hex digits"),
-                "origin": _nullable(_str_rx(_HEXH, "64 hex digits")),
-                "head": lambda d, q: _obj(d, q, {"seq": _int(-1), "hash": _str_rx(_HEXH, "64 hex digits")}),
-                "counts": _map(_NAME, "an event counter name", _int(0)),
-                "proofs": _list(lambda d, q: _obj(d, q, {
-                    "from_size": _int(1), "from_root": _str_rx(_HEXH, "64 hex digits"),
-                    "proof": _list(_str_rx(_HEXH, "64 hex digits"), 64)}), 8)})
+def _payload_error(source: str | None):
+    def make(_src, key: str, message: str) -> DataError:
+        where = f"{source}: " if source else ""
+        return DataError(f"{where}payload [{key}] {message}")
+    return make
 
 
 def validate_payload(payload: Any, source: str | None = None) -> dict:
-    """Check a payload against schema version 1; :class:`DataError` names the field.
+    """Check a payload against ``agent/contracts/schemas/payload.json``; :class:`DataError` names the field.
 
     The schema version is checked first, so that a newer payload is refused as
-    such rather than as a list of unknown fields.
+    such rather than as a list of unknown fields.  Beyond the schema: distinct
+    node ids and in-range edges in ``edge_list``, and ``created`` at the
+    payload's own ``time_granularity``.
     """
+    fail = _payload_error(source)
+    if not isinstance(payload, dict):
+        raise fail(None, "", "expected a JSON object")
+    schema = payload.get("schema")
+    if schema != PAYLOAD_SCHEMA or isinstance(schema, bool) or not isinstance(schema, int):
+        raise fail(None, "schema", f"payload schema {schema!r} is not supported; this lethe reads schema "
+                                   f"{PAYLOAD_SCHEMA}")
+    contracts.validate("payload", payload, source, error=fail)
+    e = payload["edge_list"]
+    if e is not None:
+        n = len(e["nodes"])
+        if len(set(e["nodes"])) != n:
+            raise fail(None, "edge_list.nodes", "node ids must be distinct")
+        for i, pair in enumerate(e["edges"]):
+            if len(pair) != 2 or not pair[0] < pair[1] < n:
+                raise fail(None, f"edge_list.edges[{i}]", f"expected [i, j] with i < j < {n}")
     try:
-        if not isinstance(payload, dict):
-            _fail("", "expected a JSON object")
-        if payload.get("schema") != PAYLOAD_SCHEMA or not _is_int(payload.get("schema")):
-            _fail("schema", f"payload schema {payload.get('schema')!r} is not supported; "
-                            f"this lethe reads schema {PAYLOAD_SCHEMA}")
-        _obj(payload, "", {
-            "schema": _const(PAYLOAD_SCHEMA),
-            "study_id": _str_rx(re.compile(r"^[A-Za-z0-9_.-]{1,64}$"), "a study id"),
-            "created": lambda v, p: None,  # checked against time_granularity below
-            "time_granularity": _one_of("day", "week"),
-            "policy_fingerprint": _str_rx(_HEX64, "64 lower-case hex digits"),
-            "software_version": _str_rx(re.compile(r"^[0-9A-Za-z.+-]{1,40}$"), "a version string"),
-            "kinds": _list(_KIND, 7),
-            "counts": _counts,
-            "edge_list": _nullable(_edge_list),
-            "model": _nullable(_model),
-            "quiz": _nullable(_quiz),
-            "ledger_digest": _ledger,
-            "withheld": _map(re.compile(r"^(edge_list|model|quiz)$"), "edge_list, model or quiz",
-                             lambda v, p: None if isinstance(v, str) and len(v) < 300 else _fail(p, "expected a short reason")),
-        }, {"log": _log})
         check_coarse(payload["created"], payload["time_granularity"], "created")
-    except DataError as e:
-        if source:
-            raise DataError(f"{source}: {e}") from None
-        raise
+    except DataError as err:
+        raise DataError(f"{source}: payload {err}" if source else f"payload {err}") from None
     return payload
 
 

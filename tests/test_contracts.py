@@ -130,3 +130,20 @@ def dataclasses_frozen_error():
 def test_example_board_limits_validate_with_a_plain_2020_12_validator(repo):
     doc = tomllib.loads((repo / "policies" / "board-limits.example.toml").read_text("utf-8"))
     assert list(Draft202012Validator(contracts.schema("board-limits")).iter_errors(doc)) == []
+
+
+def test_a_built_payload_validates_with_a_plain_2020_12_validator():
+    # The researcher's side in another language: the opened payload against payload.json.
+    from _bundle_fixtures import make_payload
+
+    doc = json.loads(json.dumps(make_payload()))
+    assert list(Draft202012Validator(contracts.schema("payload")).iter_errors(doc)) == []
+
+
+def test_unexpected_map_key_names_the_key():
+    from _bundle_fixtures import make_payload
+
+    p = make_payload()
+    p["counts"]["hours_by_kind"]["gps"] = 1
+    with pytest.raises(ContractError, match=r"\[counts.hours_by_kind.gps\] unexpected key: expected a non-time"):
+        validate("payload", p, "b.json")

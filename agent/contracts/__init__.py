@@ -45,7 +45,7 @@ from ..errors import DataError
 
 __all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "iter_problems", "schema", "validate"]
 
-SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal")
+SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload")
 
 
 class ContractError(DataError):
@@ -148,6 +148,11 @@ class _Say:
         return f"expected {expected}, got {_JSON_TYPE.get(type(v), type(v).__name__)}"
 
 
+# Keywords whose failure is worded by the schema's own x-lethe-expected, when it has one.
+_WORDED = ("type", "minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum", "pattern", "format",
+           "minLength", "maxLength")
+
+
 def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
     """(dotted key, message) for one jsonschema error."""
     say = _Say(syntax)
@@ -156,6 +161,13 @@ def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
     item = _item(path)
     v, kw, sch = err.instance, err.validator, err.schema
     whole = getattr(err, "_lethe_list", None) if item is not None else None
+    if "x-lethe-key-expected" in sch:  # a propertyNames schema: the key itself is wrong
+        return (f"{key}.{v}" if key else str(v)), f"unexpected key: expected {sch['x-lethe-key-expected']}"
+    expected = sch.get("x-lethe-expected")
+    if expected and kw in _WORDED:
+        if whole is not None:
+            return key, say.bad_value(whole, f"{expected} (item {item}: {_show(v)})")
+        return key, say.bad_value(v, expected)
     if kw == "additionalProperties":
         allowed = list(sch.get("properties", {}))
         extra = [k for k in v if k not in allowed] if isinstance(v, dict) else []
@@ -203,12 +215,11 @@ def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
         words = "at least" if kw == "minLength" else "at most"
         return key, say.bad_value(v, f"{words} {err.validator_value} characters")
     if kw in ("pattern", "format"):
-        expected = sch.get("x-lethe-expected") or (_FORMAT_WORDS.get(err.validator_value) if kw == "format"
-                                                    else f"text matching {err.validator_value}")
+        expected = (_FORMAT_WORDS.get(err.validator_value, err.validator_value) if kw == "format"
+                    else f"text matching {err.validator_value}")
         if whole is not None:
             return key, say.bad_value(whole, f"{expected} (item {item}: {_show(v)})")
         return key, say.bad_value(v, expected)
-    expected = sch.get("x-lethe-expected")
     return key, say.bad_value(v, expected) if expected else err.message
 
 
