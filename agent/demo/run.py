@@ -131,15 +131,15 @@ def participant_enrols(ctx: DemoContext) -> None:
     ctx.stage("Participant: enrolment and consent")
     policy = load_policy(ctx.policy_path)
     start = _study_start(ctx)
-    from ..keystore import keyring_available
     from ..study.card import load_card
 
     # The demo's researcher published the key fingerprint it just made; the
     # participant confirms it (the shipped policy leaves the key unpinned).
     published = load_card(ctx.facts["card"]).key_fingerprint
-    # Keys in the OS keyring when there is one; a throw-away demo home on a
-    # machine without one uses plain key files, by this explicit choice.
-    storage = "keyring" if keyring_available() else "plain"
+    # The demo's home is a throw-away directory of fictional data: plain key
+    # files by this explicit choice, so no entries are left in the OS keyring
+    # after the directory is deleted (a real enrolment uses the keyring).
+    storage = "plain"
     res = enrol(ctx.home_dir, ctx.facts["card"], ctx.policy_path, consent=policy.study.study_id,
                 now=start, enrolment_out=ctx.workdir / "enrolment.json", confirm_fingerprint=published,
                 key_storage=storage)
@@ -154,7 +154,8 @@ def participant_enrols(ctx: DemoContext) -> None:
     ctx.facts["pseudonym"] = res["pseudonym"]
     ctx.say(f"The participant read the consent text, confirmed study id {policy.study.study_id}, "
             f"compared the study key fingerprint {published[:16]}... with the published one, "
-            f"and got pseudonym {res['pseudonym']} (keys: {res['key_storage']}). The researcher registered the device "
+            f"and got pseudonym {res['pseudonym']} (keys: plain files, the demo's explicit choice for a throw-away "
+            f"home; a real enrolment keeps them in the OS keyring). The researcher registered the device "
             f"(key {res['device_key_id']}).")
 
 
