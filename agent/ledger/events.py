@@ -16,6 +16,7 @@ RESERVED = ("v", "seq", "prev", "t", "event", "hash", "sig")
 KINDS = ("audio", "gps", "accel", "mood", "unknown")
 
 HEX64 = re.compile(r"[0-9a-f]{64}\Z")
+_SIG128 = re.compile(r"[0-9a-f]{128}\Z")
 _ITEM = re.compile(r"[0-9a-f]{16,64}\Z")
 _CODE = re.compile(r"[a-z0-9_]{1,64}\Z")
 _LABEL = re.compile(r"[A-Za-z0-9._:+-]{1,64}\Z")
@@ -185,6 +186,6 @@ def shape_problem(entry) -> str | None:
         return "not a ledger entry (negative seq)"
     if not HEX64.match(entry["hash"]) or not HEX64.match(entry["prev"]):
         return "not a ledger entry (hash or prev is not 64 hex digits)"
-    if not re.fullmatch(r"[0-9a-f]{128}", entry["sig"]):
+    if not _SIG128.match(entry["sig"]):
         return "not a ledger entry (sig is not 128 hex digits)"
     return None
