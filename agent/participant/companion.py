@@ -12,7 +12,13 @@ import logging
 import threading
 import time
 
+from typing import TYPE_CHECKING
+
 from ..home import Home
+
+if TYPE_CHECKING:
+    from .notify import Notifier
+    from .web import PageServer
 
 log = logging.getLogger("lethe.companion")
 
@@ -37,8 +43,8 @@ class Companion:
         self.home, self.policy, self.stop_event = home, policy, stop_event
         self.check_every_s = float(check_every_s)
         self.notify = notify
-        self.server = None
-        self.notifier = None
+        self.server: PageServer | None = None
+        self.notifier: Notifier | None = None
         self._withdrawing = threading.Event()
         self._closed = threading.Event()
         self._thread: threading.Thread | None = None
@@ -46,8 +52,9 @@ class Companion:
     def start(self) -> Companion:
         from .web import PageServer
 
-        self.server = PageServer(self.home, in_agent=True, stop_agent=self._stop_agent).start()
-        log.info("participant page on 127.0.0.1:%d", self.server.port)
+        server = PageServer(self.home, in_agent=True, stop_agent=self._stop_agent).start()
+        self.server = server
+        log.info("participant page on 127.0.0.1:%d", server.port)
         if self.notify:
             from .notify import Notifier
 
@@ -70,7 +77,9 @@ class Companion:
                 book = PromptBook(self.home, self.policy)
                 op = book.open_prompt()
                 if op and book.mark_notified(op.prompt_id) and self.notifier is not None:
-                    until = time.strftime("%H:%M", time.localtime(op.expires))
+                    import datetime as dt
+
+                    until = dt.datetime.fromtimestamp(op.expires, self.home.timezone()).strftime("%H:%M")
                     self.notifier.notify("How do you feel?", f"A short mood question is waiting until {until}. "
                                                              f"Click to answer on your lethe page.")
             except Exception as e:  # noqa: BLE001 - prompts must never stop the agent

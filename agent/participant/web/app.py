@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import threading
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 from starlette.applications import Starlette
@@ -29,6 +30,17 @@ import contextlib
 HERE = Path(__file__).resolve().parent
 PAGES = (("/", "Today"), ("/places", "My places"), ("/test", "Memory test"), ("/feel", "How I feel"),
          ("/leaves", "What leaves"), ("/pause", "Pause or withdraw"))
+
+
+@dataclass
+class PageState:
+    """What one serving process remembers: its port, the sessions, the export in progress, a withdrawal."""
+
+    port: int
+    sessions: auth.Sessions
+    cookie_name: str
+    export: ExportDialogue | None = None
+    withdrawn: dict | None = None
 
 
 class Guard:
@@ -90,7 +102,7 @@ class ExportDialogue:
     def __init__(self, home: Home, policy):
         self.home, self.policy = home, policy
         self.preview: str | None = None
-        self.result = None
+        self.result: Path | None = None
         self.error: str | None = None
         self._ready = threading.Event()
         self._decided = threading.Event()
@@ -146,8 +158,8 @@ class ExportDialogue:
         return self.result
 
 
-def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_withdrawn=None) -> Starlette:
-    """The page for ``home`` served on ``127.0.0.1:port``.
+def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_withdrawn=None) -> Guard:
+    """The page for ``home`` served on ``127.0.0.1:port`` (the Starlette app inside its :class:`Guard`).
 
     Parameters
     ----------
@@ -169,15 +181,7 @@ def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_wi
     templates = Jinja2Templates(env=env)
     templates.env.globals["pages"] = PAGES
 
-    class State:
-        pass
-
-    st = State()
-    st.port = int(port)
-    st.sessions = auth.Sessions()
-    st.cookie_name = f"{auth.COOKIE}_{int(port)}"
-    st.export = None
-    st.withdrawn = None
+    st = PageState(port=int(port), sessions=auth.Sessions(), cookie_name=f"{auth.COOKIE}_{int(port)}")
 
     def render(request: Request, name: str, **ctx) -> HTMLResponse:
         session = request.scope["state"]["session"]
@@ -197,7 +201,8 @@ def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_wi
             form = await request.form()
             if st.withdrawn is not None:
                 return render(request, "withdrawn.html")
-            if not auth.csrf_ok(session, form.get("csrf")):
+            sent = form.get("csrf")
+            if not auth.csrf_ok(session, sent if isinstance(sent, str) else None):
                 return PlainTextResponse("Refused: this form is out of date. Reload the page and try again.",
                                          status_code=403)
             try:

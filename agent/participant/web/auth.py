@@ -113,8 +113,8 @@ class Sessions:
     def get(self, sid: str | None) -> Session | None:
         if not sid:
             return None
-        for known, s in list(self._by_id.items()):
-            if time.time() - s.created > self.ttl_s:
+        for known, old in list(self._by_id.items()):
+            if time.time() - old.created > self.ttl_s:
                 del self._by_id[known]
         s = self._by_id.get(sid)
         return s if s is not None and hmac.compare_digest(s.sid, sid) else None

@@ -55,7 +55,8 @@ def today(home: Home, now: float | None = None) -> dict:
         state = "not running in the background"
     book = PromptBook(home)
     pc = book.counts(now)
-    attention, due = [], []
+    attention: list[tuple[str, str | None]] = []
+    due: list[str] = []
     if book.open_prompt(now):
         attention.append(("A mood question is waiting for your answer.", "/feel"))
     inbox = ic["inbox"]
