@@ -31,7 +31,9 @@ import sys, urllib.request, http.cookiejar
 jar = http.cookiejar.CookieJar()
 op = urllib.request.build_opener(urllib.request.HTTPCookieProcessor(jar))
 page = op.open(sys.argv[1], timeout=60).read().decode()
-open(sys.argv[2], "w").write(page)
+import os
+open(sys.argv[2] + ".part", "w").write(page)
+os.replace(sys.argv[2] + ".part", sys.argv[2])  # appears whole
 '''
 
 
