@@ -159,3 +159,20 @@ def test_clipped_recording_is_kept_with_a_warning(default_policy):
     r = featurise(NAME, encode(y, 16000), default_policy, now=NOW)
     assert any("clipped" in w for w in r.warnings)
     assert featurise(NAME, encode(tone(), 16000), default_policy, now=NOW).warnings == []
+
+
+@pytest.mark.parametrize("channels", [1, 2, 3, 7])
+def test_mix_down_equals_numpy_mean_over_channels(channels):
+    # Reference: numpy's y.mean(axis=1) in single precision, bit for bit.
+    from agent.intake.readers.audio import _mix_down
+
+    y = np.random.default_rng(channels).uniform(-1, 1, (4410, channels)).astype(np.float32)
+    assert np.array_equal(_mix_down(y), y.mean(axis=1))
+
+
+def test_mix_down_of_eight_channels_is_the_mean_to_float32_rounding():
+    # numpy sums 8 values in pairs; sequential addition may differ in the last bit.
+    from agent.intake.readers.audio import _mix_down
+
+    y = np.random.default_rng(8).uniform(-1, 1, (4410, 8)).astype(np.float32)
+    assert np.allclose(_mix_down(y), y.mean(axis=1), rtol=0, atol=4 * np.finfo(np.float32).eps)
