@@ -9,8 +9,10 @@ and codes are the contract in ``docs/inbox-formats.md``.
 
 from __future__ import annotations
 
-from ..item import ItemResult, classify, suffix_of
+from ..item import SUFFIXES, ItemResult, classify, suffix_of
 from ._common import reject
+
+_KIND_OF_SUFFIX = dict(SUFFIXES)
 
 
 def featurise(path, data: bytes, policy, *, now: float | None = None) -> ItemResult:
@@ -41,7 +43,8 @@ def featurise(path, data: bytes, policy, *, now: float | None = None) -> ItemRes
     if not isinstance(data, (bytes, bytearray, memoryview)):
         raise TypeError(f"data must be bytes, got {type(data).__name__}")
     data = bytes(data)
-    kind = classify(path)
+    suffix = suffix_of(path)
+    kind = _KIND_OF_SUFFIX.get(suffix) if suffix is not None else None
     if kind is None:
         reject(path, "unknown_format",
                "unrecognised file name suffix; expected .wav .flac .ogg .gpx .nmea .gps.csv "
@@ -51,7 +54,6 @@ def featurise(path, data: bytes, policy, *, now: float | None = None) -> ItemRes
     cap = int(policy.intake.max_file_bytes)
     if len(data) > cap:
         reject(path, "too_large", f"{len(data)} bytes exceeds intake.max_file_bytes = {cap}")
-    suffix = suffix_of(path)
     if kind == "audio":
         from .audio import read_audio
         from ..features import audio_features
