@@ -145,6 +145,22 @@ def test_2_name_a_place(world, browser):
     names = {r["name"] for r in vault_rows(world["root"], "place_names")}
     assert "the office on Rua Nova" in names
     shot(browser, "places")
+    # merge the weekend place into the café, then undo it; leave the café out of the test, then include it
+    from selenium.webdriver.support.ui import Select
+
+    Select(by(browser, "#into-P4")).select_by_visible_text("unnamed place 3")
+    click(browser, "#place-P4 form:nth-of-type(2) button")
+    assert "the two are now one place" in by(browser, "main").text
+    assert "Same place as\nunnamed place 3" in by(browser, "#place-P4").text
+    Select(by(browser, "#into-P4")).select_by_visible_text("(no other place)")
+    click(browser, "#place-P4 form:nth-of-type(2) button")
+    assert "kept as a place of its own" in by(browser, "main").text
+    click(browser, "#place-P3 form:nth-of-type(3) button")
+    assert "will not be asked about" in by(browser, "main").text
+    assert {r.get("exclude") for r in vault_rows(world["root"], "place_names") if r.get("exclude")} == {True}
+    click(browser, "#place-P3 form:nth-of-type(3) button")
+    assert "may be asked about again" in by(browser, "main").text
+    assert not any(r.get("exclude") or r.get("merged_into") for r in vault_rows(world["root"], "place_names"))
 
 
 def test_3_memory_test_with_not_sure_and_resume(world, browser):
@@ -225,7 +241,7 @@ def test_4_mood_answer_is_taken_in_and_destroyed(world, browser):
         by(browser, f"label[for='r-{emotion}-{scale[i % len(scale)]}']").click()
     shot(browser, "feel")
     click(browser, "form[action='/feel'] button")
-    assert "Your answer is in the inbox" in by(browser, "main").text
+    assert "Thank you for your answer." in by(browser, "main").text
     deadline = time.monotonic() + 120  # waiting for the agent, not a timing assertion
     while time.monotonic() < deadline:
         if "was taken in, and its file was destroyed" in by(browser, "main").text:
@@ -233,6 +249,9 @@ def test_4_mood_answer_is_taken_in_and_destroyed(world, browser):
         time.sleep(1)
         browser.refresh()
     assert "was taken in, and its file was destroyed" in by(browser, "main").text
+    browser.set_window_size(1000, 700)
+    browser.save_screenshot(str(FIGURES / "page-feel-taken.png"))  # the top of the page is what matters
+    browser.set_window_size(1000, 1400)
     after = intake_counts(root)
     assert after["featurised"]["mood"] == before["featurised"].get("mood", 0) + 1
     assert after["destroyed"]["mood"] == before["destroyed"].get("mood", 0) + 1

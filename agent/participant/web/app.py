@@ -364,7 +364,7 @@ def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_wi
             return name
         await run_in_threadpool(work)
         task = None if in_agent else BackgroundTask(_drain_once, home)
-        resp = back("/feel", "Thank you. Your answer is in the inbox.")
+        resp = back("/feel", "Thank you for your answer.")
         resp.background = task
         return resp
 
