@@ -45,7 +45,7 @@ from ..errors import DataError
 
 __all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "iter_problems", "schema", "validate"]
 
-SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload")
+SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload", "scenario")
 
 
 class ContractError(DataError):
@@ -97,13 +97,13 @@ _JSON_TYPE = {bool: "true or false", int: "an integer", float: "a number", str: 
               dict: "an object", type(None): "null"}
 
 
-def _dotted(path) -> str:
+def _dotted(path, keep_last_index: bool = False) -> str:
     """Dotted key: ``places[1].sound``; a trailing list index is dropped (the list is named as a whole)."""
     out = ""
     path = list(path)
     for n, p in enumerate(path):
         if isinstance(p, int):
-            if n == len(path) - 1:
+            if n == len(path) - 1 and not keep_last_index:
                 break
             out += f"[{p}]"
         else:
@@ -149,7 +149,7 @@ class _Say:
 
 
 # Keywords whose failure is worded by the schema's own x-lethe-expected, when it has one.
-_WORDED = ("type", "minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum", "pattern", "format",
+_WORDED = ("type", "const", "minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum", "pattern", "format",
            "minLength", "maxLength")
 
 
@@ -161,8 +161,9 @@ def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
     item = _item(path)
     v, kw, sch = err.instance, err.validator, err.schema
     whole = getattr(err, "_lethe_list", None) if item is not None else None
+    owner = _dotted(path, keep_last_index=True)  # the object whose members are named below
     if "x-lethe-key-expected" in sch:  # a propertyNames schema: the key itself is wrong
-        return (f"{key}.{v}" if key else str(v)), f"unexpected key: expected {sch['x-lethe-key-expected']}"
+        return (f"{owner}.{v}" if owner else str(v)), f"unexpected key: expected {sch['x-lethe-key-expected']}"
     expected = sch.get("x-lethe-expected")
     if expected and kw in _WORDED:
         if whole is not None:
@@ -175,8 +176,8 @@ def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
         noun = _member_noun(sch)
         near = difflib.get_close_matches(name, allowed, n=1, cutoff=0.75)
         hint = f" (did you mean {near[0]!r}?)" if near else ""
-        dotted = f"{key}.{name}" if key else name
-        inside = f" in [{key}]" if key else ""
+        dotted = f"{owner}.{name}" if owner else name
+        inside = f" in [{owner}]" if owner else ""
         plural = {"section": "sections", "key": "keys"}.get(noun, "fields")
         what = f"unknown {noun} [{name}]" if noun == "section" else f"unknown {noun}"
         return dotted, f"{what}{hint}; allowed {plural}{inside}: {', '.join(allowed)}"
@@ -185,7 +186,7 @@ def _message(err: ValidationError, syntax: str) -> tuple[str, str]:
         name = missing[0] if missing else "?"
         sub = sch.get("properties", {}).get(name, {})
         noun = _member_noun(sch)
-        dotted = f"{key}.{name}" if key else name
+        dotted = f"{owner}.{name}" if owner else name
         if noun == "section":
             return dotted, f"missing section [{name}]"
         desc = sub.get("description") or _type_words(sub.get("type", "?"), syntax)

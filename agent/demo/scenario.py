@@ -19,10 +19,11 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+from zoneinfo import ZoneInfo
 
 import numpy as np
 
+from .. import contracts
 from ..errors import DataError
 
 SCHEMA_VERSION = 1
@@ -178,165 +179,74 @@ def default_scenario_path() -> Path:
 
 
 # -- validation -------------------------------------------------------------------
-class _Checker:
-    def __init__(self, source):
-        self.source = source
-
-    def fail(self, key, msg):
-        raise DataError(f"{self.source}: [{key}] {msg}")
-
-    def get(self, table, key, kind, where, default=..., check=None):
-        if key not in table:
-            if default is ...:
-                self.fail(f"{where}.{key}", f"required key is missing (expected {_kind_name(kind)})")
-            return default
-        v = table[key]
-        ok = isinstance(v, kind) and not (isinstance(v, bool) and kind is not bool)
-        if not ok:
-            self.fail(f"{where}.{key}", f"value {v!r} has the wrong type: expected {_kind_name(kind)}")
-        if check is not None:
-            problem = check(v)
-            if problem:
-                self.fail(f"{where}.{key}", f"value {v!r} is out of range: expected {problem}")
-        return float(v) if kind == (int, float) else v
-
-
-def _kind_name(kind):
-    return {str: "a string", bool: "true or false", list: "a list", dict: "a table",
-            (int, float): "a number"}.get(kind, getattr(kind, "__name__", str(kind)))
-
-
-def _between(lo, hi):
-    return lambda v: None if lo <= v <= hi else f"between {lo} and {hi}"
-
-
-def _member(choices):
-    return lambda v: None if v in choices else f"one of {list(choices)}"
-
-
-def _clock(v):
-    try:
-        h, m = v.split(":")
-        h, m = int(h), int(m)
-    except ValueError:
-        return "a local time 'HH:MM'"
-    return None if 0 <= h < 24 and 0 <= m < 60 else "a local time 'HH:MM'"
-
-
 def clock_minutes(v: str) -> float:
     h, m = v.split(":")
     return int(h) * 60.0 + int(m)
 
 
-NUM = (int, float)
+def _fail(source, key, msg):
+    raise DataError(f"{source}: [{key}] {msg}")
+
+
+def _contract_error(source, key, message) -> DataError:
+    return DataError(f"{source}: [{key}] {message}")
 
 
 def _validate(raw: dict, source: str) -> Scenario:
-    c = _Checker(source)
-    sc = c.get(raw, "scenario", dict, "<document>")
-    if sc.get("schema") != SCHEMA_VERSION:
-        c.fail("scenario.schema", f"value {sc.get('schema')!r}: this version reads schema = {SCHEMA_VERSION}")
-    if sc.get("fictional") is not True:
-        c.fail("scenario.fictional", "must be true: demo scenarios describe invented people and places only")
-    tzname = c.get(sc, "timezone", str, "scenario")
-    try:
-        ZoneInfo(tzname)
-    except (ZoneInfoNotFoundError, ValueError):
-        c.fail("scenario.timezone", f"value {tzname!r}: expected an IANA time zone name")
-
+    """``agent/contracts/schemas/scenario.json``, then the references between tables."""
+    if not isinstance(raw, dict) or not isinstance(raw.get("scenario"), dict):
+        _fail(source, "scenario", "missing section [scenario]")
+    if raw["scenario"].get("schema") != SCHEMA_VERSION:
+        _fail(source, "scenario.schema",
+              f"value {raw['scenario'].get('schema')!r}: this version reads schema = {SCHEMA_VERSION}")
+    raw = contracts.apply_defaults("scenario", raw)
+    contracts.validate("scenario", raw, source, syntax="toml", error=_contract_error)
+    sc = raw["scenario"]
     places: dict[str, Place] = {}
-    plist = c.get(raw, "places", list, "<document>")
-    for i, p in enumerate(plist):
+    for i, p in enumerate(raw["places"]):
         w = f"places[{i}]"
-        if not isinstance(p, dict):
-            c.fail(w, "expected a table [[places]]")
-        pid = c.get(p, "id", str, w)
-        if pid in places:
-            c.fail(f"{w}.id", f"value {pid!r} is used twice")
-        motion = c.get(p, "motion", dict, w)
-        for k, v in motion.items():
-            if k not in VISIT_MOTIONS or not isinstance(v, NUM) or isinstance(v, bool) or v < 0:
-                c.fail(f"{w}.motion.{k}", f"expected keys from {list(VISIT_MOTIONS)} with weights >= 0")
-        if not motion or sum(motion.values()) <= 0:
-            c.fail(f"{w}.motion", "expected at least one positive weight")
-        places[pid] = Place(
-            id=pid,
-            type=c.get(p, "type", str, w, check=_member(PLACE_TYPES)),
-            name=c.get(p, "name", str, w),
-            east_m=c.get(p, "east_m", NUM, w, check=_between(-50000, 50000)),
-            north_m=c.get(p, "north_m", NUM, w, check=_between(-50000, 50000)),
-            wander_m=c.get(p, "wander_m", NUM, w, 5.0, _between(0, 500)),
-            sound=c.get(p, "sound", str, w, check=_member(SOUND_TYPES)),
-            motion={k: float(v) for k, v in motion.items()},
-        )
+        if p["id"] in places:
+            _fail(source, f"{w}.id", f"value {p['id']!r} is used twice")
+        if sum(p["motion"].values()) <= 0:
+            _fail(source, f"{w}.motion", "expected at least one positive weight")
+        places[p["id"]] = Place(id=p["id"], type=p["type"], name=p["name"], east_m=float(p["east_m"]),
+                                north_m=float(p["north_m"]), wander_m=float(p.get("wander_m", 5.0)),
+                                sound=p["sound"], motion={k: float(v) for k, v in p["motion"].items()})
     if sum(p.type == "home" for p in places.values()) != 1:
-        c.fail("places", "expected exactly one place of type 'home'")
-
+        _fail(source, "places", "expected exactly one place of type 'home'")
     routine = []
-    for i, a in enumerate(c.get(raw, "routine", list, "<document>")):
-        w = f"routine[{i}]"
-        pid = c.get(a, "place", str, w)
-        if pid not in places:
-            c.fail(f"{w}.place", f"value {pid!r} is not a place id; known: {sorted(places)}")
-        days = c.get(a, "days", list, w)
-        if not days or any(d not in WEEKDAYS for d in days):
-            c.fail(f"{w}.days", f"value {days!r}: expected a non-empty list drawn from {list(WEEKDAYS)}")
-        mode = c.get(a, "mode", str, w, None, _member(TRAVEL_MODES))
+    for i, a in enumerate(raw["routine"]):
+        if a["place"] not in places:
+            _fail(source, f"routine[{i}].place", f"value {a['place']!r} is not a place id; known: {sorted(places)}")
         routine.append(Activity(
-            label=c.get(a, "label", str, w),
-            place=pid,
-            days=frozenset(WEEKDAYS.index(d) for d in days),
-            start_min=clock_minutes(c.get(a, "start", str, w, check=_clock)),
-            start_jitter_min=c.get(a, "start_jitter_min", NUM, w, 0.0, _between(0, 240)),
-            duration_min=c.get(a, "duration_min", NUM, w, check=_between(1, 1440)),
-            duration_jitter_min=c.get(a, "duration_jitter_min", NUM, w, 0.0, _between(0, 240)),
-            probability=c.get(a, "probability", NUM, w, check=_between(0, 1)),
-            group=c.get(a, "group", str, w, None),
-            mode=mode,
-        ))
-
-    tr = c.get(raw, "travel", dict, "<document>")
-    travel = {k: c.get(tr, k, NUM, "travel", check=_between(0, 1e6)) for k in (
-        "detour_factor", "walk_speed_mps", "cycle_speed_mps", "vehicle_speed_mps", "walk_max_m",
-        "cycle_max_m", "vehicle_instead_probability", "extra_minutes_max")}
-    ir = c.get(raw, "irregularity", dict, "<document>")
+            label=a["label"], place=a["place"], days=frozenset(WEEKDAYS.index(d) for d in a["days"]),
+            start_min=clock_minutes(a["start"]), start_jitter_min=float(a.get("start_jitter_min", 0.0)),
+            duration_min=float(a["duration_min"]), duration_jitter_min=float(a.get("duration_jitter_min", 0.0)),
+            probability=float(a["probability"]), group=a.get("group"), mode=a.get("mode")))
+    travel = {k: float(v) for k, v in raw["travel"].items()}
+    ir = raw["irregularity"]
     irregularity = {
-        "sick_day_probability": c.get(ir, "sick_day_probability", NUM, "irregularity", check=_between(0, 1)),
-        "late_probability": c.get(ir, "late_probability", NUM, "irregularity", check=_between(0, 1)),
-        "late_minutes_max": c.get(ir, "late_minutes_max", NUM, "irregularity", check=_between(0, 600)),
-        "latest_start_min": clock_minutes(c.get(ir, "latest_start", str, "irregularity", check=_clock)),
-        "night_start_min": clock_minutes(c.get(ir, "night_start", str, "irregularity", check=_clock)),
-        "night_end_min": clock_minutes(c.get(ir, "night_end", str, "irregularity", check=_clock)),
+        "sick_day_probability": float(ir["sick_day_probability"]), "late_probability": float(ir["late_probability"]),
+        "late_minutes_max": float(ir["late_minutes_max"]), "latest_start_min": clock_minutes(ir["latest_start"]),
+        "night_start_min": clock_minutes(ir["night_start"]), "night_end_min": clock_minutes(ir["night_end"]),
     }
-    md = c.get(raw, "mood", dict, "<document>")
+    md = raw["mood"]
     mood = {
-        "noise_sd": c.get(md, "noise_sd", NUM, "mood", check=_between(0, 10)),
-        "skip_probability": c.get(md, "skip_probability", NUM, "mood", check=_between(0, 1)),
-        "response_delay_minutes_max": c.get(md, "response_delay_minutes_max", NUM, "mood", check=_between(0, 120)),
-        "prompt_start_min": clock_minutes(c.get(md, "prompt_start", str, "mood", check=_clock)),
-        "prompt_end_min": clock_minutes(c.get(md, "prompt_end", str, "mood", check=_clock)),
-        "json_probability": c.get(md, "json_probability", NUM, "mood", check=_between(0, 1)),
-        "default": c.get(md, "default", NUM, "mood"),
-        "baseline": {k: float(v) for k, v in c.get(md, "baseline", dict, "mood").items()},
-        "bias": {k: {e: float(x) for e, x in v.items()} for k, v in c.get(md, "bias", dict, "mood", {}).items()},
+        "noise_sd": float(md["noise_sd"]), "skip_probability": float(md["skip_probability"]),
+        "response_delay_minutes_max": float(md["response_delay_minutes_max"]),
+        "prompt_start_min": clock_minutes(md["prompt_start"]), "prompt_end_min": clock_minutes(md["prompt_end"]),
+        "json_probability": float(md["json_probability"]), "default": float(md["default"]),
+        "baseline": {k: float(v) for k, v in md["baseline"].items()},
+        "bias": {k: {e: float(x) for e, x in v.items()} for k, v in md.get("bias", {}).items()},
     }
     if mood["prompt_end_min"] <= mood["prompt_start_min"]:
-        c.fail("mood.prompt_end", "must be later than mood.prompt_start")
-    an = c.get(raw, "answers", dict, "<document>")
-    answers = {k: c.get(an, k, NUM, "answers", check=_between(0, 1e3)) for k in (
-        "true_bonus", "habit_weight", "temperature", "skip_probability", "rt_median_s", "rt_sigma")}
+        _fail(source, "mood.prompt_end", "must be later than mood.prompt_start")
+    answers = {k: float(v) for k, v in raw["answers"].items()}
     if answers["temperature"] <= 0:
-        c.fail("answers.temperature", "must be > 0")
-
+        _fail(source, "answers.temperature", "must be > 0")
     return Scenario(
-        raw=raw, source=source,
-        name=c.get(sc, "name", str, "scenario"),
-        participant=c.get(sc, "participant", str, "scenario"),
-        town=c.get(sc, "town", str, "scenario"),
-        timezone=tzname,
-        origin_lat=c.get(sc, "origin_lat", NUM, "scenario", check=_between(-80, 80)),
-        origin_lon=c.get(sc, "origin_lon", NUM, "scenario", check=_between(-180, 180)),
-        altitude_m=c.get(sc, "altitude_m", NUM, "scenario", 10.0),
-        places=places, routine=routine, travel=travel, irregularity=irregularity,
-        mood=mood, answers=answers,
+        raw=raw, source=source, name=sc["name"], participant=sc["participant"], town=sc["town"],
+        timezone=sc["timezone"], origin_lat=float(sc["origin_lat"]), origin_lon=float(sc["origin_lon"]),
+        altitude_m=float(sc.get("altitude_m", 10.0)), places=places, routine=routine, travel=travel,
+        irregularity=irregularity, mood=mood, answers=answers,
     )
