@@ -286,3 +286,12 @@ def test_opening_reads_only_after_the_checkpoint(home, ledger):
     (home.root / CHECKPOINT_NAME).unlink()
     assert Ledger(home).state().damaged == 1       # the whole file
     assert not verify_ledger(home, policy=1e9, now=T0).ok  # the verifier always reads everything
+
+
+def test_taken_counts_from_the_running_state(home, ledger):
+    # For intake (issue 12, finding 10): items taken in again and again without an outcome.
+    ledger.append("received", item=item(1), kind="audio", bytes=1, complete_at=T0)
+    ledger.append("received", item=item(1), kind="audio", bytes=1, complete_at=T0)
+    ledger.append("received", item=item(2), kind="audio", bytes=1, complete_at=T0)
+    ledger.append("rejected", item=item(2), kind="audio", reason="bad_header")
+    assert Ledger(home).taken_counts() == {item(1): 2}

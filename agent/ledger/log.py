@@ -80,6 +80,9 @@ class LogState:
         item -> [kind, complete_at, seq] for items received and not yet destroyed.
     exposure_ms : dict
         Recorded ``exposure_s`` of each destruction, rounded to milliseconds -> count.
+    taken : dict
+        item -> ``received`` entries since its last outcome (``featurised``,
+        ``rejected`` or ``destroyed``), for items still without one.
     damaged : int
         Lines that are not ledger entries.
     unrecorded : int
@@ -96,6 +99,7 @@ class LogState:
     reasons: dict = field(default_factory=dict)
     open: dict = field(default_factory=dict)
     exposure_ms: dict = field(default_factory=dict)
+    taken: dict = field(default_factory=dict)
     damaged: int = 0
     unrecorded: int = 0
 
@@ -125,6 +129,11 @@ class LogState:
             if per is None:
                 per = self.kinds[kind] = {k: 0 for k in _COUNTED}
             per[event] += 1
+        if isinstance(item, str):
+            if event == "received":
+                self.taken[item] = self.taken.get(item, 0) + 1
+            elif event in ("featurised", "rejected", "destroyed"):
+                self.taken.pop(item, None)
         if event == "received" and isinstance(item, str):
             self.open[item] = [kind, entry.get("complete_at"), entry["seq"]]
         elif event == "destroyed" and isinstance(item, str):
@@ -144,7 +153,7 @@ class LogState:
         return {"seq": self.seq, "hash": self.hash, "offset": self.offset, "size": self.size,
                 "frontier": self.frontier.to_list(), "root": self.root(), "origin": self.origin,
                 "counts": dict(sorted(self.counts.items())), "kinds": self.kinds, "reasons": self.reasons,
-                "open": self.open, "exposure_ms": self.exposure_ms, "damaged": self.damaged,
+                "open": self.open, "exposure_ms": self.exposure_ms, "taken": self.taken, "damaged": self.damaged,
                 "unrecorded": self.unrecorded}
 
     @classmethod
@@ -155,7 +164,8 @@ class LogState:
         return cls(seq=int(d["seq"]), hash=str(d["hash"]), offset=int(d["offset"]), frontier=fr,
                    origin=d["origin"], counts=dict(d["counts"]), kinds={k: dict(v) for k, v in d["kinds"].items()},
                    reasons=dict(d["reasons"]), open={k: list(v) for k, v in d["open"].items()},
-                   exposure_ms=dict(d["exposure_ms"]), damaged=int(d["damaged"]), unrecorded=int(d["unrecorded"]))
+                   exposure_ms=dict(d["exposure_ms"]), taken=dict(d["taken"]), damaged=int(d["damaged"]),
+                   unrecorded=int(d["unrecorded"]))
 
     def copy(self) -> LogState:
         return LogState.from_dict(json.loads(json.dumps(self.to_dict())))
@@ -382,6 +392,14 @@ class Ledger:
     def damaged(self) -> int:
         """Lines in the ledger that are not entries (0 for an undamaged ledger)."""
         return max(self.state().damaged, self._damaged_seen)
+
+    def taken_counts(self) -> dict[str, int]:
+        """``{item: received entries since its last outcome}`` for items still without one.
+
+        From the running state (checkpoint plus the entries after it), so a
+        start-up that needs it does not re-read the whole ledger.
+        """
+        return dict(self.state().taken)
 
     def open_items(self) -> dict[str, dict]:
         """Items received and not yet destroyed: ``{item: {"kind", "complete_at", "seq"}}``."""

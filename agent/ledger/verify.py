@@ -425,7 +425,7 @@ def _read_checkpoint_doc(path: Path, pub, probs) -> dict | None:
 def _compare_checkpoint(cp: dict, state: LogState, probs) -> None:
     mine = state.to_dict()
     differ = [k for k in ("seq", "hash", "size", "root", "origin", "counts", "kinds", "reasons", "open",
-                          "exposure_ms", "damaged")
+                          "exposure_ms", "taken", "damaged")
               if json.loads(json.dumps(mine[k])) != cp.get(k)]
     if differ:
         probs.add(cp.get("seq"), "checkpoint",
