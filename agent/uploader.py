@@ -361,3 +361,36 @@ def upload_withdrawal(cert_path, url: str, pin: str, *, attempts: int = 6, backo
                      f"keep the file and send it to the study as agreed")
 
 
+
+
+def start_background(home, stop_event=None, *, interval_s: float = 300.0):
+    """Run the upload queue in a daemon thread of the running agent; None when the card names no server.
+
+    Every ``interval_s`` (or sooner, when a retry falls due) the outbox is
+    scanned for new confirmed bundles and every due item is sent.  Stops when
+    ``stop_event`` is set.  A failure never reaches the agent: it is recorded
+    in the queue (``lethe status`` shows it) and retried with back-off.
+    """
+    import logging
+    import threading
+
+    up = Uploader(home)
+    if up.server is None:
+        return None
+    stop = stop_event or threading.Event()
+    log = logging.getLogger("lethe")
+
+    def loop():
+        while not stop.is_set():
+            try:
+                up.enqueue_outbox()
+                up.run_once()
+            except (LetheError, OSError, ValueError) as e:  # recorded; the agent keeps running
+                log.warning("upload pass failed: %s", type(e).__name__)
+            due = [i["next_try"] for i in up.pending()]
+            wait = min([interval_s] + [max(1.0, t - time.time()) for t in due])
+            stop.wait(wait)
+
+    t = threading.Thread(target=loop, name="lethe-uploader", daemon=True)
+    t.start()
+    return t

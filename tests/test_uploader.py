@@ -230,3 +230,38 @@ def test_server_refuses_a_ledger_that_does_not_continue(setup):
     (f,) = queue_status(home)["failed"]
     assert f["kind"] == "bundle" and "reset" in f["message"]
     assert srv.ctx.store.counts()["bundles"] == 0
+
+
+def test_the_running_agent_uploads(setup):
+    # 'lethe run' (watching) starts the upload queue when the card names a server: a confirmed bundle in the
+    # outbox reaches the server without any other command.
+    import threading
+
+    from agent.intake.watcher import run_agent
+
+    home, _, srv = setup
+    up = Uploader(home)
+    up.enqueue_enrolment(srv.ctx.store.invite(1)[0])
+    export_bundle(home, now=NOW)
+    stop, ready = threading.Event(), threading.Event()
+    t = threading.Thread(target=run_agent, args=(home, home.load_policy()),
+                         kwargs=dict(stop_event=stop, warm=False, on_ready=lambda s: ready.set()))
+    t.start()
+    try:
+        assert ready.wait(60)
+        deadline = time.time() + 60
+        while time.time() < deadline and srv.ctx.store.counts()["bundles"] < 1:
+            time.sleep(0.2)
+    finally:
+        stop.set()
+        t.join(60)
+    assert not t.is_alive()
+    assert srv.ctx.store.counts()["bundles"] == 1
+    assert [s["kind"] for s in queue_status(home)["sent"]] == ["enrolment", "bundle"]
+
+
+def test_background_uploader_needs_a_server_on_the_card(tmp_path):
+    from agent.uploader import start_background
+
+    home, _ = make_world(tmp_path)
+    assert start_background(home) is None  # files only: no thread, nothing queued

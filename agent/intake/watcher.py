@@ -489,9 +489,14 @@ def _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_o
                                    after_sweep=warm_and_ready, maintenance=lambda: code_features(intake),
                                    maintenance_every_s=maintenance_every_s)
             watcher.start()
+            from ..uploader import start_background  # sends prepared files when the card names a server
+
+            uploader_stop = threading.Event()
+            start_background(h, uploader_stop)
             try:
                 report = watcher.run()
             finally:
+                uploader_stop.set()
                 watcher.stop()
         intake.ledger.append("agent_stop", reason="drained" if once else "stopped")
         return report
