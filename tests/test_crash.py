@@ -82,10 +82,7 @@ def test_sigkill_at_random_points_during_backfill(tmp_path, monkeypatch):
     from agent.ledger import verify_ledger
 
     monkeypatch.setenv("LETHE_NO_KEYRING", "1")
-    # Kills from outside land on whatever file is being parsed; the rule that destroys a file the agent
-    # died parsing twice (tests/test_intake_hardening.py) would rightly destroy such a file unparsed,
-    # which the clean reference below does not model.  So it is set out of reach here.
-    env = dict(os.environ, LETHE_NO_KEYRING="1", PYTHONPATH=str(REPO), LETHE_TAKEN_LIMIT="1000")
+    env = dict(os.environ, LETHE_NO_KEYRING="1", PYTHONPATH=str(REPO))
     crash = make_home(tmp_path / "crash")
     clean = make_home(tmp_path / "clean")
     policy = crash.load_policy()

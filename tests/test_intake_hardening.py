@@ -233,3 +233,52 @@ def test_alarm_file_is_json(hp):
     w.alarm("ledger_unwritable", OSError(28, "No space left on device"))
     doc = json.loads((h.state / "intake-alarm.json").read_text())
     assert doc["reason"] == "ledger_unwritable" and "No space left" in doc["error"]
+
+
+# -- low: the service's log lists no names and is rotated ------------------------------------------
+def test_run_under_the_service_logs_no_names_and_prints_nothing(hp):
+    import subprocess
+    import sys
+
+    from intake_samples import REPO
+
+    h, policy = hp
+    drop(h.inbox, "private-name-of-a-diary.txt", b"x")   # rejected unknown_format: its name would be listed
+    env = dict(os.environ, LETHE_SERVICE="1", PYTHONPATH=str(REPO))
+    cp = subprocess.run([sys.executable, "-m", "agent.cli", "--home", str(h.root), "run", "--once", "--settle", "0"],
+                        cwd=REPO, env=env, capture_output=True, text=True, timeout=120)
+    assert cp.returncode == 0, cp.stderr
+    assert "private-name" not in cp.stdout + cp.stderr         # what the service manager would persist
+    log = (h.logs / "agent.log").read_text()
+    assert "rejected 1 (unknown_format 1)" in log and "private-name" not in log
+
+
+def test_redacted_report_has_counts_not_names(hp):
+    from agent.intake.pipeline import drain
+
+    h, policy = hp
+    drop(h.inbox, "private-name.txt", b"x")
+    rep = drain(h, policy, settle_s=0.0)
+    assert any("private-name" in e for e in rep.errors)        # on a terminal the participant sees it
+    red = rep.redacted()
+    assert "private-name" not in red.text() and "1 file(s) rejected" in red.text()
+
+
+def test_service_capture_file_is_rotated(tmp_path):
+    from agent.participant.service import rotate_capture
+
+    p = tmp_path / "service.out"
+    p.write_bytes(b"x" * 3000)
+    assert not rotate_capture(p, max_bytes=4096) and p.stat().st_size == 3000
+    p.write_bytes(b"y" * 5000)
+    assert rotate_capture(p, max_bytes=4096)
+    assert p.stat().st_size == 0 and (tmp_path / "service.out.1").read_bytes() == b"y" * 5000
+
+
+def test_service_unit_marks_the_service():
+    from pathlib import Path
+
+    from agent.participant.service import launchd_plist, systemd_unit
+
+    assert "Environment=LETHE_SERVICE=1" in systemd_unit(Path("/h"), ["lethe"])
+    assert "<key>LETHE_SERVICE</key>" in launchd_plist(Path("/h"), ["lethe"])

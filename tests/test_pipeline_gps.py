@@ -89,3 +89,25 @@ def test_failed_fold_rolls_back_fixes_and_stays(h, monkeypatch):
     assert list(h.inbox.iterdir()) == []  # still destroyed within the window
     with Vault.open(h) as v:
         assert v.count("gps_fixes") == v.count("stays") == v.count("intake_items") == 0
+
+
+def test_exact_fixes_are_pruned_by_the_clock_without_a_newer_fix(h):
+    """Low finding: fixes stayed while no newer fix arrived (the horizon was relative to the newest fix)."""
+    import time
+
+    from agent.intake.pipeline import Intake
+    from agent.vault import Vault
+
+    policy = h.load_policy()
+    horizon_s = policy.retention.gps_buffer_minutes * 60
+    t_old = time.time() - horizon_s - 3600          # all fixes older than the buffer, by the clock
+    drop(h.inbox, f"loc_{stamp(t_old)}.gps.csv", gps_csv_bytes(t_old, n=4, step_s=60.0))
+    with Intake(h, policy) as it:
+        it.process_many([f"loc_{stamp(t_old)}.gps.csv"])
+        with Vault.open(h) as v:
+            assert v.count("gps_fixes") == 4       # folding relative to the newest fix keeps them
+        assert it.gps_buffered
+        rep = it.prune_gps()
+        assert rep.fixes_deleted == 4 and not it.gps_buffered
+    with Vault.open(h) as v:
+        assert v.count("gps_fixes") == 0

@@ -39,6 +39,10 @@ def _run(args) -> int:
 
     from ..intake.watcher import run_agent
 
+    # Under the background service (its unit sets LETHE_SERVICE=1) everything this process would print
+    # goes to the rotating agent log instead, and without file names: that output is persisted.
+    service = os.environ.get("LETHE_SERVICE") == "1"
+    restore = _service_output(home) if service else None
     stop = threading.Event()
 
     def _stop(signum, frame):
@@ -81,5 +85,61 @@ def _run(args) -> int:
             signal.signal(s, h)
         if companion is not None:
             companion.close()
-    emit(args, report.as_dict(), report.text())
+    try:
+        if service:
+            report = report.redacted()
+        emit(args, report.as_dict(), report.text())
+    finally:
+        if restore is not None:
+            restore()
     return 0
+
+
+def _service_output(home):
+    """Send stdout and stderr (summaries, tracebacks) to ``HOME/logs/agent.log`` (rotated); returns an undo.
+
+    What the service manager still captures at the descriptor level (``logs/service.out``: only fatal
+    interpreter errors) is rotated here too, by copy and truncate, once it passes 1 MiB.
+    """
+    import logging
+    import sys
+
+    from ..intake.watcher import setup_logging
+    from ..participant.service import rotate_capture
+
+    rotate_capture(home.logs / "service.out")
+    handler = setup_logging(home)
+    old = sys.stdout, sys.stderr
+    sys.stdout = _LogStream(logging.getLogger("lethe.run"), logging.INFO)
+    sys.stderr = _LogStream(logging.getLogger("lethe.run"), logging.ERROR)
+
+    def restore():
+        sys.stdout, sys.stderr = old
+        if handler is not None:
+            logging.getLogger("lethe").removeHandler(handler)
+            handler.close()
+
+    return restore
+
+
+class _LogStream:
+    """A text stream that writes whole lines to a logger."""
+
+    def __init__(self, logger, level):
+        self.logger, self.level, self.buf = logger, level, ""
+
+    def write(self, text: str) -> int:
+        self.buf += text
+        while "\n" in self.buf:
+            line, self.buf = self.buf.split("\n", 1)
+            if line.strip():
+                self.logger.log(self.level, "%s", line)
+        return len(text)
+
+    def flush(self) -> None:
+        if self.buf.strip():
+            self.logger.log(self.level, "%s", self.buf)
+        self.buf = ""
+
+    def isatty(self) -> bool:
+        return False

@@ -11,7 +11,8 @@ stay
     vault table ``stays``, rid ``f"{t_start:.0f}"``, payload
     ``{"t_start", "t_end", "lat", "lon", "n"}``.
 buffer horizon
-    ``retention.gps_buffer_minutes`` before the newest buffered fix.
+    ``retention.gps_buffer_minutes`` before the newest buffered fix, or before
+    the clock when pruning (:func:`prune`), whichever is later.
 
 :func:`fold` runs inside the transaction that stored a GPS file's fixes (see
 :meth:`agent.intake.pipeline.Intake.commit`), so a crash leaves either the old
@@ -47,7 +48,7 @@ def stay_rid(stay: dict) -> str:
     return f"{float(stay['t_start']):.0f}"
 
 
-def fold(vault, policy) -> FoldReport:
+def fold(vault, policy, now: float | None = None) -> FoldReport:
     """Fold the buffered fixes into stays and drop what may not stay (see module docstring).
 
     Parameters
@@ -57,6 +58,12 @@ def fold(vault, policy) -> FoldReport:
     policy : agent.policy.Policy
         Uses ``codebook.stay_radius_m``, ``codebook.stay_min_minutes`` and
         ``retention.gps_buffer_minutes``.
+    now : float, optional
+        The clock (Unix seconds).  When given, the horizon is
+        ``max(newest fix, now) - gps_buffer_minutes``, so exact fixes do not
+        stay while no newer fix arrives (:func:`prune`); without it, the
+        horizon is relative to the newest fix (what folding a new file uses,
+        so the stays never depend on when a file was processed).
     """
     from .staypoints import extract_stays
 
@@ -69,7 +76,7 @@ def fold(vault, policy) -> FoldReport:
         if not buffered:
             return rep
         newest = float(buffered[-1][1]["t"])
-        cutoff = newest - horizon_s
+        cutoff = (newest if now is None else max(newest, float(now))) - horizon_s
         fixes = [dict(obj) for _, obj in buffered]
         stays, leftover = extract_stays(fixes, radius_m, min_minutes)
         left_ids = {id(f) for f in leftover}  # extract_stays returns the open segment's own dicts
@@ -94,3 +101,16 @@ def _stay_payload(s) -> dict:
         return {"t_start": float(s["t_start"]), "t_end": float(s["t_end"]), "lat": float(s["lat"]),
                 "lon": float(s["lon"]), "n": int(s.get("n", 0))}
     return {k: getattr(s, k) for k in ("t_start", "t_end", "lat", "lon", "n")}
+
+
+def prune(vault, policy, now: float | None = None) -> FoldReport:
+    """Fold and drop fixes older than ``gps_buffer_minutes`` before *the clock* (one transaction).
+
+    The agent runs this at start and every ``gps_buffer_minutes / 4`` while
+    watching, so exact coordinates never outlive the buffer because no newer
+    fix arrived.  A dwell still open at the horizon is closed there first.
+    """
+    import time
+
+    with vault.transaction():
+        return fold(vault, policy, now=time.time() if now is None else float(now))

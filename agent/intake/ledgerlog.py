@@ -93,9 +93,15 @@ class LedgerWriter:
         if not force and self.clock() < self.next_try:
             self._persist()
             return False
+        before = self._head_seq()
         try:
             self.ledger.append_many(self.pending)
         except (OSError, LetheError) as e:
+            # The entries may be in while a later step failed (the anchor or checkpoint on a full
+            # disk): drop from the pending list what the ledger's head shows was appended.
+            after = self._head_seq()
+            if before is not None and after is not None and after > before:
+                del self.pending[:after - before]
             self.failures += 1
             self.backoff_s = min(BACKOFF_MAX_S, max(BACKOFF_MIN_S, self.backoff_s * 2))
             self.next_try = self.clock() + self.backoff_s
@@ -107,6 +113,12 @@ class LedgerWriter:
         self.next_try = 0.0
         self._clear()
         return True
+
+    def _head_seq(self) -> int | None:
+        try:
+            return int(self.ledger.head()["seq"])
+        except (OSError, LetheError, ValueError, KeyError, TypeError):
+            return None
 
     def wait_s(self) -> float | None:
         """Seconds until the next retry, or None when nothing is pending."""

@@ -59,6 +59,7 @@ UNFINISHED_REASONS = {
 }
 TAKEN_LIMIT = 2          # the agent died this often while parsing it: destroyed unparsed ("taken_twice")
 DESTROY_SECONDS = 2.0    # bound on the overwrites of one group (the unlinks follow regardless)
+READER_TIMEOUT_MIN_S = 5.0   # a child parsing one file longer than max(this, raw_seconds / 3) is stopped
 
 
 @dataclass
@@ -120,10 +121,18 @@ class Intake:
     workers : int, optional
         Threads used to featurise and overwrite a group of files (default:
         up to 2).  The order of steps per file does not depend on it.
+    isolate : bool
+        Parse in forked children (:mod:`agent.intake.worker`), one per
+        thread, whose death the agent survives: the file is then rejected
+        ``reader_crashed`` (or ``reader_timeout`` after
+        :attr:`reader_timeout_s`).  The agent (``run_agent``, ``lethe run``)
+        always isolates; the library default parses in-process, where a
+        file the process died parsing twice is destroyed unparsed
+        (``taken_twice``, :class:`~agent.intake.ledgerlog.ParseMarks`).
     """
 
     def __init__(self, home, policy, *, vault=None, ledger=None, content_key: bytes | None = None,
-                 now: float | None = None, workers: int | None = None):
+                 now: float | None = None, workers: int | None = None, isolate: bool = False):
         from ..keystore import Keystore
 
         self.home = home if isinstance(home, Home) else Home(home)
@@ -154,8 +163,11 @@ class Intake:
             raise ValueError(f"workers must be a positive number of threads, got {workers!r}")
         self.workers = int(workers)
         self._executor = None
-        # LETHE_TAKEN_LIMIT: for fault-injection tests whose outside kills land on innocent files.
-        self.taken_limit = int(os.environ.get("LETHE_TAKEN_LIMIT", TAKEN_LIMIT))
+        self.reader_timeout_s = max(READER_TIMEOUT_MIN_S, self.raw_seconds / 3.0)
+        self.isolate = bool(isolate) and hasattr(os, "fork")
+        self.gps_buffered = self.vault.count("gps_fixes") > 0   # the watcher prunes them by the clock
+        self._readers_loaded = False
+        self.taken_limit = TAKEN_LIMIT
         self.forced: set[str] = set()   # unfinished names the watcher saw past their window
         self.group_files = 1     # grows while groups are quick (see agent.intake.drain)
         self.log = LedgerWriter(self.home, self.ledger)
@@ -423,7 +435,54 @@ class Intake:
                 w.out.reason = "unknown_format"
                 w.out.detail = ("unrecognised file name suffix; expected .wav .flac .ogg .gpx .nmea .gps.csv "
                                 ".accel.csv .mood.csv or .mood.json")
-        self._each(self._featurise_one, [w for w in todo if not w.final])
+        todo = [w for w in todo if not w.final]
+        if self.isolate and todo:
+            self._featurise_forked(todo)
+        else:
+            self._each(self._featurise_one, todo)
+
+    def prune_gps(self):
+        """Drop buffered GPS fixes older than ``gps_buffer_minutes`` before the clock (the simulated one if set)."""
+        from . import gpsbuffer
+
+        rep = gpsbuffer.prune(self.vault, self.policy, now=self.now)
+        self.gps_buffered = rep.fixes_left > 0
+        if rep.fixes_deleted:
+            log.info("gps_pruned fixes=%d stays_new=%d", rep.fixes_deleted, rep.stays_new)
+        return rep
+
+    def load_readers(self) -> None:
+        """Import and warm up the readers in this process, once (forked children inherit them)."""
+        if not self._readers_loaded:
+            from . import warm_up
+
+            warm_up(self.policy)
+            self._readers_loaded = True
+
+    def _featurise_forked(self, todo) -> None:
+        """Parse in forked children, one per thread; a child's death takes only the file it was parsing."""
+        from .worker import WorkerDied, featurise_forked
+
+        self.load_readers()
+        n = min(self.workers, len(todo))
+        chunks = [todo[i::n] for i in range(n)]
+
+        def run(chunk):
+            t0 = time.perf_counter()
+            answers = featurise_forked([(w.name, w.data) for w in chunk], self.policy, self.now,
+                                       self.reader_timeout_s)
+            for w, ans in zip(chunk, answers, strict=True):
+                w.data = None
+                w.out.featurise_s = (time.perf_counter() - t0) / len(chunk)
+                if isinstance(ans, WorkerDied):
+                    w.out.reason, w.out.detail = ans.reason, ans.detail
+                    log.error("%s item=%s kind=%s", ans.reason, w.out.item[:12], w.out.kind)
+                elif isinstance(ans, RejectedInput):
+                    w.out.reason, w.out.detail = ans.reason, ans.detail
+                else:
+                    w.res = ans
+
+        self._each(run, chunks)
 
     def _featurise_one(self, w) -> None:
         from . import featurise
@@ -486,6 +545,7 @@ class Intake:
                 n += v.put_many(table, [(f"{item}{suffix}", obj) for suffix, obj in rows])
             if "gps_fixes" in res.rows:
                 gpsbuffer.fold(v, self.policy)  # per GPS item, so grouping never changes the stays
+                self.gps_buffered = True
             v.put(ITEMS_TABLE, item, {"kind": res.kind, "t": time.time(), "rows": n})
         return n
 

@@ -66,6 +66,15 @@ class DrainReport:
                    over_limit=sum(1 for x in exp if x is not None and x > raw_seconds),
                    errors=[o.error for o in outcomes if o.error], raw_seconds=raw_seconds, **kw)
 
+    def redacted(self) -> DrainReport:
+        """A copy without file names (for the service's log): rejections and skips as counts only."""
+        from dataclasses import replace
+
+        errors = [f"{len(self.errors)} file(s) rejected (names are shown only when run by hand)"] if self.errors else []
+        skipped = [f"{len(self.skipped)} entr(y/ies) skipped (names are shown only when run by hand)"] \
+            if self.skipped else []
+        return replace(self, errors=errors, skipped=skipped)
+
     def total(self, which: str) -> int:
         return sum(getattr(self, which).values())
 

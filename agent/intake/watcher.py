@@ -26,6 +26,7 @@ retention deadline of a pending file, so an empty inbox costs no CPU.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 import queue
@@ -127,6 +128,9 @@ class InboxWatcher:
         self.maintenance = maintenance
         self.maintenance_every_s = float(maintenance_every_s)
         self.next_maintenance = time.time() + self.maintenance_every_s
+        # Exact GPS fixes are pruned by the clock, not only when a newer fix arrives.
+        self.prune_every_s = max(60.0, float(policy.retention.gps_buffer_minutes) * 60.0 / 4.0)
+        self.next_prune = time.time()
         self.intake = intake
         self.settle_s = float(policy.retention.settle_seconds if settle_s is None else settle_s)
         if self.settle_s < 0:
@@ -189,6 +193,7 @@ class InboxWatcher:
         self.sweep()
         self._process_ready()
         self.recovered = self.intake.reconcile(t0)
+        self._maybe_prune()
         if self.after_sweep is not None:
             self.after_sweep()
         while not self.stop_event.is_set():
@@ -209,7 +214,17 @@ class InboxWatcher:
             self._maybe_maintain()
         return self.report(t0)
 
+    def _maybe_prune(self) -> None:
+        if not self.intake.gps_buffered or time.time() < self.next_prune:
+            return
+        self.next_prune = time.time() + self.prune_every_s
+        try:
+            self.intake.prune_gps()
+        except Exception as e:  # noqa: BLE001 - never let pruning stop intake; logged by class
+            log.warning("gps prune failed: %s", type(e).__name__)
+
     def _maybe_maintain(self) -> None:
+        self._maybe_prune()
         if self.maintenance is None or time.time() < self.next_maintenance:
             return
         self.next_maintenance = time.time() + self.maintenance_every_s
@@ -226,6 +241,8 @@ class InboxWatcher:
     def _next_timeout(self) -> float | None:
         now = time.time()
         soonest = self.next_maintenance if self.maintenance is not None else None
+        if self.intake.gps_buffered:   # an idle agent with no fixes buffered never wakes for this
+            soonest = self.next_prune if soonest is None else min(soonest, self.next_prune)
         if self.pending:
             files = min(self._due(p) for p in self.pending.values())
             soonest = files if soonest is None else min(soonest, files)
@@ -429,8 +446,8 @@ def run_agent(home, policy, once: bool = False, settle_s: float | None = None,
         Simulated clock for the readers (see :class:`~agent.intake.pipeline.Intake`).
     warm : bool
         Watching: call :func:`agent.intake.warm_up` right after the start-up
-        sweep (loads or fills numba's cache before the next file arrives).
-        ``once`` never warms up separately.
+        sweep (the forked reader children then start with everything loaded).
+        ``once`` never warms up separately (the first group does).
     on_ready : callable, optional
         Called with the start-up time in seconds once the agent is ready:
         watching after sweep and warm-up, or (``once``) about to drain.
@@ -461,7 +478,7 @@ def _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_o
                 maintenance_every_s=3600.0):
     from .pipeline import drain
 
-    intake = Intake(h, policy, now=now)
+    intake = Intake(h, policy, now=now, isolate=True)   # readers in forked children the agent survives
     try:
         from .. import __version__
 
@@ -470,12 +487,8 @@ def _run_locked(h, policy, once, settle_s, stop_event, now, warm, on_ready, on_o
         def warm_and_ready():
             # After the start-up sweep, so files already waiting are not held up by it.
             if warm:
-                try:
-                    from . import warm_up
-
-                    warm_up(policy)
-                except (ImportError, AttributeError):
-                    pass
+                with contextlib.suppress(ImportError, AttributeError):
+                    intake.load_readers()   # the forked reader children start with it all loaded
             if on_ready is not None:
                 on_ready(time.time() - t_start)
 

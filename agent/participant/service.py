@@ -76,6 +76,7 @@ Description=lethe on-device study agent (destroys raw drops, keeps coarse codes)
 Type=simple
 ExecStart={exec_start}
 Environment=LETHE_HOME={home_root}
+Environment=LETHE_SERVICE=1
 Environment=NUMBA_CACHE_DIR={home_root}/cache/numba
 Restart=on-failure
 RestartSec=10
@@ -106,6 +107,8 @@ def launchd_plist(home_root: Path, command: list[str]) -> str:
     <dict>
       <key>LETHE_HOME</key>
       <string>{_xml(str(home_root))}</string>
+      <key>LETHE_SERVICE</key>
+      <string>1</string>
       <key>NUMBA_CACHE_DIR</key>
       <string>{_xml(str(home_root))}/cache/numba</string>
     </dict>
@@ -216,3 +219,26 @@ def _run(cmd, check=True):
     if check and r.returncode != 0:
         raise StateError(f"'{shlex.join(cmd)}' failed (exit {r.returncode}): {r.stderr.strip()}")
     return r
+
+
+CAPTURE_MAX_BYTES = 1 << 20
+
+
+def rotate_capture(path, max_bytes: int = CAPTURE_MAX_BYTES) -> bool:
+    """Rotate what the service manager appends to (``logs/service.out``): copy to ``.1``, truncate.
+
+    The manager holds the file open with ``O_APPEND``, so it cannot be renamed
+    away; copy-and-truncate keeps one previous generation.  Returns whether it
+    rotated.  The agent's own messages go to the rotating ``agent.log``.
+    """
+    import shutil
+
+    path = Path(path)
+    try:
+        if path.is_symlink() or path.stat().st_size <= max_bytes:
+            return False
+        shutil.copyfile(path, path.with_name(path.name + ".1"))
+        os.truncate(path, 0)
+    except OSError:
+        return False
+    return True

@@ -1,0 +1,207 @@
+"""Featurisation in forked children whose death the agent survives.
+
+A reader runs on hostile bytes: a native decoder can crash the process, a
+huge allocation can bring the OOM killer, a pathological input can loop.  The
+agent therefore parses each group of files in a *forked child* and reads its
+answers with a deadline per file:
+
+* the child answers ``ok`` (the features), ``rejected`` (a reason code from
+  ``docs/inbox-formats.md``) or ``error`` (a reader bug: its exception class),
+  one answer per file, streamed as each file is done;
+* if the child dies while parsing (a signal, ``os._exit``, the OOM killer,
+  which picks the child: it holds the parse's memory), the file it was
+  parsing -- known exactly from the answers received so far -- is rejected
+  ``reader_crashed`` and destroyed unparsed; the files after it are parsed in
+  a new child;
+* if a file takes longer than the deadline the child is killed and the file is
+  rejected ``reader_timeout``.
+
+Why ``fork``: the child starts with the agent's readers already imported
+(a fresh interpreter would cost the agent a second or more per start, which a
+short-lived agent cannot afford), and nothing of the caller's ``__main__`` is
+run again.  The child closes every inherited descriptor but its answer pipe
+(so it never holds the agent's lock, the inbox or the ledger), arms an alarm
+so it cannot outlive its deadline, touches no lock of the parent, and leaves
+with ``os._exit``.  It answers in **JSON only**, so a child subverted by a
+hostile file cannot make the agent run code by what it sends back.
+
+Frames: 4-byte big-endian length, then a UTF-8 JSON body.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import selectors
+import signal
+import struct
+import time
+
+from ..errors import RejectedInput
+
+_LEN = struct.Struct(">I")
+MAX_ANSWER_BYTES = 256 << 20
+
+
+class WorkerDied(Exception):
+    """The worker process ended while parsing a file (``reason``: ``reader_crashed`` or ``reader_timeout``)."""
+
+    def __init__(self, reason: str, detail: str):
+        self.reason = reason
+        self.detail = detail
+        super().__init__(f"{reason}: {detail}")
+
+
+
+def _plain(o):
+    tolist = getattr(o, "tolist", None)   # numpy scalars and arrays
+    if tolist is not None:
+        return tolist()
+    raise TypeError(f"{type(o).__name__} is not a plain JSON type")
+
+
+def _read(fd: int, n: int, deadline: float) -> bytes:
+    """Exactly ``n`` bytes from a pipe before ``deadline`` (monotonic); TimeoutError / EOFError otherwise."""
+    buf = bytearray()
+    with selectors.DefaultSelector() as sel:
+        sel.register(fd, selectors.EVENT_READ)
+        while len(buf) < n:
+            left = deadline - time.monotonic()
+            if left <= 0 or not sel.select(left):
+                raise TimeoutError
+            chunk = os.read(fd, n - len(buf))
+            if not chunk:
+                raise EOFError
+            buf += chunk
+    return bytes(buf)
+
+
+def _how(code: int | None) -> str:
+    if code is None:
+        return "exit status unknown"
+    if code < 0:
+        try:
+            return f"killed by {signal.Signals(-code).name}"
+        except ValueError:
+            return f"killed by signal {-code}"
+    return f"exit status {code}"
+
+
+# -- forked readers (what the agent uses) ---------------------------------------------------
+def featurise_forked(jobs, policy, now: float | None, timeout_s: float) -> list:
+    """Featurise ``[(name, data), ...]`` in a forked child; one answer per job, in order.
+
+    Each answer is an :class:`~agent.intake.item.ItemResult`, a
+    :class:`~agent.errors.RejectedInput` (the reader's reason, or
+    ``reader_error``) or a :class:`WorkerDied` (``reader_crashed`` /
+    ``reader_timeout``).  The child parses the jobs one after another and
+    streams each answer as soon as it has it (JSON only), so when it dies the
+    file it was parsing is known exactly: that file alone gets ``WorkerDied``
+    and the jobs after it are parsed in a new child.  The caller should have
+    imported the readers already (:func:`agent.intake.warm_up`) so the child
+    starts with them loaded.
+    """
+    jobs = list(jobs)
+    answers: list = []
+    while len(answers) < len(jobs):
+        answers += _one_child(jobs[len(answers):], policy, now, timeout_s)
+    return answers
+
+
+def _one_child(jobs, policy, now, timeout_s) -> list:
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:   # the child: parse, answer, and leave without running any of the parent's clean-up
+        code = 0
+        try:
+            os.closerange(3, w)
+            os.closerange(w + 1, _max_fd())
+            signal.signal(signal.SIGALRM, signal.SIG_DFL)
+            signal.alarm(int(timeout_s * len(jobs)) + 1)   # never outlives its deadline, even if orphaned
+            from . import featurise
+
+            for name, data in jobs:
+                try:
+                    res = featurise(name, data, policy, now=now)
+                    ans = {"status": "ok", "kind": res.kind, "rows": res.rows, "warnings": list(res.warnings),
+                           "n_samples": int(res.n_samples), "dropped": dict(res.dropped),
+                           "t_start": res.t_start, "t_end": res.t_end}
+                except RejectedInput as e:
+                    ans = {"status": "rejected", "reason": e.reason, "detail": e.detail}
+                except Exception as e:  # noqa: BLE001 - a reader bug is reported by its class
+                    ans = {"status": "error", "error": type(e).__name__}
+                body = json.dumps(ans, default=_plain).encode("utf-8")
+                view = memoryview(_LEN.pack(len(body)) + body)
+                while view:
+                    view = view[os.write(w, view):]
+        except BaseException:  # noqa: BLE001 - whatever happens, the child must not return into the agent
+            code = 70
+        finally:
+            os._exit(code)
+    os.close(w)
+    out: list = []
+    status = None
+    try:
+        deadline = time.monotonic() + timeout_s
+        for name, _ in jobs:
+            try:
+                (n,) = _LEN.unpack(_read(r, 4, deadline))
+                if n > MAX_ANSWER_BYTES:
+                    raise EOFError
+                out.append(_decode(name, _read(r, n, deadline)))
+                deadline = time.monotonic() + timeout_s   # each file has its own time
+            except TimeoutError:
+                os.kill(pid, signal.SIGKILL)
+                out.append(WorkerDied("reader_timeout", f"parsing took longer than {timeout_s:g} s; "
+                                                        f"the reader process was stopped"))
+                break
+            except (EOFError, OSError, ValueError, KeyError, TypeError):
+                status = _reap_pid(pid)
+                out.append(WorkerDied("reader_crashed", f"the reader process ended while parsing "
+                                                        f"({_how(_exit_code(status))})"))
+                break
+    finally:
+        os.close(r)
+        if status is None:
+            _reap_pid(pid)
+    return out
+
+
+def _decode(name: str, body: bytes):
+    from .item import ItemResult
+
+    ans = json.loads(body)
+    status = ans["status"]
+    if status == "rejected":
+        return RejectedInput(name, str(ans.get("reason", "reader_error")), str(ans.get("detail", "")))
+    if status == "error":
+        return RejectedInput(name, "reader_error", f"{ans.get('error', 'Exception')} in the reader")
+    if status != "ok":
+        raise ValueError(status)
+    rows = {str(t): [(str(s), p) for s, p in rs] for t, rs in ans["rows"].items()}
+    return ItemResult(kind=str(ans["kind"]), rows=rows, warnings=[str(w) for w in ans.get("warnings", [])],
+                      n_samples=int(ans.get("n_samples", 0)), dropped=dict(ans.get("dropped", {})),
+                      t_start=ans.get("t_start"), t_end=ans.get("t_end"))
+
+
+def _reap_pid(pid: int) -> int:
+    while True:
+        try:
+            return os.waitpid(pid, 0)[1]
+        except InterruptedError:
+            continue
+        except ChildProcessError:
+            return 0
+
+
+def _exit_code(status: int) -> int:
+    return os.waitstatus_to_exitcode(status)
+
+
+
+def _max_fd() -> int:
+    try:
+        return int(os.sysconf("SC_OPEN_MAX"))
+    except (ValueError, OSError):
+        return 4096
+
