@@ -30,7 +30,7 @@ from datetime import date, datetime, timezone, tzinfo
 from typing import Iterable, Mapping, Sequence
 from zoneinfo import ZoneInfo
 
-from .graph import _label_key
+from .graph import label_key
 
 GRID_S = 900  # 15 minutes
 
@@ -72,7 +72,7 @@ def _mode(labels: Iterable[str]):
     if not c:
         return None
     # most frequent; ties go to the natural-order first label (deterministic)
-    return min(c.items(), key=lambda kv: (-kv[1], _label_key(kv[0])))[0]
+    return min(c.items(), key=lambda kv: (-kv[1], label_key(kv[0])))[0]
 
 
 class _Intervals:
@@ -183,7 +183,7 @@ def episodes_from_codes(coded: Sequence[Mapping], moods: Sequence[Mapping], *, t
             continue
         place = None
         if place_s:
-            place = min(place_s.items(), key=lambda kv: (-kv[1], _label_key(kv[0])))[0]
+            place = min(place_s.items(), key=lambda kv: (-kv[1], label_key(kv[0])))[0]
         moods_present = []
         if prompt is not None:
             ratings = prompt.get("ratings") or {}

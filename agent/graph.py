@@ -41,7 +41,7 @@ TIME_KINDS = ("hour", "weekday", "week")
 DEFAULT_CAP_RULE = "strongest"
 
 
-def _label_key(label: str):
+def label_key(label: str):
     """Natural order: numbers numerically, ``P2`` before ``P10``."""
     parts = re.split(r"(\d+)", label)
     return tuple((0, int(p), "") if p.isdigit() else (1, 0, p) for p in parts if p != "")
@@ -171,7 +171,7 @@ class CooccurrenceGraph:
         per_episode = [episode_nodes(e, kinds) for e in eps]
         kind_rank = {k: r for r, k in enumerate(kinds)}
         node_set = {n for ns in per_episode for n in ns}
-        nodes = sorted(node_set, key=lambda n: (kind_rank[n[0]], _label_key(n[1])))
+        nodes = sorted(node_set, key=lambda n: (kind_rank[n[0]], label_key(n[1])))
         index = {n: i for i, n in enumerate(nodes)}
         n_nodes, n_eps = len(nodes), len(eps)
 

@@ -68,7 +68,7 @@ def networkx_reference(episodes, cap: int):
     """Counts and the arrival-rule cap edge by edge on networkx graphs, spectra by eigvalsh."""
     import networkx as nx
 
-    from agent.graph import _label_key
+    from agent.graph import label_key
     from agent.policy import NODE_KINDS
 
     rank = {k: i for i, k in enumerate(NODE_KINDS)}
@@ -81,7 +81,7 @@ def networkx_reference(episodes, cap: int):
                 G[a][b]["weight"] += 1
             else:
                 G.add_edge(a, b, weight=1)
-    order = sorted(G.nodes, key=lambda n: (rank[n[0]], _label_key(n[1])))
+    order = sorted(G.nodes, key=lambda n: (rank[n[0]], label_key(n[1])))
     index = {n: i for i, n in enumerate(order)}
     H = nx.Graph()
     H.add_nodes_from(order)

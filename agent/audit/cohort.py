@@ -30,7 +30,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import DataError
-from .report import cautions_html, esc, fmt_s, page, table, _figure, _save, _styled, _empty
+from ..plots import empty, figure, save, styled
+from .report import cautions_html, esc, fmt_s, page, table
 
 CHECK_SHORT = {"violations": "no violations", "max_exposure": "within limit", "head": "head monotone",
                "approved": "approved", "enrolled_policy": "enrolled policy"}
@@ -146,11 +147,11 @@ def cohort_view(study_dir, policies=None) -> list[Participant]:
     return out
 
 
-@_styled
+@styled
 def plot_cohort_exposure(parts: list[Participant], limits: dict, path: Path) -> None:
     import numpy as np
 
-    fig = _figure(max(6.4, 0.6 * len(parts) + 2), 3.8)
+    fig = figure(max(6.4, 0.6 * len(parts) + 2), 3.8)
     ax = fig.add_subplot()
     if parts:
         x = np.arange(len(parts))
@@ -169,16 +170,16 @@ def plot_cohort_exposure(parts: list[Participant], limits: dict, path: Path) -> 
         ax.set_ylim(0, top * 1.4)
         ax.legend(loc="upper left", ncol=4, fontsize=9)
     else:
-        _empty(ax, "no participants")
+        empty(ax, "no participants")
     ax.set_title("Raw exposure per participant (latest digest)")
-    _save(fig, path)
+    save(fig, path)
 
 
-@_styled
+@styled
 def plot_cohort_items(parts: list[Participant], path: Path) -> None:
     import numpy as np
 
-    fig = _figure(max(6.4, 0.6 * len(parts) + 2), 3.8)
+    fig = figure(max(6.4, 0.6 * len(parts) + 2), 3.8)
     ax = fig.add_subplot()
     if parts:
         x = np.arange(len(parts))
@@ -192,9 +193,9 @@ def plot_cohort_items(parts: list[Participant], path: Path) -> None:
         ax.set_ylim(0, top * 1.3)
         ax.legend(loc="upper left", ncol=3)
     else:
-        _empty(ax, "no participants")
+        empty(ax, "no participants")
     ax.set_title("Raw items per participant (latest digest)")
-    _save(fig, path)
+    save(fig, path)
 
 
 def write_cohort_report(study_dir, out_dir, policies=None) -> Path:

@@ -23,6 +23,7 @@ import time
 from pathlib import Path
 
 from ..home import Home
+from ..plots import empty, figure, integer_ticks, save, styled
 from ..policy_summary import CAUTIONS, summarise
 
 KIND_COLOURS = {"audio": "#1f77b4", "gps": "#2ca02c", "accel": "#ff7f0e", "mood": "#9467bd",
@@ -85,59 +86,12 @@ def table(header: list[str], rows: list[list], num_cols=(), cls: str = "") -> st
 
 
 # -- plots -----------------------------------------------------------------------
-
-PLOT_STYLE = {"font.size": 11, "axes.titlesize": 14, "axes.titleweight": "bold", "axes.labelsize": 12,
-              "xtick.labelsize": 10, "ytick.labelsize": 10, "legend.fontsize": 10,
-              "axes.spines.top": False, "axes.spines.right": False}
-
-
-def _styled(plot):
-    """Run a plot function under the report's style without touching global rcParams."""
-    import functools
-
-    @functools.wraps(plot)
-    def wrapper(*args, **kwargs):
-        import matplotlib
-
-        with matplotlib.rc_context(PLOT_STYLE):
-            return plot(*args, **kwargs)
-
-    return wrapper
-
-
-def _figure(w=6.4, h=3.8):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(w, h), dpi=110)
-    FigureCanvasAgg(fig)
-    return fig
-
-
-def _save(fig, path: Path) -> None:
-    fig.tight_layout()
-    # Fixed metadata so the same ledger gives the same bytes.
-    fig.savefig(path, format="png", metadata={"Software": None})
-
-
-def _integer_ticks(axis) -> None:
-    from matplotlib.ticker import MaxNLocator
-
-    axis.set_major_locator(MaxNLocator(integer=True))
-
-
-def _empty(ax, text):
-    ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes, fontsize=12, color="#555")
-    ax.set_xticks([])
-    ax.set_yticks([])
-
-
-@_styled
+@styled
 def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> None:
     """Histogram of raw exposure in seconds with the limit as a red line."""
     import numpy as np
 
-    fig = _figure()
+    fig = figure()
     ax = fig.add_subplot()
     xs = np.asarray(list(exposures), float)
     if xs.size:
@@ -160,23 +114,23 @@ def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> 
                        label=f"95th percentile {stats['p95']:.2f} s")
         ax.set_xlabel("seconds from file complete to destroyed")
         ax.set_ylabel("raw files")
-        _integer_ticks(ax.yaxis)
+        integer_ticks(ax.yaxis)
     else:
-        _empty(ax, "no destroyed raw files recorded")
+        empty(ax, "no destroyed raw files recorded")
     if limit_s is not None:
         ax.axvline(limit_s, color="#c62828", linewidth=2.5, label=f"policy limit {limit_s:g} s")
     if xs.size or limit_s is not None:
         ax.legend(loc="upper right")
     ax.set_title("Raw exposure")
-    _save(fig, path)
+    save(fig, path)
 
 
-@_styled
+@styled
 def plot_items_per_day(daily: dict, path: Path) -> None:
     """Grouped bars: raw items received per kind per UTC day."""
     import numpy as np
 
-    fig = _figure(6.4 if len(daily) <= 16 else 9.0, 3.6)
+    fig = figure(6.4 if len(daily) <= 16 else 9.0, 3.6)
     ax = fig.add_subplot()
     days = sorted(daily)
     kinds = [k for k in KIND_COLOURS if any(k in daily[d] for d in days)]
@@ -190,17 +144,17 @@ def plot_items_per_day(daily: dict, path: Path) -> None:
         ax.set_xticks(x[::step], [d[5:] for d in days][::step])
         ax.set_xlabel("day (UTC, month-day)")
         ax.set_ylabel("raw items received")
-        _integer_ticks(ax.yaxis)
+        integer_ticks(ax.yaxis)
         ax.legend(ncol=len(kinds), loc="upper left")
     else:
-        _empty(ax, "no raw items recorded")
+        empty(ax, "no raw items recorded")
     ax.set_title("Raw items per kind per day")
-    _save(fig, path)
+    save(fig, path)
 
 
-@_styled
+@styled
 def plot_rejections(rejections: dict, path: Path) -> None:
-    fig = _figure(6.4, max(2.4, 0.45 * len(rejections) + 1.4))
+    fig = figure(6.4, max(2.4, 0.45 * len(rejections) + 1.4))
     ax = fig.add_subplot()
     if rejections:
         items = sorted(rejections.items(), key=lambda kv: (kv[1], kv[0]))
@@ -208,31 +162,31 @@ def plot_rejections(rejections: dict, path: Path) -> None:
         for i, (_, v) in enumerate(items):
             ax.text(v, i, f" {v}", va="center", fontsize=9)
         ax.set_xlabel("rejected raw files")
-        _integer_ticks(ax.xaxis)
+        integer_ticks(ax.xaxis)
     else:
-        _empty(ax, "no rejected raw files")
+        empty(ax, "no rejected raw files")
     ax.set_title("Rejections by reason")
-    _save(fig, path)
+    save(fig, path)
 
 
-@_styled
+@styled
 def plot_exports(exports: list, path: Path) -> None:
     import datetime as dt
 
-    fig = _figure()
+    fig = figure()
     ax = fig.add_subplot()
     if exports:
         ts = [dt.datetime.fromtimestamp(e["t"], dt.timezone.utc) for e in exports]
         ax.step(ts, range(1, len(ts) + 1), where="post", color="#4c78a8")
         ax.plot(ts, range(1, len(ts) + 1), "o", color="#4c78a8")
         ax.set_ylabel("exports so far")
-        _integer_ticks(ax.yaxis)
+        integer_ticks(ax.yaxis)
         ax.set_ylim(0, len(ts) + 0.5)
         fig.autofmt_xdate()
     else:
-        _empty(ax, "no exports recorded")
+        empty(ax, "no exports recorded")
     ax.set_title("Exports over time")
-    _save(fig, path)
+    save(fig, path)
 
 
 # -- page parts ----------------------------------------------------------------

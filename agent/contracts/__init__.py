@@ -35,6 +35,7 @@ from collections.abc import Callable, Iterator
 from contextlib import suppress
 from functools import cache
 from importlib import resources
+from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
@@ -43,7 +44,8 @@ from jsonschema.exceptions import ValidationError
 
 from ..errors import DataError
 
-__all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "iter_problems", "schema", "validate"]
+__all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "check_header", "iter_problems", "read_json", "schema",
+           "validate"]
 
 SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload", "scenario")
 
@@ -57,6 +59,45 @@ class ContractError(DataError):
         self.key = key
         self.reason = message
         super().__init__(f"{self.source}: [{key}] {message}")
+
+
+# -- reading documents -------------------------------------------------------------------
+def read_json(path, what: str, *, max_bytes: int = 1 << 20) -> Any:
+    """Parse a JSON document file; every failure is a :class:`DataError` naming the file.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+    what : str
+        What the document is, for messages ("study card", "enrolment").
+    max_bytes : int
+        Larger files are refused before parsing.
+    """
+    p = Path(path)
+    try:
+        data = p.read_bytes()
+    except FileNotFoundError:
+        raise DataError(f"{p}: no such {what} file") from None
+    except OSError as e:
+        raise DataError(f"{p}: cannot read the {what}: {e.strerror}") from None
+    if len(data) > max_bytes:
+        raise DataError(f"{p}: too large for a {what} ({len(data)} bytes)")
+    try:
+        return json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError) as e:
+        raise DataError(f"{p}: not a JSON {what} ({e})") from None
+
+
+def check_header(doc, fmt: str, version: int, source, what: str) -> None:
+    """Object, ``format`` and ``version`` first, so that a future document is refused as such."""
+    if not isinstance(doc, dict):
+        raise DataError(f"{source}: expected a JSON object ({what})")
+    if doc.get("format") != fmt:
+        raise DataError(f"{source}: [format] expected {fmt!r}, got {doc.get('format')!r}")
+    if doc.get("version") != version:
+        raise DataError(f"{source}: [version] {what} version {doc.get('version')!r} is not supported; "
+                        f"this lethe reads version {version}")
 
 
 # -- schemas -----------------------------------------------------------------------------

@@ -66,7 +66,7 @@ class Chance:
         return {}
 
 
-def _fit_tau(scores, design: TrialDesign) -> float:
+def fit_tau(scores, design: TrialDesign) -> float:
     ans = design.choice_pos >= 0
     if not ans.any():
         return 1.0
@@ -80,7 +80,7 @@ def _fit_tau(scores, design: TrialDesign) -> float:
     return float(np.exp(res.x))
 
 
-class _ScoreBaseline:
+class ScoreBaseline:
     """A fixed score per option and a fitted temperature."""
 
     n_params = 1
@@ -92,7 +92,7 @@ class _ScoreBaseline:
         raise NotImplementedError
 
     def fit(self, design: TrialDesign, rng=None):
-        self.tau = _fit_tau(self.scores(design), design)
+        self.tau = fit_tau(self.scores(design), design)
         return self
 
     def log_probabilities(self, design: TrialDesign) -> np.ndarray:
@@ -102,7 +102,7 @@ class _ScoreBaseline:
         return {"tau": self.tau}
 
 
-class Frequency(_ScoreBaseline):
+class Frequency(ScoreBaseline):
     name = "frequency"
 
     def __init__(self, graph: ModelGraph, episodes=None):
@@ -144,7 +144,7 @@ class Frequency(_ScoreBaseline):
         return np.log1p(out)
 
 
-class Centrality(_ScoreBaseline):
+class Centrality(ScoreBaseline):
     name = "centrality"
 
     def __init__(self, graph: ModelGraph):

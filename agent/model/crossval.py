@@ -66,8 +66,8 @@ def metrics(logp, design: TrialDesign, rng, rows=None) -> dict:
     return {
         "n": int(n),
         "n_days": int(len(np.unique(dates))),
-        "agreement": _prop(agree.sum(), n),
-        "accuracy": _prop(acc.sum(), n),
+        "agreement": proportion(agree.sum(), n),
+        "accuracy": proportion(acc.sum(), n),
         "loglik": {"value": float(ll.mean()) if n else float("nan"),
                    "ci": list(bootstrap_mean_by_day(ll, dates, n_boot=N_BOOT, rng=rng)[1:]) if n
                    else [float("nan")] * 2},
@@ -75,7 +75,8 @@ def metrics(logp, design: TrialDesign, rng, rows=None) -> dict:
     }
 
 
-def _prop(k, n) -> dict:
+def proportion(k, n) -> dict:
+    """``{"value", "k", "ci"}``: the proportion k / n with its 95 % Wilson interval."""
     return {"value": float(k / n) if n else float("nan"), "k": float(k),
             "ci": list(wilson_interval(float(k), int(n)))}
 

@@ -199,7 +199,7 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
     rows = np.flatnonzero(design.answered)
     ans = design.answered
     pa = (design.choice_pos[ans] == design.correct_pos[ans]).sum()
-    from .crossval import _prop
+    from .crossval import proportion
 
     return FitResult(
         params=params,
@@ -212,7 +212,7 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
              "seconds_fits": round(t_full, 3), "seconds_recovery": round(t_rec, 3), "seconds_total": round(time.perf_counter() - t0, 3),
              "n_nodes": mg.n, "components": int(n_comp), "type_pairs": [f"{a}|{b}" for a, b in mg.type_pairs]},
         chance_level=chance_metrics(design, rows),
-        participant_accuracy=_prop(pa, n_ans),
+        participant_accuracy=proportion(pa, n_ans),
         notes=notes,
     )
 

@@ -41,7 +41,7 @@ from collections import Counter
 import numpy as np
 from scipy.optimize import minimize_scalar
 
-from .baselines import Centrality, Chance, EigenModel, Frequency, _fit_tau, _ScoreBaseline
+from .baselines import Centrality, Chance, EigenModel, Frequency, fit_tau, ScoreBaseline
 from .choice import log_probabilities
 from .design import PLACE, ModelGraph, TrialDesign
 from .likelihood import ModelSpec
@@ -95,7 +95,7 @@ class EpisodeTable:
         return np.array(out)
 
 
-class MostVisited(_ScoreBaseline):
+class MostVisited(ScoreBaseline):
     """The place visited most often, the probed episode left out (no time information)."""
 
     name = "most_visited"
@@ -217,13 +217,13 @@ class ACTR:
 
         def nll(log_d):
             s = self.scores_at(design, float(np.exp(log_d)))
-            tau = _fit_tau(s, design)
+            tau = fit_tau(s, design)
             lp = log_probabilities(s[ans], mask, tau)
             return -lp[np.arange(len(pos)), pos].sum()
 
         res = minimize_scalar(nll, bounds=LOG_D_BOUNDS, method="bounded", options={"xatol": 1e-3})
         self.d = float(np.exp(res.x))
-        self.tau = _fit_tau(self.scores_at(design, self.d), design)
+        self.tau = fit_tau(self.scores_at(design, self.d), design)
         return self
 
     def log_probabilities(self, design: TrialDesign) -> np.ndarray:

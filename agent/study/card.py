@@ -73,33 +73,6 @@ class StudyCard:
         }
 
 
-def _check_header(doc, fmt: str, version: int, source, what: str) -> None:
-    """Object, format and version first, so that a future document is refused as such."""
-    if not isinstance(doc, dict):
-        raise DataError(f"{source}: expected a JSON object ({what})")
-    if doc.get("format") != fmt:
-        raise DataError(f"{source}: [format] expected {fmt!r}, got {doc.get('format')!r}")
-    if doc.get("version") != version:
-        raise DataError(f"{source}: [version] {what} version {doc.get('version')!r} is not supported; "
-                        f"this lethe reads version {version}")
-
-
-def _read_json(path, what: str) -> dict:
-    p = Path(path)
-    try:
-        data = p.read_bytes()
-    except FileNotFoundError:
-        raise DataError(f"{p}: no such {what} file") from None
-    except OSError as e:
-        raise DataError(f"{p}: cannot read the {what}: {e.strerror}") from None
-    if len(data) > 1 << 20:
-        raise DataError(f"{p}: too large for a {what} ({len(data)} bytes)")
-    try:
-        return json.loads(data.decode("utf-8"))
-    except (UnicodeDecodeError, ValueError) as e:
-        raise DataError(f"{p}: not a JSON {what} ({e})") from None
-
-
 # -- study card --------------------------------------------------------------
 
 def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
@@ -111,7 +84,7 @@ def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
     suite's algorithms, the key length and the key fingerprint.
     """
     version = doc.get("version") if isinstance(doc, dict) else None
-    _check_header(doc, CARD_FORMAT, CARD_VERSION_SERVER if version == CARD_VERSION_SERVER else CARD_VERSION,
+    contracts.check_header(doc, CARD_FORMAT, CARD_VERSION_SERVER if version == CARD_VERSION_SERVER else CARD_VERSION,
                   source, "study card")
     contracts.validate("study-card", doc, source)
     suite = doc["suite"]
@@ -134,7 +107,7 @@ def card_from_dict(doc: dict, source="<memory>") -> StudyCard:
 
 def load_card(path) -> StudyCard:
     """Read and strictly validate a study card file."""
-    return card_from_dict(_read_json(path, "study card"), source=str(path))
+    return card_from_dict(contracts.read_json(path, "study card"), source=str(path))
 
 
 def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.date | None = None,
@@ -255,12 +228,12 @@ def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, 
 
 
 def write_enrolment(home, card: StudyCard, policy, pseudonym: str, out_path, *,
-                    device_private_key=None, log_origin: str | None = None) -> Path:
-    """Write the enrolment file for ``home``'s device key to ``out_path`` (atomic, 0600)."""
-    if device_private_key is None:
-        from ..keystore import Keystore
+                    device_private_key, log_origin: str | None = None) -> Path:
+    """Write the enrolment file signed with ``device_private_key`` to ``out_path`` (atomic, 0600).
 
-        device_private_key = Keystore(home).device_key()
+    ``home`` is not read: the device side (``agent.participant.enrol``) passes its
+    own key, so the researcher package needs nothing of the device's keystore.
+    """
     doc = make_enrolment(card, policy, pseudonym, device_private_key, log_origin=log_origin)
     out = Path(out_path)
     write_private(out, (json.dumps(doc, indent=2, sort_keys=True) + "\n").encode())
@@ -276,7 +249,7 @@ def verify_enrolment(doc: dict, source="<memory>") -> dict:
     from cryptography.exceptions import InvalidSignature
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
-    _check_header(doc, ENROLMENT_FORMAT, ENROLMENT_VERSION, source, "enrolment")
+    contracts.check_header(doc, ENROLMENT_FORMAT, ENROLMENT_VERSION, source, "enrolment")
     contracts.validate("enrolment", doc, source)
     pub = b64d(doc["device_public_key"], what="device_public_key", source=source)
     if len(pub) != 32:
@@ -295,4 +268,4 @@ def verify_enrolment(doc: dict, source="<memory>") -> dict:
 
 
 def load_enrolment(path) -> dict:
-    return verify_enrolment(_read_json(path, "enrolment"), source=str(path))
+    return verify_enrolment(contracts.read_json(path, "enrolment"), source=str(path))

@@ -30,7 +30,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import EXIT_DATA, DataError, LetheError, StateError
-from ..home import fsync_dir
+from ..fsutil import fsync_dir
 
 
 @dataclass

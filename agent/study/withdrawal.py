@@ -24,7 +24,6 @@ from ..errors import DataError, IntegrityError, StateError
 from ..fsutil import write_private
 from ..canonical import dumps as canonical_json
 from ..identity import device_key_id
-from .card import _check_header, _read_json
 from .keys import b64d, b64e
 
 WITHDRAWAL_FORMAT = "lethe-withdrawal"
@@ -95,7 +94,7 @@ def verify_withdrawal_signature(cert: dict, public_key=None, source="<memory>") 
     from cryptography.hazmat.primitives import serialization
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
-    _check_header(cert, WITHDRAWAL_FORMAT, WITHDRAWAL_VERSION, source, "withdrawal certificate")
+    contracts.check_header(cert, WITHDRAWAL_FORMAT, WITHDRAWAL_VERSION, source, "withdrawal certificate")
     contracts.validate("withdrawal", cert, source)
     pub = b64d(cert["device_public_key"], what="device_public_key", source=source)
     if len(pub) != 32 or device_key_id(pub) != cert["device_key_id"]:
@@ -141,7 +140,7 @@ def verify_withdrawal(cert: dict, registry, source="<memory>") -> WithdrawalChec
 
 
 def load_withdrawal(path) -> dict:
-    return _read_json(path, "withdrawal certificate")
+    return contracts.read_json(path, "withdrawal certificate")
 
 
 def register_withdrawal(study_dir, cert_path) -> WithdrawalCheck:

@@ -15,7 +15,7 @@ import csv
 import os
 from pathlib import Path
 
-from ...home import fsync_dir
+from ...fsutil import fsync_dir
 from .source import as_source
 
 K = ("pseudonym", "seq", "latest")

@@ -179,14 +179,14 @@ def create_app(study_dir, ctx: StudyContext, settings: ServerSettings) -> Starle
         return JSONResponse({"api": "lethe-study", "version": API_VERSION, "study_id": ctx.study_id})
 
     async def post_bundle(request: Request) -> Response:
-        from .intake import _claimed
+        from .intake import claimed_sender
 
         ctype = request.headers.get("content-type", "")
         if ctype.split(";")[0].strip() != "application/octet-stream":
             return error(415, "unsupported_media_type", "bundle upload: Content-Type must be "
                                                         "application/octet-stream")
         return await guarded(request, "bundle", settings.max_bundle_bytes,
-                             lambda b: _claimed(b)[0] or hashlib.sha256(b).hexdigest()[:16],
+                             lambda b: claimed_sender(b)[0] or hashlib.sha256(b).hexdigest()[:16],
                              lambda b, s: accept_bundle(ctx, b, s))
 
     def _json_key(field_path):

@@ -81,7 +81,7 @@ def log_continuity(previous: dict | None, current: dict, origin: str | None) -> 
     return verify_log_continuity(prev, cur, origin=origin)
 
 
-def _claimed(data: bytes) -> tuple[str | None, int | None]:
+def claimed_sender(data: bytes) -> tuple[str | None, int | None]:
     """The device key id and sequence number the (not yet authenticated) header names."""
     from ...bundle import split_bundle
     from ..bounded import loads_bounded
@@ -105,7 +105,7 @@ def accept_bundle(ctx: StudyContext, data: bytes, source: str) -> tuple[int, dic
     have = ctx.store.bundle_by_sha(sha)
     if have is not None:
         return 200, {"status": "already have", **have, "sha256": sha}
-    kid, seq = _claimed(data)
+    kid, seq = claimed_sender(data)
     dev = ctx.store.device_by_key_id(kid, seq) if kid else None
     try:
         opened = read_bundle(data, registry=OneDeviceRegistry(ctx.study_id, dev), study_key=ctx.study_key,

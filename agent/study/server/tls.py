@@ -14,7 +14,7 @@ import ipaddress
 from pathlib import Path
 
 from ...errors import DataError
-from ...home import write_private
+from ...fsutil import write_private
 
 
 def tls_dir(study_dir) -> Path:
