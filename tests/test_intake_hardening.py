@@ -40,14 +40,14 @@ def _start(h):
 
 # -- finding 2: sparse files ------------------------------------------------------------
 def test_sparse_file_is_overwritten_only_where_it_holds_data(hp):
-    """A 64 GiB sparse .wav: rejected too_large and destroyed, with at most its allocated blocks written."""
+    """A 1 GiB sparse .wav: rejected too_large and destroyed, with at most its allocated blocks written."""
     from agent.intake.pipeline import Intake
 
     h, policy = hp
     p = h.inbox / "huge.wav"
     with open(p, "wb") as f:
-        f.truncate(64 << 30)
-        f.seek(32 << 30)
+        f.truncate(1 << 30)
+        f.seek(1 << 29)
         f.write(b"\x7f" * 8192)
     allocated = os.stat(p).st_blocks * 512
     if allocated > 1 << 20:
@@ -57,7 +57,7 @@ def test_sparse_file_is_overwritten_only_where_it_holds_data(hp):
         outs = it.process_many(["huge.wav"])
     assert [o.reason for o in outs] == ["too_large"]
     assert outs[0].removed and not p.exists()
-    assert outs[0].overwritten_bytes <= allocated   # never the apparent 64 GiB
+    assert outs[0].overwritten_bytes <= allocated   # never the apparent 1 GiB
 
 
 # -- finding 7: subfolders, .part and hidden files ----------------------------------------

@@ -126,36 +126,6 @@ class LedgerWriter:
             return None
         return max(0.0, self.next_try - self.clock())
 
-    # -- reading ---------------------------------------------------------------
-    def taken_counts(self) -> dict[str, int]:
-        """``{item: times received since its last outcome}`` for items still without one.
-
-        An outcome is ``featurised``, ``rejected`` or ``destroyed``.  Pending
-        ``received`` entries (not yet in the ledger) count too.  An unreadable
-        ledger gives what could be read and raises the alarm.
-        """
-        counts: dict[str, int] = {}
-        try:
-            for e in self.ledger.entries():
-                item = e.get("item")
-                if item is None:
-                    continue
-                if e.get("event") == "received":
-                    counts[item] = counts.get(item, 0) + 1
-                elif e.get("event") in ("featurised", "rejected", "destroyed"):
-                    counts.pop(item, None)
-        except (OSError, LetheError, ValueError) as e:
-            self.alarm("ledger_unreadable", e)
-        for event, fields in self.pending:
-            item = fields.get("item")
-            if item is None:
-                continue
-            if event == "received":
-                counts[item] = counts.get(item, 0) + 1
-            elif event in ("featurised", "rejected", "destroyed"):
-                counts.pop(item, None)
-        return counts
-
     # -- the alarm ---------------------------------------------------------------
     def alarm(self, reason: str, error: BaseException) -> None:
         """Raise (log and record) an integrity alarm; logged once per reason until cleared."""
