@@ -331,7 +331,7 @@ def nll_and_grad(spec: ModelSpec, cache: ActivationCache, p):
     n = g.n
     u_ext = solver.u_ext
     u_opt = u_ext[d.opt_idx]  # (T, m, n)
-    a = np.einsum("tmn,tn->tm", u_opt, st.coef)  # scores are scale-free: v itself will do
+    a = np.matmul(u_opt, st.coef[:, :, None])[:, :, 0]  # scores are scale-free: v itself will do
     mask = d.opt_mask
     score, den, _ = ratio_scores(a, mask)
     lp = log_probabilities(score, mask, tau)
