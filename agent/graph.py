@@ -38,7 +38,7 @@ from .caps import CAP_RULES, EDGE_WEIGHTS, greedy_degree_cap  # noqa: F401  (re-
 from .policy import NODE_KINDS
 
 TIME_KINDS = ("hour", "weekday", "week")
-DEFAULT_CAP_RULE = "strongest"
+DEFAULT_CAP_RULE = "bmatching"
 
 
 def label_key(label: str):

@@ -14,7 +14,7 @@ likelihood work on all trials at once.
 
 from __future__ import annotations
 
-from typing import Mapping, Sequence
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 import scipy.sparse as sp
@@ -83,14 +83,14 @@ class ModelGraph:
         self.edge_cols = upper.col.astype(np.int64)
         self.edge_vals = upper.data.astype(np.float64)
         pairs = [tuple(sorted((kinds[i], kinds[j])))
-                 for i, j in zip(self.edge_rows.tolist(), self.edge_cols.tolist())]
+                 for i, j in zip(self.edge_rows.tolist(), self.edge_cols.tolist(), strict=False)]
         self.type_pairs: list[tuple[str, str]] = sorted(set(pairs))
         pid = {p: k for k, p in enumerate(self.type_pairs)}
         self.edge_pair = np.array([pid[p] for p in pairs], dtype=np.int64)
 
     # -- construction ----------------------------------------------------
     @classmethod
-    def from_graph(cls, g) -> "ModelGraph":
+    def from_graph(cls, g) -> ModelGraph:
         """Wrap anything with ``capped``, ``kinds`` and ``index`` (duck typing)."""
         for attr in ("capped", "kinds", "index"):
             if not hasattr(g, attr):
@@ -99,7 +99,7 @@ class ModelGraph:
 
     @classmethod
     def from_networkx(cls, G, kind_attr: str = "kind", default_kind: str = "node",
-                      weight: str | None = None) -> "ModelGraph":
+                      weight: str | None = None) -> ModelGraph:
         """Nodes that are ``(kind, label)`` tuples keep them; others take ``G.nodes[v][kind_attr]``.
 
         ``weight=None`` gives the 0/1 adjacency (the capped graph is 0/1); name an
@@ -135,7 +135,7 @@ class ModelGraph:
         return vals
 
     def theta_dict(self, vec) -> dict[str, float]:
-        return {pair_key(p): float(v) for p, v in zip(self.type_pairs, vec)}
+        return {pair_key(p): float(v) for p, v in zip(self.type_pairs, vec, strict=False)}
 
     def dense_w(self, theta_vec) -> np.ndarray:
         """W(θ) as a dense array: each capped edge times θ of its kind pair."""
@@ -189,7 +189,7 @@ def as_model_graph(g) -> ModelGraph:
 def cue_nodes(index: Mapping, hour, weekday, week) -> list[int]:
     """Indices of the probed hour's time nodes that exist in the graph."""
     out = []
-    for kind, value in zip(TIME_KINDS, (hour, weekday, week)):
+    for kind, value in zip(TIME_KINDS, (hour, weekday, week), strict=False):
         if value is None:
             continue
         i = index.get((kind, str(value)))
@@ -284,7 +284,7 @@ class TrialDesign:
     def n_options(self) -> np.ndarray:
         return self.opt_mask.sum(axis=1)
 
-    def subset(self, rows) -> "TrialDesign":
+    def subset(self, rows) -> TrialDesign:
         """A view on some trials (rows of the arrays), sharing the graph."""
         rows = np.asarray(rows, dtype=np.int64)
         out = object.__new__(TrialDesign)
@@ -297,7 +297,7 @@ class TrialDesign:
             setattr(out, name, getattr(self, name)[rows])
         return out
 
-    def with_choices(self, choice_pos) -> "TrialDesign":
+    def with_choices(self, choice_pos) -> TrialDesign:
         """A copy with other choices (simulated answers for recovery)."""
         out = self.subset(np.arange(len(self)))
         out.choice_pos = np.asarray(choice_pos, dtype=np.int64).copy()

@@ -73,10 +73,7 @@ def canonical_from_eigenspace(q: np.ndarray, x: np.ndarray) -> np.ndarray:
     n = q.shape[0]
     x2 = float(x @ x)
     c = q.T @ x
-    if x2 > 0 and float(c @ c) > ZERO_RTOL * x2:
-        v = q @ c
-    else:
-        v = q @ (q.T @ np.ones(n))
+    v = q @ c if x2 > 0 and float(c @ c) > ZERO_RTOL * x2 else q @ (q.T @ np.ones(n))
     return v / np.linalg.norm(v)
 
 

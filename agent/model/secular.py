@@ -154,7 +154,7 @@ class RankOneSolver:
             act = np.matmul(self.u_ext[rows], st.coef[:, :, None])[:, :, 0]
         return (act, st.mu) if return_mu else act
 
-    def state(self, cue_idx, cue_w, beta: float) -> "TrialState":
+    def state(self, cue_idx, cue_w, beta: float) -> TrialState:
         """Per-trial solution in the eigenbasis of W: ``v = U @ coef`` (see :class:`TrialState`)."""
         beta = float(beta)
         if not np.isfinite(beta) or beta < 0:
