@@ -208,3 +208,23 @@ def test_status_warns_about_plain_keys(enrolled):
     st = collect_status(enrolled["home"])  # the suite chooses plain keys (tests/conftest.py)
     assert st["keys"]["storage"] == "plain"
     assert "WARNING: the keys are plain files" in status_text(st)
+
+
+def test_status_tells_about_subfolders_unfinished_files_and_the_alarm(enrolled):
+    """Finding 7: status said "inbox: empty" with files in subfolders, .part and hidden files."""
+    import json as _json
+
+    from agent.home import Home
+    from agent.participant.status import collect_status, status_text
+
+    home = Home(enrolled["home"])
+    (home.inbox / "2026-11-04").mkdir()
+    (home.inbox / "2026-11-04" / "a.wav").write_bytes(b"x")
+    (home.inbox / "b.wav.part").write_bytes(b"x")
+    (home.state / "intake-alarm.json").write_text(_json.dumps({"reason": "ledger_unwritable",
+                                                               "error": "OSError/No space left on device",
+                                                               "since": 0, "pending": 3}))
+    text = status_text(collect_status(home))
+    assert "Waiting in the inbox: 2 file(s)" in text
+    assert "1 in folders inside the inbox" in text and "1 not finished by the recorder" in text
+    assert "WARNING: the record of what happened to your files could not be written" in text

@@ -148,8 +148,21 @@ def status_text(st: dict) -> str:
     if inbox["files"]:
         lines.append(f"Waiting in the inbox: {inbox['files']} file(s); the oldest for {inbox['oldest_age_s']:.0f} s "
                      f"(none may stay longer than {inbox['limit_s']:g} s).")
+        parts = []
+        if inbox.get("in_subfolders"):
+            parts.append(f"{inbox['in_subfolders']} in folders inside the inbox")
+        if inbox.get("unfinished"):
+            parts.append(f"{inbox['unfinished']} not finished by the recorder yet (.part or hidden), "
+                         f"destroyed unread if not finished in time")
+        if parts:
+            lines.append("  Of these: " + "; ".join(parts) + ".")
     else:
         lines.append(f"The inbox is empty (no file may stay there longer than {inbox['limit_s']:g} s).")
+    alarm = ic.get("alarm")
+    if alarm:
+        lines.append(f"WARNING: the record of what happened to your files could not be written "
+                     f"({alarm.get('error', '?')}); {alarm.get('pending', 0)} entries wait. Raw files are "
+                     f"still destroyed on time; free disk space or run 'lethe audit verify'.")
     pr = st.get("prompts")
     if pr:
         lines.append(f"Mood questions: {pr['asked']} asked, {pr['answered']} answered, {pr['missed']} missed"
