@@ -68,8 +68,6 @@ def test_the_tour_has_the_steps_the_issue_asks_for():
 @pytest.mark.timeout(1800)
 @pytest.mark.skipif(installed_lethe() is None, reason="lethe is not installed (pip install -e .)")
 def test_the_readme_tour_runs_as_written_outside_the_clone(tmp_path):
-    import pexpect
-
     work = tmp_path / "tour"
     work.mkdir()
     assert REPO not in work.parents
@@ -84,20 +82,50 @@ def test_the_readme_tour_runs_as_written_outside_the_clone(tmp_path):
     (tmp_path / "fetch.py").write_text(FETCH)
     page = tmp_path / "page.html"
     env["BROWSER"] = f"{sys.executable} {tmp_path / 'fetch.py'} %s {page}"
-    study_id = None
+    background: list[subprocess.Popen] = []
+    try:
+        _follow(work, lethe, env, page, background)
+    finally:
+        for p in background:
+            p.terminate()
+            p.wait(60)
+    # the tour left what it says it leaves
+    assert sorted(p.name for p in (work / "ph").iterdir()) == ["withdrawal-certificate.json"]
+    assert (work / "cohort-report" / "report.html").exists() and (work / "board" / "index.html").exists()
+
+
+def _follow(work, lethe, env, page, background):
+    import json
+
+    import pexpect
+
+    study_id = invitation = None
     for line, words, exits_1 in tour_commands():
         if words[0] == "export":
             name, _, value = words[1].partition("=")
             env[name] = value
             continue
         assert words[0] == "lethe", line
+        in_background = words[-1] == "&"
+        if in_background:
+            words = words[:-1]
         args = []
         for w in words[1:]:
+            w = w.replace("$PWD", str(work))  # the shell would expand it
+            if w == "CODE" and invitation:
+                w = invitation  # the participant types the code the study gave them
             hits = sorted(glob.glob(w, root_dir=work)) if any(c in w for c in "*?[") else []
             args += hits or [w]
         sub = args[2] if args[:1] == ["--home"] else args[0]
         if sub == "study" and "--study-id" in args:
             study_id = args[args.index("--study-id") + 1]
+        if in_background:
+            # the study server: started as the README starts it, stopped when the tour is over
+            with open(work / f"background-{len(background)}.log", "w") as log:
+                background.append(subprocess.Popen([lethe] + args, cwd=work, env=env, stdin=subprocess.DEVNULL,
+                                                   stdout=log, stderr=subprocess.STDOUT))
+            _wait_for_port(args, background[-1], work)
+            continue
         interactive = (sub in ("init", "quiz", "withdraw", "open")
                        or (sub == "export" and "--preview" not in args and "--yes" not in args))
         if not interactive:
@@ -105,12 +133,13 @@ def test_the_readme_tour_runs_as_written_outside_the_clone(tmp_path):
                                capture_output=True, text=True, timeout=900)
             assert r.returncode == (1 if exits_1 else 0), f"{line}\n{r.stdout[-2000:]}\n{r.stderr[-2000:]}"
             assert "Traceback" not in r.stderr, line
+            if sub == "study" and args[1:2] == ["invite"]:
+                codes = re.findall(r"\b[A-Za-z0-9_-]{12,}\b", r.stdout)
+                invitation = codes[0] if codes else None
             continue
         child = pexpect.spawn(lethe, args, cwd=str(work), env=env, encoding="utf-8", timeout=600,
                               dimensions=(50, 200))
         if sub == "init":
-            import json
-
             card = json.loads((work / args[args.index("--study") + 1]).read_text())
             child.expect(r"Type the published fingerprint")
             child.sendline(card["key_fingerprint"])  # as printed by 'lethe study card' above
@@ -140,6 +169,18 @@ def test_the_readme_tour_runs_as_written_outside_the_clone(tmp_path):
         child.expect(pexpect.EOF)
         child.close()
         assert child.exitstatus == 0, f"{line}\n{child.before}"
-    # the tour left what it says it leaves
-    assert sorted(p.name for p in (work / "ph").iterdir()) == ["withdrawal-certificate.json"]
-    assert (work / "cohort-report" / "report.html").exists() and (work / "board" / "index.html").exists()
+
+
+def _wait_for_port(args, proc, work):
+    """Wait until the background server accepts connections on its --port (a wait, not a timing check)."""
+    import socket
+
+    port = int(args[args.index("--port") + 1]) if "--port" in args else None
+    deadline = time.monotonic() + 120
+    while port and time.monotonic() < deadline and proc.poll() is None:
+        try:
+            socket.create_connection(("127.0.0.1", port), timeout=1).close()
+            return
+        except OSError:
+            time.sleep(0.5)
+    assert proc.poll() is None, (work / "background-0.log").read_text()

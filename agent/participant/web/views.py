@@ -101,8 +101,10 @@ def option_label(pid: str, rows: dict[str, dict]) -> str:
 def write_mood_answer(home: Home, policy, ratings: dict[str, int], now: float | None = None) -> str:
     """Write one mood report into the inbox as ``*.mood.json`` (docs/inbox-formats.md).
 
-    Written beside the inbox first and renamed in, so the agent never sees half
-    a file.  Returns the file name.
+    Written under an unfinished name first (``.NAME.part`` inside the inbox,
+    which intake leaves alone while it is written and destroys unread should a
+    crash leave it behind) and renamed to its final name, so the agent never
+    sees half a file.  Returns the file name.
     """
     from ...errors import DataError
     from ...home import write_private
@@ -120,7 +122,7 @@ def write_mood_answer(home: Home, policy, ratings: dict[str, int], now: float | 
     doc = {"reports": [{"time": when.isoformat(timespec="seconds").replace("+00:00", "Z"),
                         "ratings": {k: int(ratings[k]) for k in emotions}}]}
     name = f"page-{when.strftime('%Y%m%dT%H%M%S')}-{secrets.token_hex(4)}.mood.json"
-    tmp = home.state / f".{name}.part"
+    tmp = home.inbox / f".{name}.part"
     write_private(tmp, json.dumps(doc).encode())
     os.replace(tmp, home.inbox / name)
     return name
