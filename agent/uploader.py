@@ -34,6 +34,7 @@ import ssl
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 from urllib.parse import urlsplit
 
 from .errors import DataError, IntegrityError, LetheError, StateError
@@ -216,7 +217,7 @@ class Uploader:
 
         The enrolment goes first; bundles wait until it is acknowledged.
         """
-        out = {"sent": 0, "waiting": 0, "failed": 0, "error": None}
+        out: dict[str, Any] = {"sent": 0, "waiting": 0, "failed": 0, "error": None}
         if self.server is None:
             return out
         now = time.time() if now is None else now
@@ -234,6 +235,7 @@ class Uploader:
                 self._retry(item, str(e), now)
             out["error"] = str(e)
             return out
+        assert client is not None
         try:
             enrolment_waiting = any(i["kind"] == "enrolment" for i in self.pending())
             for item in due:

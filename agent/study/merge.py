@@ -15,12 +15,16 @@ __all__ = ["TABLES", "cohort_rows", "merge"]
 _OLD_TABLES = ("edges", "parameters", "metrics", "quiz", "coverage", "compliance")
 
 
-def cohort_rows(study_dir) -> dict[str, list[dict]]:
-    """The cohort as lists of row dicts (wide coverage and compliance rows), for the report."""
+def cohort_rows(study_dir, *, latest_only: bool = True) -> dict[str, list[dict]]:
+    """The cohort as lists of row dicts (wide coverage and compliance rows), for the report.
+
+    By default only each participant's latest bundle is read (what the report
+    shows), so memory grows with participants, not with bundles.
+    """
     src = as_source(study_dir)
     latest = {p["pseudonym"]: p["latest_seq"] for p in src.participants()}
     t: dict[str, list[dict]] = {k: [] for k in _OLD_TABLES}
-    for name, seq, doc in src.records():
+    for name, seq, doc in src.records(latest_only=latest_only):
         p = doc["payload"]
         base = {"pseudonym": name, "seq": seq, "created": p["created"], "latest": seq == latest[name],
                 "policy_fingerprint": p["policy_fingerprint"]}

@@ -54,7 +54,7 @@ def bundle_paths(inputs: Iterable) -> Iterator[Path]:
     for p in inputs:
         p = Path(p)
         if p.is_dir() and not p.is_symlink():
-            found = []
+            found: list[Path] = []
             for root, dirs, files in os.walk(p, followlinks=False):
                 dirs.sort()
                 found.extend(Path(root) / f for f in sorted(files) if f.endswith(SUFFIX) and not f.startswith("."))

@@ -146,7 +146,8 @@ def report(study_dir, out) -> Path:
     reg = Registry.load(study_dir)
     parts = [f"<h1>Cohort report: {html.escape(reg.study_id)}</h1>",
              f"<p>{len(reg.devices)} enrolled device(s); {len({r['pseudonym'] for r in t['coverage']})} "
-             f"sent at least one bundle; {len(t['coverage'])} bundle(s) opened. Each participant's latest "
+             f"sent at least one bundle; {sum(len(d.seen) for d in reg.devices.values())} bundle(s) opened. "
+             f"Each participant's latest "
              f"bundle is shown. lethe {html.escape(__version__)}.</p>"]
 
     parts.append("<h2>Memory test: the model against chance and baselines</h2>")

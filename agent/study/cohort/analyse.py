@@ -90,8 +90,8 @@ def analyse(source, *, scheduler: str | None = None, n_workers: int = 2, n_boot:
             "t": float(t.statistic) if t else None, "p_value": float(t.pvalue) if t else None,
             "share_model_better": float(np.mean(v > 0)),
         }
-    for k, v in sorted(params.items()):
-        a = np.asarray(v)
+    for k, vals in sorted(params.items()):
+        a = np.asarray(vals)
         q = np.percentile(a, [5, 25, 50, 75, 95])
         out["parameters"][k] = {"n": int(len(a)), "mean": float(a.mean()), "sd": float(a.std(ddof=1)) if len(a) > 1
                                 else None, **{f"q{p:02d}": float(x) for p, x in zip((5, 25, 50, 75, 95), q,

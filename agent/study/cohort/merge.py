@@ -189,11 +189,11 @@ def merge(study, out, *, latest_only: bool = False) -> dict[str, Path]:
             path.unlink(missing_ok=True)
     dd = out / ".data_dictionary.csv.tmp"
     with open(dd, "w", newline="", encoding="utf-8") as f:
-        w = csv.writer(f, lineterminator="\n")
-        w.writerow(["table", "column", "type", "unit", "description"])
+        dw = csv.writer(f, lineterminator="\n")
+        dw.writerow(["table", "column", "type", "unit", "description"])
         for t, cols in DICTIONARY.items():
             for c in cols:
-                w.writerow([t, *c])
+                dw.writerow([t, *c])
         f.flush()
         os.fsync(f.fileno())
     os.replace(dd, out / "data_dictionary.csv")

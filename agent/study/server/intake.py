@@ -14,6 +14,7 @@ from __future__ import annotations
 import hashlib
 import json
 from dataclasses import dataclass
+from typing import Any
 
 import sqlalchemy as sa
 
@@ -59,8 +60,8 @@ class StudyContext:
     """What the server verifies against: the study key, the card's approved policies, the database."""
 
     study_id: str
-    study_key: object
-    card: object
+    study_key: Any
+    card: Any
     store: Store
 
 
@@ -75,7 +76,7 @@ def log_continuity(previous: dict | None, current: dict, origin: str | None) -> 
     from ...ledger.verify import verify_log_continuity
 
     prev = previous.get("log") if previous else None
-    cur = current.get("log")
+    cur: Any = current.get("log")
     if cur is None and prev is None and origin is None:
         return []
     return verify_log_continuity(prev, cur, origin=origin)

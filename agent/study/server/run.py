@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 from ...errors import StateError, UsageError
 from .app import ServerSettings, create_app
@@ -81,9 +82,9 @@ class ServerThread:
         self.host, self.port = host, port
         self.url = f"https://{host}:{port}"
         self.study_dir, self.passphrase, self.settings, self.database = study_dir, passphrase, settings, database
-        self.ctx = None
-        self._server = None
-        self._thread = None
+        self.ctx: StudyContext | None = None
+        self._server: Any = None
+        self._thread: Any = None
 
     def start(self) -> ServerThread:
         import threading

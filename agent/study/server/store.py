@@ -158,7 +158,7 @@ class Store:
             else:
                 self.study_id = row[0]
                 ver = c.execute(sa.select(meta_t.c.value).where(meta_t.c.key == "schema_version")).scalar()
-                if int(ver) > SCHEMA_VERSION:
+                if int(ver or 0) > SCHEMA_VERSION:
                     raise StateError(f"{self._safe_url()}: database schema {ver} is newer than this lethe "
                                      f"reads ({SCHEMA_VERSION}); upgrade lethe")
         if study_id is not None and study_id != self.study_id:
@@ -287,8 +287,8 @@ class Store:
             wd = c.execute(sa.select(sa.func.count()).select_from(devices_t).where(
                 devices_t.c.withdrawn.is_not(None))).scalar()
             b = c.execute(sa.select(sa.func.count()).select_from(bundles_t)).scalar()
-        return {"invited": int(inv), "invitations_used": int(used), "enrolled": int(dev), "withdrawn": int(wd),
-                "bundles": int(b)}
+        return {"invited": int(inv or 0), "invitations_used": int(used or 0), "enrolled": int(dev or 0),
+                "withdrawn": int(wd or 0), "bundles": int(b or 0)}
 
 
 def code_hash(code: str) -> str:
