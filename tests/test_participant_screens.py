@@ -157,3 +157,23 @@ def test_no_progress_bar_off_a_terminal(tmp_path):
     _three_mood_answers(root)
     r = lethe("run", "--once", home=root)
     assert r.returncode == 0 and "files taken in" not in r.stderr and "\r" not in r.stderr
+
+
+def test_fit_shows_a_running_clock_on_a_terminal_only(tmp_path):
+    import pexpect
+
+    from agent import quiz
+    from agent.home import Home
+    from agent.vault import Vault
+
+    root = make_page_home(tmp_path)
+    home = Home(root)
+    with Vault.open(home) as v:
+        for k, t in enumerate(quiz.issue_trials(v, home.load_policy())):
+            quiz.record_answer(v, t, t["options"][k % 2], 3.0, "terminal")
+    child = pexpect.spawn(sys.executable, ["-m", "agent.cli", "--home", str(root), "fit", "--no-store"],
+                          cwd=str(REPO), encoding="utf-8", timeout=600, dimensions=(30, 160))
+    child.expect(r"fitting the model on this laptop")
+    child.expect(pexpect.EOF)
+    r = lethe("fit", "--no-store", "--json", home=root)
+    assert r.returncode == 0 and "fitting the model" not in r.stderr

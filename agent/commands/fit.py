@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from contextlib import contextmanager
+
 from ._common import add_json, emit, home_from
 
 
@@ -17,6 +19,32 @@ def _fit(args) -> int:
     from ..model import fit_from_home
 
     home = home_from(args).require()
-    result = fit_from_home(home, None, seed=args.seed, store=not args.no_store)
+    with ticking("fitting the model on this laptop (with cross-validation and recovery)"):
+        result = fit_from_home(home, None, seed=args.seed, store=not args.no_store)
     emit(args, result.to_dict(), result.table())
     return 0
+
+
+@contextmanager
+def ticking(desc: str):
+    """A running clock on stderr while work without steps of its own runs (terminal only, tqdm)."""
+    import threading
+
+    from ._common import progress
+
+    with progress(None, desc, unit="s") as bar:
+        done = threading.Event()
+
+        def tick():
+            while not done.wait(0.5):
+                bar.refresh()
+
+        t = threading.Thread(target=tick, daemon=True)
+        if not bar.disable:
+            t.start()
+        try:
+            yield
+        finally:
+            done.set()
+            if t.is_alive():
+                t.join(2)
