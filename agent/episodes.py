@@ -30,6 +30,7 @@ from datetime import date, datetime, timezone, tzinfo
 from typing import Iterable, Mapping, Sequence
 from zoneinfo import ZoneInfo
 
+from .errors import LetheError
 from .graph import label_key
 
 GRID_S = 900  # 15 minutes
@@ -249,7 +250,7 @@ def study_start(home) -> float | None:
     """Enrolment time from the home config (``enrolled_at``, ISO 8601 or Unix seconds)."""
     try:
         return _parse_time(home.read_config().get("enrolled_at"))
-    except Exception:  # a missing or unreadable config means "unknown"
+    except (OSError, ValueError, TypeError, LetheError):  # a missing or unreadable config means "unknown"
         return None
 
 
@@ -257,7 +258,7 @@ def participant_tz(home, policy) -> ZoneInfo:
     """The participant's zone: home config ``timezone``, else the policy's default."""
     try:
         name = home.read_config().get("timezone")
-    except Exception:
+    except (OSError, ValueError):  # unreadable config: the policy's default
         name = None
     return ZoneInfo(name or policy.study.default_timezone)
 

@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
 import stat
 from contextlib import contextmanager, suppress
 from pathlib import Path
@@ -152,22 +151,6 @@ class Home:
                     total += os.lstat(os.path.join(dirpath, f)).st_size
         return total
 
-    def destroy_everything(self, keep=()) -> int:
-        """Remove every file in the home except the paths in ``keep``; returns files removed."""
-        keep = {Path(k).absolute() for k in keep}
-        removed = 0
-        for dirpath, dirs, files in os.walk(self.root, topdown=False):
-            for f in files:
-                p = Path(dirpath, f)
-                if p.absolute() in keep:
-                    continue
-                overwrite_and_unlink(p)
-                removed += 1
-            for d in dirs:
-                p = Path(dirpath, d)
-                if not any(k.is_relative_to(p) for k in keep):
-                    shutil.rmtree(p, ignore_errors=True)
-        return removed
 
 
 def overwrite_and_unlink(path: Path) -> None:

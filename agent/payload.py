@@ -20,7 +20,7 @@ import secrets
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
 from . import contracts
-from .errors import DataError
+from .errors import DataError, LetheError
 
 PAYLOAD_SCHEMA = 2
 
@@ -382,7 +382,7 @@ def build_payload_and_relabel(home, policy, vault, now: float | None = None):
     relabel = Relabeller.from_vault(vault)
     try:
         tz = home.timezone()
-    except Exception:  # a home without a policy copy: fall back to UTC dates
+    except (LetheError, KeyError, ValueError):  # no policy copy or an unknown zone: UTC dates
         tz = None
     created = coarse_date(now, policy.export.time_granularity, tz)
     report = verify_ledger(home, policy=policy, keep_leaves=True)

@@ -30,7 +30,6 @@ from . import canonical, contracts
 from . import policy_types as types
 from .errors import PolicyError
 
-RAW_KINDS = ("audio", "gps", "accel", "mood")
 
 
 

@@ -30,7 +30,6 @@ from collections import Counter
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from zoneinfo import ZoneInfo
 
 from .errors import DataError, StateError
 
@@ -352,7 +351,3 @@ def run_session(vault, policy, *, read=input, write=print, clock=time.monotonic,
         write("")
         write("Done. " + score_text(s))
     return {"answered": answered, "skipped": skipped, "stopped": stopped, "score": s}
-
-
-def local_tz(home) -> ZoneInfo:
-    return home.timezone()

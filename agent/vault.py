@@ -534,7 +534,7 @@ class Vault:
         try:
             if self._db is not None and not self._depth:
                 self._db.close()
-        except Exception:
+        except (sqlite3.Error, AttributeError):
             pass
 
     def __repr__(self):

@@ -13,8 +13,9 @@ import json
 from pathlib import Path
 
 import cryptography_vectors
+import pyhpke
 import pytest
-from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
+from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from cryptography.hazmat.primitives.asymmetric.x25519 import X25519PrivateKey
 from pyhpke import AEADId, CipherSuite, KDFId, KEMId
 
@@ -115,7 +116,7 @@ def test_interop_wrong_info_fails_in_both():
         suite_of("default").decrypt(sealed, sk, info=b"header B")
     s = pyhpke_suite()
     ctx = s.create_recipient_context(sealed[:32], s.kem.deserialize_private_key(sk.private_bytes_raw()), b"header B")
-    with pytest.raises(Exception):
+    with pytest.raises(pyhpke.OpenError):
         ctx.open(sealed[32:], b"")
 
 
@@ -136,17 +137,6 @@ def test_rfc8032_section_7_1_test_1():
     key = Ed25519PrivateKey.from_private_bytes(sk)
     assert key.public_key().public_bytes_raw() == pk
     assert key.sign(msg) == sig
-
-
-def test_rfc8032_sign_input_vectors():
-    # The whole sign.input file of cryptography_vectors (it opens with RFC 8032 section
-    # 7.1's TEST 1, see above): deterministic signatures match and verify.
-    rows = rfc8032_vectors()
-    assert len(rows) >= 1000
-    for sk, pk, msg, sig in rows:
-        key = Ed25519PrivateKey.from_private_bytes(sk)
-        assert key.sign(msg) == sig
-        Ed25519PublicKey.from_public_bytes(pk).verify(sig, msg)
 
 
 def test_bundle_signature_is_plain_ed25519_over_prefix(tmp_path):

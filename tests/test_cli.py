@@ -6,6 +6,8 @@ import argparse
 import subprocess
 import sys
 
+import pytest
+
 from agent import errors
 from agent.cli import build_parser, main
 
@@ -32,10 +34,15 @@ def test_help_runs_in_a_fresh_process():
     assert r.returncode == 0 and "demo" in r.stdout and "Exit codes" in r.stdout
 
 
-def test_exit_codes_are_distinct():
-    codes = [errors.EXIT_OK, errors.EXIT_FAILURE, errors.EXIT_USAGE, errors.EXIT_DATA,
-             errors.EXIT_INTEGRITY, errors.EXIT_STATE, errors.EXIT_BUDGET]
-    assert len(set(codes)) == len(codes)
+def test_help_lists_every_exit_code(capsys):
+    # The epilog of `lethe --help` names each code of agent.errors with its number.
+    with pytest.raises(SystemExit):
+        main(["--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    for code, words in [(errors.EXIT_OK, "ok"), (errors.EXIT_FAILURE, "check failed"), (errors.EXIT_USAGE, "usage"),
+                        (errors.EXIT_DATA, "bad data"), (errors.EXIT_INTEGRITY, "integrity"),
+                        (errors.EXIT_STATE, "wrong state"), (errors.EXIT_BUDGET, "privacy budget")]:
+        assert f"{code} {words}" in text
 
 
 def test_bad_policy_exits_with_the_data_code(tmp_path, capsys, repo):

@@ -517,11 +517,10 @@ DEMO_DAYS = 7  # one full weekly routine; the 14-day figures are in docs/graph.m
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory):
     """Generator -> inbox -> intake -> codebook -> episodes, on the bundled scenario."""
-    gen = pytest.importorskip("agent.demo.generator",
-                              reason="the demo generator (agent/demo/generator.py) is not available")
-    pipeline = pytest.importorskip("agent.intake.pipeline",
-                                   reason="the intake pipeline (agent/intake/pipeline.py) is not available")
     import shutil
+
+    import agent.demo.generator as gen
+    import agent.intake.pipeline as pipeline
 
     from agent.episodes import load_episodes
     from agent.home import Home

@@ -21,6 +21,7 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 import pytest
+from geographiclib import geodesic
 
 from agent.demo import Scenario, load_truth, simulate_days, write_day, write_truth
 from agent.demo.answers import simulate_answers, simulate_place_names, true_place_map
@@ -29,7 +30,6 @@ from agent.demo.scenario import destination
 from agent.demo.soundscapes import synthesize
 from agent.errors import DataError
 
-geodesic = pytest.importorskip("geographiclib.geodesic")
 WGS84 = geodesic.Geodesic.WGS84
 
 # Saturday 24 October 2026, 12:00 UTC.  The Azores leave summer time on Sunday

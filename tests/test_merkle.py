@@ -5,12 +5,12 @@ from __future__ import annotations
 
 import hashlib
 
+import pymerkle
 import pytest
 
 from agent import merkle
 from agent.errors import UsageError
 
-pymerkle = pytest.importorskip("pymerkle")
 
 
 def entries(n):

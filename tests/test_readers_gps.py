@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import pynmea2
 import pytest
 
 from agent.errors import RejectedInput
@@ -49,7 +50,6 @@ def test_checksum_of_the_published_gga_example_is_47():
 
 def test_checksum_routine_agrees_with_pynmea2():
     # Reference implementation: pynmea2.NMEASentence.checksum.
-    pynmea2 = pytest.importorskip("pynmea2")
     for body in ("GPRMC,123519,A,4807.038,N,01131.000,E,022.4,084.4,230394,003.1,W",
                  "GNGGA,000001.00,3831.800,N,02837.800,W,1,07,1.1,10.0,M,50.0,M,,"):
         assert nmea_checksum(body) == pynmea2.NMEASentence.checksum(body)
@@ -91,7 +91,6 @@ def test_nmea_rmc_position_and_date(default_policy):
 
 def test_nmea_position_agrees_with_pynmea2(default_policy):
     # Reference implementation: pynmea2's latitude/longitude of the example.
-    pynmea2 = pytest.importorskip("pynmea2")
     s = rmc("120000.00", lat="4807.038", lon="01131.000").replace(",W,", ",E,", 1)
     s = sentence(s[1:].split("*")[0])
     ref = pynmea2.parse(s, check=True)

@@ -99,7 +99,7 @@ def test_templates_autoescape():
 
 
 def test_dashboard_in_chromium(cohort, tmp_path):
-    webdriver = pytest.importorskip("selenium.webdriver")
+    from selenium import webdriver
     from selenium.webdriver.chrome.service import Service
     from selenium.webdriver.common.by import By
     from selenium.webdriver.support.ui import WebDriverWait

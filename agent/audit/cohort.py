@@ -29,7 +29,7 @@ import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from ..errors import DataError
+from ..errors import DataError, LetheError
 from ..plots import empty, figure, save, styled
 from .report import cautions_html, esc, fmt_s, page, table
 
@@ -93,7 +93,7 @@ def _known_policies(policies) -> dict:
     for name in ("default", "strict"):
         try:
             p = load_policy(bundled_policy_path(name))
-        except Exception:  # pragma: no cover - shipped policies always load (tested)
+        except LetheError:  # pragma: no cover - shipped policies always load (tested)
             continue
         known.setdefault(p.fingerprint, p)
     return known

@@ -22,6 +22,7 @@ import json
 import time
 from pathlib import Path
 
+from ..errors import LetheError
 from ..home import Home
 from ..plots import empty, figure, integer_ticks, save, styled
 from ..policy_summary import CAUTIONS, summarise
@@ -259,11 +260,12 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
     out.mkdir(parents=True, exist_ok=True)
     result = verify_home(home, policy=policy, now=now)
     r = result.report
+    policy_problem = None
     if policy is None and home.policy_path.exists():
         try:
             policy = home.load_policy()
-        except Exception:
-            policy = None
+        except LetheError as err:  # shown on the page: a board must see that the policy did not load
+            policy, policy_problem = None, str(err)
 
     plot_exposure(r.exposures, r.limit_s, out / "exposure.png", r.exposure)
     plot_items_per_day(r.daily, out / "items_per_day.png")
@@ -277,6 +279,8 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
             f'<p class="sub">Device ledger of a lethe home, checked {esc(_now_utc(r.verified_at))}.'
             f" Policy: {esc(result.policy_name or 'none found')}.</p>",
             f'<div class="verdict {"ok" if result.ok else "bad"}">{esc(result.verdict())}</div>',
+            *([f'<div class="verdict bad">The home\'s policy file could not be read: {esc(policy_problem)}</div>']
+              if policy_problem else []),
             "<p>This report reads the device's own record of what happened to every raw file (the ledger). "
             "Each entry is signed with the device's key and linked to the one before, so a removed, edited "
             "or reordered entry shows. It checks that every raw file that arrived was destroyed, and no later "

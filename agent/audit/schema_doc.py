@@ -34,7 +34,7 @@ class KeyInfo:
     phrase : str
         The subject of a change sentence, e.g. ``"Raw files may now exist for"``.
 
-    ``meaning`` (the schema's description), ``unit`` (``x-lethe-unit``: ``"s"``,
+    ``unit`` (``x-lethe-unit``: ``"s"``,
     ``"min"``, ``"days"``...) and ``stricter`` (``x-lethe-stricter``: ``"lower"``,
     ``"higher"``, ``"true"``, ``"false"``, ``"fewer"``, or the choices ordered from
     least to most strict; None when the key does not bear on privacy) are read
@@ -48,10 +48,6 @@ class KeyInfo:
     def _spec(self):
         section, name = self.key.split(".", 1)
         return SCHEMA[section][name].spec
-
-    @property
-    def meaning(self) -> str:
-        return self._spec.get("description", "")
 
     @property
     def unit(self) -> str:

@@ -28,12 +28,8 @@ from ..errors import DataError
 
 SCHEMA_VERSION = 1
 WEEKDAYS = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")  # Monday = 0 as in datetime
-PLACE_TYPES = ("home", "workplace", "grocery", "bakery", "cafe", "sports_hall",
-               "friend_home", "harbour", "park", "trip")
 SOUND_TYPES = ("quiet_room", "office", "cafe", "supermarket", "sports_music",
                "wind_gulls", "vehicle", "street")
-VISIT_MOTIONS = ("still", "walk", "run")
-TRAVEL_MODES = ("walk", "cycle", "vehicle")
 
 # WGS84 defining constants (NIMA TR8350.2), from memory: a and 1/f.
 WGS84_A = 6378137.0

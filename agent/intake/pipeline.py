@@ -494,7 +494,7 @@ class Intake:
             w.res = featurise(w.name, w.data, self.policy, now=self.now)
         except RejectedInput as e:
             w.out.reason, w.out.detail = e.reason, e.detail
-        except Exception as e:  # a reader bug must not stop the agent nor keep the file
+        except Exception as e:  # noqa: BLE001 - a reader bug must not stop the agent nor keep the file
             w.out.reason, w.out.detail = "reader_error", f"{type(e).__name__} in the reader"
             log.error("reader_error item=%s kind=%s error=%s", w.out.item[:12], w.out.kind, type(e).__name__)
         finally:
@@ -511,11 +511,11 @@ class Intake:
             with self.vault.transaction():
                 for w in keep:
                     w.out.rows = self._put_rows(w.out.item, w.res)
-        except Exception:
+        except Exception:  # noqa: BLE001 - whatever failed the group, retry item by item below
             for w in keep:
                 try:
                     w.out.rows = self.commit(w.out.item, w.res)
-                except Exception as e:
+                except Exception as e:  # noqa: BLE001 - one item the vault refuses must not stop intake
                     w.res = None
                     w.out.reason = "store_failed"
                     w.out.detail = f"the vault refused the features ({type(e).__name__})"

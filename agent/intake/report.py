@@ -157,7 +157,7 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
     if policy is None:
         try:
             policy = h.load_policy()
-        except Exception:
+        except LetheError:
             policy = None
     limit = float(policy.retention.raw_seconds) if policy is not None else None
     out = {k: dict(v) for k, v in counts.items()}

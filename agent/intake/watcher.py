@@ -230,7 +230,7 @@ class InboxWatcher:
         self.next_maintenance = time.time() + self.maintenance_every_s
         try:
             self.maintenance()
-        except Exception as e:  # never let periodic coding stop intake
+        except Exception as e:  # noqa: BLE001 - never let periodic coding stop intake
             log.warning("periodic coding failed: %s", type(e).__name__)
 
     def report(self, t0: float) -> DrainReport:
