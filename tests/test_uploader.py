@@ -265,3 +265,39 @@ def test_background_uploader_needs_a_server_on_the_card(tmp_path):
 
     home, _ = make_world(tmp_path)
     assert start_background(home) is None  # files only: no thread, nothing queued
+
+
+def test_withdrawal_certificate_is_delivered_and_closes_the_door(setup, tmp_path, capsys):
+    from agent.cli import main
+    from agent.keystore import Keystore
+    from agent.study.withdrawal import make_withdrawal_certificate, write_withdrawal_certificate
+
+    home, _, srv = setup
+    up = Uploader(home)
+    up.enqueue_enrolment(srv.ctx.store.invite(1)[0])
+    assert up.run_once()["sent"] == 1
+    cert = make_withdrawal_certificate("harbour-days-2027", home.read_config()["pseudonym"],
+                                       Keystore(home).device_key(), {"seq": 3, "hash": "ab" * 32}, {"episodes": 60})
+    path = write_withdrawal_certificate(tmp_path / "withdrawal-certificate.json", cert)
+    assert main(["upload", "--withdrawal", str(path), "--card", str(home.root / "study-card.json"), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["status"] == "withdrawn"
+    assert srv.ctx.store.counts()["withdrawn"] == 1
+    export_bundle(home, now=NOW)  # sealed after the withdrawal reached the study: refused for good
+    up.enqueue_outbox()
+    assert up.run_once()["failed"] == 1
+    assert "withdrew" in queue_status(home)["failed"][0]["message"]
+
+
+def test_withdrawal_upload_refused_is_an_error(setup, tmp_path):
+    from agent.errors import StateError
+    from agent.study.withdrawal import make_withdrawal_certificate, write_withdrawal_certificate
+    from agent.uploader import upload_withdrawal
+
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+
+    _, _, srv = setup
+    cert = make_withdrawal_certificate("harbour-days-2027", "pNobody01", Ed25519PrivateKey.generate(),
+                                       {"seq": 3, "hash": "ab" * 32}, {"episodes": 1})
+    path = write_withdrawal_certificate(tmp_path / "w.json", cert)
+    with pytest.raises(StateError, match="refused the withdrawal certificate.*not enrolled"):
+        upload_withdrawal(path, srv.url, srv.pin, sleep=lambda s: None)

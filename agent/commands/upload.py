@@ -11,7 +11,9 @@ def register(sub) -> None:
                    help="the one-time invitation code from the study: queue this device's enrolment with it")
     p.add_argument("--status", action="store_true", help="only show what is prepared, sent and refused")
     p.add_argument("--withdrawal", metavar="CERT",
-                   help="send a withdrawal certificate now (needs --server and --pin: the home is gone by then)")
+                   help="send a withdrawal certificate now (the home is emptied by then: give --card, or --server "
+                        "and --pin)")
+    p.add_argument("--card", metavar="CARD", help="with --withdrawal: the study card you received (names the server)")
     p.add_argument("--server", metavar="URL", help="with --withdrawal: the study server's address")
     p.add_argument("--pin", metavar="SHA256", help="with --withdrawal: the certificate pin from the study card")
     add_json(p)
@@ -24,8 +26,16 @@ def _upload(args) -> int:
     from ..uploader import Uploader, queue_status, upload_withdrawal
 
     if args.withdrawal:
+        if args.card:
+            from ..study.card import load_card
+
+            card = load_card(args.card)
+            if not card.server_url:
+                raise UsageError(f"{args.card}: this study card names no server; send the certificate to the "
+                                 f"study as agreed")
+            args.server, args.pin = card.server_url, card.server_pin
         if not (args.server and args.pin):
-            raise UsageError("--withdrawal needs --server URL and --pin SHA256 (both are on the study card)")
+            raise UsageError("--withdrawal needs --card CARD, or --server URL and --pin SHA256 (both on the card)")
         ack = upload_withdrawal(args.withdrawal, args.server, args.pin)
         emit(args, ack, f"{args.withdrawal}: sent; the study server acknowledged it ({ack.get('status')})")
         return 0
