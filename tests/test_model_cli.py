@@ -6,7 +6,7 @@ import shutil
 import numpy as np
 
 from agent.cli import main
-from agent.errors import EXIT_DATA, EXIT_STATE
+from agent.errors import EXIT_DATA, EXIT_STATE, EXIT_USAGE
 
 
 def _fill(home, repo, n_trials=60):
@@ -18,7 +18,7 @@ def _fill(home, repo, n_trials=60):
 
     # the default policy with a quick fit (2 folds, 1 restart) to keep the test short
     text = (repo / "policies" / "default.toml").read_text()
-    text = text.replace("folds = 5", "folds = 2").replace("restarts = 4", "restarts = 1")
+    text = text.replace("folds = 5", "folds = 2\nrecovery_sims = 3").replace("restarts = 2", "restarts = 1")
     home.policy_path.write_text(text)
     home.write_config({"pseudonym": "test"})
     policy = load_policy(home.policy_path)
@@ -72,3 +72,31 @@ def test_fit_without_trials_exits_with_data_error(home, repo, capsys):
 
 def test_fit_outside_a_home_exits_with_state_error(tmp_path, capsys):
     assert main(["--home", str(tmp_path / "none"), "fit"]) == EXIT_STATE
+
+
+def test_fit_full_weights_fits_one_weight_per_pair(home, repo, capsys):
+    _fill(home, repo)
+    assert main(["--home", str(home.root), "fit", "--json", "--no-store", "--weights", "full"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["params"]["weights"] == "full"
+    assert set(out["params"]["theta_groups"]) == set(out["params"]["theta"])
+    assert out["recovery"]["n_sims"] == 3
+
+
+def test_graph_reports_routine_diagnostics(home, repo, capsys):
+    _fill(home, repo)
+    assert main(["--home", str(home.root), "graph", "--json", "--cap-rule", "routine", "--degree-cap", "6"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    d = out["diagnostics"]
+    assert out["cap_rule"] == "routine" and out["degree_cap"] == 6
+    assert d["n_isolated"] == 0 and d["hours_without_place_2"] == []
+    assert d["n_trials"] == 60 and 0 <= d["trials_reachable"] <= 1
+    assert main(["--home", str(home.root), "graph"]) == 0
+    text = capsys.readouterr().out
+    assert "isolated nodes" in text and "memory-test trials" in text
+
+
+def test_graph_refuses_an_unknown_cap_rule(home, repo, capsys):
+    _fill(home, repo)
+    assert main(["--home", str(home.root), "graph", "--cap-rule", "widest"]) == EXIT_USAGE
+    assert "cap_rule 'widest'" in capsys.readouterr().err

@@ -11,6 +11,8 @@ def register(sub) -> None:
     p = sub.add_parser("fit", help="fit the memory model to your quiz answers (model vs baselines table)")
     p.add_argument("--seed", type=int, default=0, help="seed for restarts, folds and bootstrap (default 0)")
     p.add_argument("--no-store", action="store_true", help="do not store the result in the vault")
+    p.add_argument("--weights", choices=("grouped", "full"), default="grouped",
+                   help="type-pair weights: five classes of kind families (default) or one per kind pair")
     add_json(p)
     p.set_defaults(func=_fit)
 
@@ -20,7 +22,7 @@ def _fit(args) -> int:
 
     home = home_from(args).require()
     with ticking("fitting the model on this laptop (with cross-validation and recovery)"):
-        result = fit_from_home(home, None, seed=args.seed, store=not args.no_store)
+        result = fit_from_home(home, None, seed=args.seed, store=not args.no_store, weights=args.weights)
     emit(args, result.to_dict(), result.table())
     return 0
 

@@ -319,7 +319,8 @@ def load_home_inputs(home):
     return join_answers(trials, answers), episodes
 
 
-def fit_from_home(home, policy=None, seed: int = 0, *, store: bool = True) -> FitResult:
+def fit_from_home(home, policy=None, seed: int = 0, *, store: bool = True,
+                  weights: str = "grouped") -> FitResult:
     """Fit from the home's vault (trials, answers, episodes) and store ``fits/latest``."""
     from ..graph import CooccurrenceGraph
     from ..home import Home
@@ -333,7 +334,7 @@ def fit_from_home(home, policy=None, seed: int = 0, *, store: bool = True) -> Fi
     if not episodes:
         raise DataError(f"{home.vault_path}: no episodes stored; the graph cannot be built")
     graph = CooccurrenceGraph.from_episodes(episodes, policy)
-    result = fit_model(graph, rows, policy, seed=seed, episodes=episodes)
+    result = fit_model(graph, rows, policy, seed=seed, episodes=episodes, weights=weights)
     if store:
         from ..vault import Vault
 
