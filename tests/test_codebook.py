@@ -9,7 +9,8 @@ import pytest
 from geographiclib.geodesic import Geodesic
 
 from agent.codebook import (ENMO_MVPA_MG, ENMO_SEDENTARY_MG, CentroidCodebook, PlaceCodebook,
-                            cluster_places, codebook_quality, enmo_band, haversine_m, run_codebook)
+                            cluster_places, codebook_quality, enmo_band, run_codebook)
+from agent.geo import haversine_m
 
 WGS84 = Geodesic.WGS84  # Karney (2013), "Algorithms for geodesics", J. Geodesy 87:43-55
 
@@ -324,7 +325,7 @@ def test_run_codebook_codes_and_discards_features(home, default_policy):
     now = T0 + 3 * 86400
     with Vault.open(home) as v:
         _fill(v, rng)
-        r = run_codebook(home, default_policy, v, now=now, episodes=False)
+        r = run_codebook(home, default_policy, v, now=now)
         assert (r.n_places, r.n_sounds, r.n_motions) == (3, 3, 3)
         assert r.coded == {"place": 9, "sound": 162, "motion": 972}
         assert v.count("stays") == 0 and v.count("accel_features") == 0
@@ -350,7 +351,7 @@ def test_run_codebook_with_a_real_ledger_appends_counts(home, default_policy):
     lg.append("agent_start")  # a ledger is never started over a vault that holds data (issue 12, finding 3)
     with Vault.open(home) as v:
         _fill(v, rng, days=1)
-        r = run_codebook(home, default_policy, v, now=T0 + 3 * 86400, ledger=lg, episodes=False)
+        r = run_codebook(home, default_policy, v, now=T0 + 3 * 86400, ledger=lg)
     coded = [e for e in lg.entries() if e["event"] == "coded"]
     assert len(coded) == 1
     # one day of _fill: 3 sites x 18 audio snippets; a single stay per site makes no place yet
@@ -364,9 +365,9 @@ def test_run_codebook_twice_codes_nothing_new(home, default_policy):
     rng = np.random.default_rng(1)
     with Vault.open(home) as v:
         _fill(v, rng)
-        run_codebook(home, default_policy, v, now=T0 + 3 * 86400, episodes=False)
+        run_codebook(home, default_policy, v, now=T0 + 3 * 86400)
         n = v.count("coded")
-        again = run_codebook(home, default_policy, v, now=T0 + 3 * 86400 + 60, episodes=False)
+        again = run_codebook(home, default_policy, v, now=T0 + 3 * 86400 + 60)
         assert again.coded == {} and v.count("coded") == n
 
 
@@ -376,9 +377,9 @@ def test_run_codebook_keeps_ids_on_the_next_day(home, default_policy):
     rng = np.random.default_rng(2)
     with Vault.open(home) as v:
         _fill(v, rng)
-        run_codebook(home, default_policy, v, now=T0 + 3 * 86400, episodes=False)
+        run_codebook(home, default_policy, v, now=T0 + 3 * 86400)
         _fill(v, rng, days=1, t0=T0 + 3 * 86400)
-        r = run_codebook(home, default_policy, v, now=T0 + 4.5 * 86400, episodes=False)
+        r = run_codebook(home, default_policy, v, now=T0 + 4.5 * 86400)
         assert "sound" in r.refitted
         places = {r_["id"] for _, r_ in v.items("coded") if r_["kind"] == "place"}
         sounds = {r_["id"] for _, r_ in v.items("coded") if r_["kind"] == "sound"}
@@ -398,9 +399,9 @@ def test_pending_stay_is_kept_only_within_feature_retention(home, default_policy
     s = _stays_at((0, 0), 1, T0, rng)[0]
     with Vault.open(home) as v:
         v.put("stays", "x", s)
-        r = run_codebook(home, default_policy, v, now=T0 + 7200, episodes=False)
+        r = run_codebook(home, default_policy, v, now=T0 + 7200)
         assert r.pending_stays == 1 and v.count("stays") == 1 and v.count("coded") == 0
-        run_codebook(home, default_policy, v, now=T0 + 3 * 86400, episodes=False)
+        run_codebook(home, default_policy, v, now=T0 + 3 * 86400)
         assert v.count("stays") == 0 and v.count("coded") == 0
 
 
@@ -410,7 +411,7 @@ def test_identical_audio_features_do_not_stop_the_stage(home, default_policy):
     with Vault.open(home) as v:
         for i in range(20):
             v.put("audio_features", f"a{i}", {"t": T0 + 600 * i, "vec": [1.0] * 8, "dbfs": -30.0, "dba": 50.0})
-        r = run_codebook(home, default_policy, v, now=T0 + 86400, episodes=False)
+        r = run_codebook(home, default_policy, v, now=T0 + 86400)
         assert r.problems and "sound refit skipped" in r.problems[0]
         assert v.count("audio_features") == 20 and r.coded == {}
 
@@ -421,7 +422,7 @@ def test_window_without_finite_enmo_is_dropped_uncoded(home, default_policy):
     with Vault.open(home) as v:
         v.put("accel_features", "m1", {"t0": T0, "window_s": 10.0,
                                        "windows": [[T0, float("nan"), 0.0, 0.0, 0], [T0 + 10, 0.2, 0.1, 2.0, 1]]})
-        r = run_codebook(home, default_policy, v, now=T0 + 3600, episodes=False)
+        r = run_codebook(home, default_policy, v, now=T0 + 3600)
         assert r.coded == {"motion": 1}
         assert [row["id"] for _, row in v.items("coded")] == ["mvpa"]
         assert v.count("accel_features") == 0
@@ -439,7 +440,7 @@ def test_kmeans_motion_uses_m_ids(home, tmp_path, repo):
     rng = np.random.default_rng(4)
     with Vault.open(home) as v:
         _fill(v, rng, audio=False)
-        r = run_codebook(home, policy, v, now=T0 + 3 * 86400, episodes=False)
+        r = run_codebook(home, policy, v, now=T0 + 3 * 86400)
         ids = {row["id"] for _, row in v.items("coded") if row["kind"] == "motion"}
         assert ids == {"M1", "M2", "M3"} and r.n_motions == 3
         assert codebook_quality(v)["motion"]["method"] == "kmeans"
@@ -452,7 +453,7 @@ def test_codebook_quality_reports_sizes_and_silhouette(home, default_policy):
     with Vault.open(home) as v:
         assert codebook_quality(v) == {"place": None, "sound": None, "motion": None}
         _fill(v, rng)
-        run_codebook(home, default_policy, v, now=T0 + 3 * 86400, episodes=False)
+        run_codebook(home, default_policy, v, now=T0 + 3 * 86400)
         q = codebook_quality(v)
     assert q["place"]["n_places"] == 3 and sum(q["place"]["sizes"].values()) == 9
     assert q["sound"]["k"] == 3 and q["sound"]["silhouette"] > 0.5
@@ -467,19 +468,21 @@ def test_codebook_quality_carries_no_coordinates(home, default_policy):
     rng = np.random.default_rng(6)
     with Vault.open(home) as v:
         _fill(v, rng)
-        run_codebook(home, default_policy, v, now=T0 + 3 * 86400, episodes=False)
+        run_codebook(home, default_policy, v, now=T0 + 3 * 86400)
         text = json.dumps(codebook_quality(v))
     assert "lat" not in text and "centroid" not in text and "38.7" not in text
 
 
-def test_run_codebook_builds_episodes(home, default_policy):
+def test_episodes_from_the_codes(home, default_policy):
+    from agent.episodes import build_episodes
     from agent.vault import Vault
 
     rng = np.random.default_rng(7)
     with Vault.open(home) as v:
         _fill(v, rng, days=2)  # two stays per site: every place confirmed
-        r = run_codebook(home, default_policy, v, now=T0 + 86400)
-        assert r.episodes == v.count("episodes") > 0
+        run_codebook(home, default_policy, v, now=T0 + 86400)
+        n = len(build_episodes(home, default_policy, v, now=T0 + 86400))
+        assert n == v.count("episodes") > 0
         eps = [e for _, e in v.items("episodes")]
         assert {e["place"] for e in eps} == {"P1", "P2", "P3"}
 
@@ -539,7 +542,7 @@ def demo_run(tmp_path_factory):
         pipeline.drain(home, policy, settle_s=0.0)
     now = start + DEMO_DAYS * 86400 + 3600
     with Vault.open(home) as v:
-        report = run_codebook(home, policy, v, now=now, episodes=False)
+        report = run_codebook(home, policy, v, now=now)
         coded = [row for _, row in v.items("coded")]
         from agent.episodes import build_episodes
 

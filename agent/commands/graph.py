@@ -25,6 +25,7 @@ def register(sub) -> None:
 
 def _codebook(args) -> int:
     from ..codebook import run_codebook
+    from ..episodes import build_episodes
     from ..vault import Vault
 
     home = home_from(args).require()
@@ -37,7 +38,8 @@ def _codebook(args) -> int:
                          f"stop it (or 'lethe service remove') to run 'lethe codebook' by hand")
     with home.lock("codebook"), Vault.open(home) as vault:
         report = run_codebook(home, policy, vault)
-    d = report.to_dict()
+        n_episodes = len(build_episodes(home, policy, vault))
+    d = {**report.to_dict(), "episodes": n_episodes}
     q = d["quality"]
     lines = [f"places: {d['n_places']} ({d['pending_stays']} stays pending confirmation)",
              f"sound classes: {d['n_sounds']}"

@@ -419,11 +419,13 @@ def code_features(intake) -> None:
     even when nobody runs ``lethe codebook`` by hand.  Skipped while paused.
     """
     from ..codebook import run_codebook
+    from ..episodes import build_episodes
     from ..pause import is_paused
 
     if is_paused(intake.home):
         return
     rep = run_codebook(intake.home, intake.policy, intake.vault, ledger=intake.ledger)
+    build_episodes(intake.home, intake.policy, intake.vault)
     log.info("coded: %s", ", ".join(f"{k} {v}" for k, v in sorted(rep.coded.items())) or "nothing")
 
 
