@@ -215,7 +215,8 @@ class Uploader:
     def run_once(self, now: float | None = None, client: Client | None = None) -> dict:
         """Send every due item once; returns ``{"sent", "waiting", "failed", "error"}``.
 
-        The enrolment goes first; bundles wait until it is acknowledged.
+        The enrolment goes first; bundles wait (prepared, not tried) until an
+        enrolment of this device has been acknowledged by the server.
         """
         out: dict[str, Any] = {"sent": 0, "waiting": 0, "failed": 0, "error": None}
         if self.server is None:
@@ -237,14 +238,16 @@ class Uploader:
             return out
         assert client is not None
         try:
-            enrolment_waiting = any(i["kind"] == "enrolment" for i in self.pending())
+            enrolled = self.enrolled()
             for item in due:
-                if item["kind"] == "bundle" and enrolment_waiting:
+                if item["kind"] == "bundle" and not enrolled:
+                    self._note(item, "waiting for the enrolment to reach the study server "
+                                     "('lethe upload --invitation CODE')")
                     continue
                 res = self._send(client, item, now)
                 out[res] = out.get(res, 0) + 1
                 if item["kind"] == "enrolment" and res == "sent":
-                    enrolment_waiting = False
+                    enrolled = True
                 if res == "error":
                     out["error"] = self._read_item(item)["last_error"]
                     break  # the server is unreachable: stop this pass, the rest waits its turn
@@ -253,6 +256,17 @@ class Uploader:
                 client.close()
         out["waiting"] = len(self.pending())
         return out
+
+    def enrolled(self) -> bool:
+        """Whether the server acknowledged this device's enrolment."""
+        sent = self.dir / "sent"
+        return sent.is_dir() and any(sent.glob("enrolment-*.json"))
+
+    def _note(self, item: dict, msg: str) -> None:
+        item = dict(self._read_item(item))
+        if item.get("last_error") != msg:
+            item["last_error"] = msg
+            _write(self.dir / "queue" / f"{item['id']}.json", item)
 
     def _read_item(self, item):
         return _read(self.dir / "queue" / f"{item['id']}.json") or item
@@ -280,7 +294,9 @@ class Uploader:
                     "ack": r.body})
             (self.dir / "queue" / f"{item['id']}.json").unlink(missing_ok=True)
             return "sent"
-        if r.status in (408, 429) or r.status >= 500:
+        code = r.body.get("error", {}).get("code") if isinstance(r.body.get("error"), dict) else None
+        if r.status in (408, 429) or r.status >= 500 or code == "not_enrolled":
+            # not_enrolled: the enrolment may still be on its way (or waiting for its code)
             msg = r.body.get("error", {}).get("message", f"HTTP {r.status}")
             self._retry(item, msg, now, at_least=r.retry_after_s)
             return "waiting"

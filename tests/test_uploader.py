@@ -96,6 +96,11 @@ def test_bundles_wait_for_the_enrolment(setup):
     up.enqueue_outbox()
     assert up.run_once()["sent"] == 0  # not enrolled on the server yet: nothing is tried
     assert srv.ctx.store.counts()["bundles"] == 0
+    (item,) = queue_status(home)["prepared"]  # still prepared, never given up
+    assert item["attempts"] == 0 and "waiting for the enrolment" in item["last_error"]
+    assert queue_status(home)["failed"] == []
+    up.enqueue_enrolment(srv.ctx.store.invite(1)[0])  # the code arrives later: everything goes
+    assert up.run_once()["sent"] == 2 and srv.ctx.store.counts()["bundles"] == 1
 
 
 def test_refused_upload_is_kept_with_its_reason(setup):
