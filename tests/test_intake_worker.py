@@ -117,3 +117,31 @@ def test_child_holds_no_descriptor_of_the_agent(hp, monkeypatch):
         os.close(held)
     fds = eval(got.warnings[-1].split("=", 1)[1])  # noqa: S307 - our own list of ints
     assert held not in fds and all(fd <= 3 or fd == max(fds) for fd in fds)
+
+
+def test_persistent_worker_survives_to_the_next_file_after_a_crash(hp, hostile_reader):
+    from agent.intake.item import ItemResult
+    from agent.intake.worker import ForkedPool, WorkerDied
+
+    h, policy = hp
+    pool = ForkedPool(policy, 1)
+    try:
+        got = pool.run([("a.mood.csv", mood_csv_bytes(policy)), ("k.mood.csv", CRASH),
+                        ("b.mood.csv", mood_csv_bytes(policy)), ("c.mood.csv", mood_csv_bytes(policy))], None, 30.0)
+        assert [type(g) for g in got] == [ItemResult, WorkerDied, ItemResult, ItemResult]
+        assert got[1].reason == "reader_crashed" and "SIGSEGV" in got[1].detail
+        assert pool.forks == 2          # one fork per life of the worker, not one per file
+    finally:
+        pool.close()
+
+
+def test_persistent_worker_that_hangs_is_stopped(hp, hostile_reader):
+    from agent.intake.worker import ForkedPool, WorkerDied
+
+    h, policy = hp
+    pool = ForkedPool(policy, 1)
+    try:
+        [got] = pool.run([("h.mood.csv", HANG)], None, 0.5)
+        assert isinstance(got, WorkerDied) and got.reason == "reader_timeout"
+    finally:
+        pool.close()

@@ -324,3 +324,16 @@ def test_cli_points_numba_cache_into_the_home(h):
                         env=env, timeout=120)
     assert cp.returncode == 0, cp.stderr
     assert cp.stdout.strip().splitlines()[-1] == str(h.numba_cache)
+
+
+def test_own_closes_are_not_kept_for_files_renamed_aside(intake):
+    """A long-running agent must not keep one entry per destroyed file (memory flat with backlog)."""
+    from agent.intake.watcher import InboxWatcher
+
+    from intake_samples import drop, mood_csv_bytes
+
+    w = InboxWatcher(intake)
+    for i in range(5):
+        drop(intake.home.inbox, f"m{i}.mood.csv", mood_csv_bytes(intake.policy))
+    w._take([f"m{i}.mood.csv" for i in range(5)])
+    assert len(w.outcomes) == 5 and w.own_closes == {}

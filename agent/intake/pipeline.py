@@ -83,6 +83,7 @@ class Outcome:
     name: str = field(default="", repr=False)   # the inbox name; never persist it
     featurise_s: float = 0.0
     overwritten_bytes: int = 0
+    aside: bool = False         # renamed to a leftover name before its destruction
 
     @property
     def error(self) -> str | None:
@@ -165,6 +166,7 @@ class Intake:
         self._executor = None
         self.reader_timeout_s = max(READER_TIMEOUT_MIN_S, self.raw_seconds / 3.0)
         self.isolate = bool(isolate) and hasattr(os, "fork")
+        self.pool = None   # ForkedPool, made on the first group to parse
         self.gps_buffered = self.vault.count("gps_fixes") > 0   # the watcher prunes them by the clock
         self._readers_loaded = False
         self.taken_limit = TAKEN_LIMIT
@@ -176,6 +178,9 @@ class Intake:
 
     def close(self) -> None:
         self.parsing.close()
+        if self.pool is not None:
+            self.pool.close()
+            self.pool = None
         if self._executor is not None:
             self._executor.shutdown(wait=True)
             self._executor = None
@@ -461,16 +466,17 @@ class Intake:
 
     def _featurise_forked(self, todo) -> None:
         """Parse in forked children, one per thread; a child's death takes only the file it was parsing."""
-        from .worker import WorkerDied, featurise_forked
+        from .worker import ForkedPool, WorkerDied
 
         self.load_readers()
+        if self.pool is None:
+            self.pool = ForkedPool(self.policy, self.workers)   # forked now: the readers are loaded
         n = min(self.workers, len(todo))
         chunks = [todo[i::n] for i in range(n)]
 
         def run(chunk):
             t0 = time.perf_counter()
-            answers = featurise_forked([(w.name, w.data) for w in chunk], self.policy, self.now,
-                                       self.reader_timeout_s)
+            answers = self.pool.run([(w.name, w.data) for w in chunk], self.now, self.reader_timeout_s)
             for w, ans in zip(chunk, answers, strict=True):
                 w.data = None
                 w.out.featurise_s = (time.perf_counter() - t0) / len(chunk)
@@ -561,6 +567,7 @@ class Intake:
         for w in works:
             if w.opened is not None and w.opened.fd >= 0:
                 w.name = self._aside(w)
+                w.out.aside = w.name != w.out.name
         held = [w for w in works if w.opened is not None]
         deadline = time.monotonic() + DESTROY_SECONDS
         self._each(lambda w: self.inbox.overwrite(w.opened, deadline=deadline), held)

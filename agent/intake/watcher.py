@@ -375,7 +375,8 @@ class InboxWatcher:
         done = set()
         for out in outs:
             done.add(out.name)
-            self.own_closes[out.name] = self.own_closes.get(out.name, 0) + 1
+            if not out.aside:   # renamed aside, our close is reported under the leftover name (ignored)
+                self.own_closes[out.name] = self.own_closes.get(out.name, 0) + 1
             if self.on_outcome is not None:
                 self.on_outcome(out)
         now = time.time()

@@ -30,11 +30,14 @@ Frames: 4-byte big-endian length, then a UTF-8 JSON body.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
+import pickle
 import selectors
 import signal
 import struct
+import threading
 import time
 
 from ..errors import RejectedInput
@@ -116,7 +119,8 @@ def _one_child(jobs, policy, now, timeout_s) -> list:
         try:
             os.closerange(3, w)
             os.closerange(w + 1, _max_fd())
-            signal.signal(signal.SIGALRM, signal.SIG_DFL)
+            for sig in (signal.SIGALRM, signal.SIGTERM, signal.SIGINT):   # not the agent's handlers
+                signal.signal(sig, signal.SIG_DFL)
             signal.alarm(int(timeout_s * len(jobs)) + 1)   # never outlives its deadline, even if orphaned
             from . import featurise
 
@@ -205,3 +209,159 @@ def _max_fd() -> int:
     except (ValueError, OSError):
         return 4096
 
+
+# -- persistent forked workers (what the agent uses) ---------------------------------------------
+class ForkedWorker:
+    """A child forked from the agent once its readers are loaded, answering one file after another.
+
+    Forked on first use and again after it dies, so the fork and the child's
+    first copy-on-write faults are paid once per agent life, not per group.
+    Jobs go down one pipe (pickled by the agent, which trusts itself); answers
+    come up another, in JSON only.  The child closes every other descriptor it
+    inherited, arms ``alarm`` around each parse (a hung or orphaned child
+    ends by itself) and leaves when its job pipe closes (the agent stopped or
+    died).
+
+    Parameters
+    ----------
+    policy : agent.policy.Policy
+    """
+
+    def __init__(self, policy):
+        self.policy = policy
+        self.pid = 0
+        self.jobs_w = -1
+        self.answers_r = -1
+        self.forks = 0
+        self.last_exit: int | None = None
+
+    def _fork(self) -> None:
+        jobs_r, jobs_w = os.pipe()
+        ans_r, ans_w = os.pipe()
+        pid = os.fork()
+        if pid == 0:
+            code = 0
+            try:
+                os.closerange(3, min(jobs_r, ans_w))
+                for fd in range(min(jobs_r, ans_w) + 1, max(jobs_r, ans_w)):
+                    with contextlib.suppress(OSError):
+                        os.close(fd)
+                os.closerange(max(jobs_r, ans_w) + 1, _max_fd())
+                _child_loop(jobs_r, ans_w, self.policy)
+            except BaseException:  # noqa: BLE001 - the child must never return into the agent
+                code = 70
+            finally:
+                os._exit(code)
+        os.close(jobs_r)
+        os.close(ans_w)
+        self.pid, self.jobs_w, self.answers_r = pid, jobs_w, ans_r
+        self.forks += 1
+
+    def featurise(self, name: str, data: bytes, now: float | None, timeout_s: float):
+        """An ItemResult, a RejectedInput or a WorkerDied for one file (never raises for the file)."""
+        if not self.pid:
+            self._fork()
+        body = pickle.dumps((name, data, now, timeout_s))
+        try:
+            _write_all(self.jobs_w, _LEN.pack(len(body)) + body)
+            deadline = time.monotonic() + timeout_s
+            (n,) = _LEN.unpack(_read(self.answers_r, 4, deadline))
+            if n > MAX_ANSWER_BYTES:
+                raise EOFError
+            return _decode(name, _read(self.answers_r, n, deadline))
+        except TimeoutError:
+            self.close(kill=True)
+            return WorkerDied("reader_timeout", f"parsing took longer than {timeout_s:g} s; "
+                                                f"the reader process was stopped")
+        except (EOFError, OSError, ValueError, KeyError, TypeError):
+            self.close(kill=True)
+            return WorkerDied("reader_crashed", f"the reader process ended while parsing "
+                                                f"({_how(self.last_exit)})")
+
+    def close(self, kill: bool = False) -> None:
+        """Stop the child (closing its job pipe ends it; ``kill`` for one that may hang) and reap it."""
+        if not self.pid:
+            return
+        for fd in (self.jobs_w, self.answers_r):
+            with contextlib.suppress(OSError):
+                os.close(fd)
+        if kill:
+            with contextlib.suppress(OSError):
+                os.kill(self.pid, signal.SIGKILL)
+        self.last_exit = _exit_code(_reap_pid(self.pid))
+        self.pid, self.jobs_w, self.answers_r = 0, -1, -1
+
+
+def _child_loop(jobs_r: int, ans_w: int, policy) -> None:
+    from . import featurise
+
+    for sig in (signal.SIGALRM, signal.SIGTERM, signal.SIGINT):   # not the agent's handlers
+        signal.signal(sig, signal.SIG_DFL)
+
+    while True:
+        try:
+            head = _read_blocking(jobs_r, 4)
+        except EOFError:
+            return
+        (n,) = _LEN.unpack(head)
+        name, data, now, timeout_s = pickle.loads(_read_blocking(jobs_r, n))
+        signal.alarm(int(timeout_s) + 2)   # a hang ends the child even if the agent is gone
+        try:
+            res = featurise(name, data, policy, now=now)
+            ans = {"status": "ok", "kind": res.kind, "rows": res.rows, "warnings": list(res.warnings),
+                   "n_samples": int(res.n_samples), "dropped": dict(res.dropped),
+                   "t_start": res.t_start, "t_end": res.t_end}
+        except RejectedInput as e:
+            ans = {"status": "rejected", "reason": e.reason, "detail": e.detail}
+        except Exception as e:  # noqa: BLE001 - a reader bug is reported by its class
+            ans = {"status": "error", "error": type(e).__name__}
+        finally:
+            signal.alarm(0)
+        del data
+        body = json.dumps(ans, default=_plain).encode("utf-8")
+        _write_all(ans_w, _LEN.pack(len(body)) + body)
+
+
+def _read_blocking(fd: int, n: int) -> bytes:
+    buf = bytearray()
+    while len(buf) < n:
+        chunk = os.read(fd, n - len(buf))
+        if not chunk:
+            raise EOFError
+        buf += chunk
+    return bytes(buf)
+
+
+def _write_all(fd: int, data: bytes) -> None:
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
+class ForkedPool:
+    """One :class:`ForkedWorker` per featurising thread (taken and given back around each chunk)."""
+
+    def __init__(self, policy, n: int):
+        if int(n) < 1:
+            raise ValueError(f"n must be a positive number of reader processes, got {n!r}")
+        self._idle = [ForkedWorker(policy) for _ in range(int(n))]
+        self._all = list(self._idle)
+        self._lock = threading.Lock()
+
+    def run(self, jobs, now: float | None, timeout_s: float) -> list:
+        """Answers for ``[(name, data), ...]``, in order, from one worker."""
+        with self._lock:
+            w = self._idle.pop()
+        try:
+            return [w.featurise(name, data, now, timeout_s) for name, data in jobs]
+        finally:
+            with self._lock:
+                self._idle.append(w)
+
+    @property
+    def forks(self) -> int:
+        return sum(w.forks for w in self._all)
+
+    def close(self) -> None:
+        for w in self._all:
+            w.close()
