@@ -137,7 +137,8 @@ def split_bundle(data: bytes, source: str = "<bundle>") -> Parts:
         raise FormatVersionError(f"{source}: bundle format version {version} is newer than this lethe reads "
                                  f"(version {FORMAT_VERSION}); upgrade lethe to open it")
     if version != FORMAT_VERSION:
-        raise DataError(f"{source}: bundle format version {version} is not supported (this lethe reads {FORMAT_VERSION})")
+        raise DataError(f"{source}: bundle format version {version} is not supported "
+                        f"(this lethe reads {FORMAT_VERSION})")
     pos = 10
 
     def take(n, what):

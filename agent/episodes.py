@@ -26,8 +26,8 @@ import bisect
 import math
 import time as _time
 from collections import Counter
-from datetime import date, datetime, timezone, tzinfo
-from typing import Iterable, Mapping, Sequence
+from datetime import date, datetime, tzinfo, UTC
+from collections.abc import Iterable, Mapping, Sequence
 from zoneinfo import ZoneInfo
 
 from .errors import LetheError
@@ -161,7 +161,7 @@ def episodes_from_codes(coded: Sequence[Mapping], moods: Sequence[Mapping], *, t
     # one hour of slack each side: hours are at most 2 h long (DST) and start on the grid
     starts = local_hour_starts(tz, span[0] - 7200, span[1] + 7200)
     out = []
-    for (t0, loc), nxt in zip(starts, starts[1:] + [None]):
+    for (t0, loc), nxt in zip(starts, starts[1:] + [None], strict=False):
         t1 = nxt[0] if nxt is not None else t0 + 3600
         if nxt is None or t1 > now:
             break  # the last start has no known end inside the span; incomplete hours wait
@@ -242,7 +242,7 @@ def _parse_time(value) -> float | None:
     except ValueError:
         return None
     if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
+        dt = dt.replace(tzinfo=UTC)
     return dt.timestamp()
 
 
@@ -300,10 +300,10 @@ def build_episodes(home, policy, vault, now: float | None = None) -> list[dict]:
         # (a local hour lasts at most 2 h, so a row ending 2 h before the
         # settled line only touches settled hours)
         cutoff = settled_before
-        for rid, r in zip(coded_rids, coded):
+        for rid, r in zip(coded_rids, coded, strict=False):
             if float(r["t_end"]) + 7200 <= cutoff:
                 vault.delete("coded", rid)
-        for rid, m in zip(mood_rids, moods):
+        for rid, m in zip(mood_rids, moods, strict=False):
             if float(m["t"]) + window_s + 3600 <= cutoff:
                 vault.delete("mood_reports", rid)
     return load_episodes(vault)

@@ -17,7 +17,8 @@ import datetime as _dt
 import math
 import re
 import secrets
-from typing import Any, Callable, Iterable, Mapping, Sequence
+from typing import Any
+from collections.abc import Callable, Iterable, Mapping, Sequence
 
 from . import contracts
 from .errors import DataError, LetheError
@@ -37,7 +38,7 @@ _WEEK = re.compile(r"^\d{4}-W\d{2}$")
 def coarse_date(now: float | None, granularity: str, tz=None) -> str:
     """``"2026-12-01"`` (day) or ISO week ``"2026-W49"`` (week) of ``now`` in ``tz`` (UTC default)."""
     t = _dt.datetime.fromtimestamp(_dt.datetime.now().timestamp() if now is None else float(now),
-                                   tz or _dt.timezone.utc)
+                                   tz or _dt.UTC)
     if granularity == "day":
         return t.date().isoformat()
     if granularity == "week":
@@ -69,7 +70,7 @@ class Relabeller:
         self.changed = False
 
     @classmethod
-    def from_vault(cls, vault) -> "Relabeller":
+    def from_vault(cls, vault) -> Relabeller:
         maps = {}
         for kind in RELABELLED:
             rec = vault.get(RELABEL_TABLE, kind)

@@ -198,10 +198,7 @@ def summarise(policy) -> PolicySummary:
         content.append("the fitted settings of the memory model")
     if e.include_quiz_summary:
         content.append("a summary of your quiz scores")
-    if e.cadence_days > 0:
-        when = f"About every {fmt_days(e.cadence_days)}"
-    else:
-        when = "Only when an export is started"
+    when = f"About every {fmt_days(e.cadence_days)}" if e.cadence_days > 0 else "Only when an export is started"
     leaves = [
         f"{when}, one sealed package that only the study's key can open, holding "
         f"{_join(content)}.",

@@ -40,11 +40,12 @@ from __future__ import annotations
 import hmac
 import json
 import os
+import contextlib
 import sqlite3
 import threading
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Iterable, Iterator
+from collections.abc import Iterable, Iterator
 
 from cryptography.exceptions import InvalidTag
 from cryptography.hazmat.primitives import hashes
@@ -125,7 +126,7 @@ def _aad(table: str, addr: bytes) -> bytes:
 
 
 def _legacy_aad(table: str, rid: str) -> bytes:
-    return f"{table}\0{rid}".encode("utf-8")
+    return f"{table}\0{rid}".encode()
 
 
 class Vault:
@@ -163,7 +164,7 @@ class Vault:
         self._legacy_key = None
 
     @classmethod
-    def open(cls, home=None, passphrase: bytes | None = None) -> "Vault":
+    def open(cls, home=None, passphrase: bytes | None = None) -> Vault:
         """Open (creating if needed) the vault of a home, with the home's keystore."""
         from .keystore import Keystore
 
@@ -239,10 +240,8 @@ class Vault:
                 self._check_current(db)
             db.execute("COMMIT")
         except BaseException:
-            try:
+            with contextlib.suppress(sqlite3.Error):  # the original error is the one to report
                 db.execute("ROLLBACK")
-            except sqlite3.Error:  # pragma: no cover - the original error is the one to report
-                pass
             raise
         if self.migrated:
             # The first layout's rids may survive in freed pages and in the WAL:
@@ -312,7 +311,7 @@ class Vault:
 
     # -- sealing -------------------------------------------------------------
     def _addr(self, table: str, rid: str) -> bytes:
-        return hmac.digest(self._addr_key, f"{table}\0{rid}".encode("utf-8"), "sha256")
+        return hmac.digest(self._addr_key, f"{table}\0{rid}".encode(), "sha256")
 
     def _seal_bytes(self, table: str, rid: str, addr: bytes, data: bytes) -> tuple[bytes, bytes]:
         nonce = os.urandom(NONCE_BYTES)
@@ -465,7 +464,7 @@ class Vault:
                     (table, last, _PAGE)).fetchall()
             if not rows:
                 return
-            for seq, addr, nonce, ct in rows:
+            for _seq, addr, nonce, ct in rows:
                 yield self._open(table, addr, nonce, ct)
             last = rows[-1][0]
 

@@ -75,7 +75,8 @@ def fmt_s(x) -> str:
 
 
 def table(header: list[str], rows: list[list], num_cols=(), cls: str = "") -> str:
-    out = [f'<table class="{cls}">' if cls else "<table>", "<tr>" + "".join(f"<th>{esc(h)}</th>" for h in header) + "</tr>"]
+    out = [f'<table class="{cls}">' if cls else "<table>",
+           "<tr>" + "".join(f"<th>{esc(h)}</th>" for h in header) + "</tr>"]
     for row in rows:
         cells = []
         for i, c in enumerate(row):
@@ -177,7 +178,7 @@ def plot_exports(exports: list, path: Path) -> None:
     fig = figure()
     ax = fig.add_subplot()
     if exports:
-        ts = [dt.datetime.fromtimestamp(e["t"], dt.timezone.utc) for e in exports]
+        ts = [dt.datetime.fromtimestamp(e["t"], dt.UTC) for e in exports]
         ax.step(ts, range(1, len(ts) + 1), where="post", color="#4c78a8")
         ax.plot(ts, range(1, len(ts) + 1), "o", color="#4c78a8")
         ax.set_ylabel("exports so far")

@@ -122,7 +122,7 @@ class PlaceCodebook:
         d = haversine_m(lat[:, None], lon[:, None], plat[None, :], plon[None, :])
         j = d.argmin(axis=1)
         dist = d[np.arange(len(lat)), j]
-        ids = [act[k]["id"] if dd <= self.radius_m else None for k, dd in zip(j.tolist(), dist.tolist())]
+        ids = [act[k]["id"] if dd <= self.radius_m else None for k, dd in zip(j.tolist(), dist.tolist(), strict=False)]
         return ids, dist
 
     # -- the refit --
@@ -169,7 +169,7 @@ class PlaceCodebook:
             vote_m = np.array([[votes[ci].get(pid, 0) for pid in act_ids] for ci in range(len(clusters))])
             cost = np.where(allowed, d - 1e3 * self.radius_m * np.minimum(vote_m, 1), 1e12)
             rows, cols = linear_sum_assignment(cost)
-            for r, c in zip(rows.tolist(), cols.tolist()):
+            for r, c in zip(rows.tolist(), cols.tolist(), strict=False):
                 if allowed[r, c]:
                     match[r] = act_ids[c]
 

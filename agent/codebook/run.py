@@ -147,7 +147,7 @@ def run_codebook(home, policy, vault, now: float | None = None, *, ledger=None) 
     stays.sort(key=lambda kv: float(kv[1]["t_start"]))
     ids = place.update([s for _, s in stays], now=now) if stays else []
     pending = 0
-    for (rid, s), pid in zip(stays, ids):
+    for (rid, s), pid in zip(stays, ids, strict=False):
         if pid is not None:
             new_coded.append((rid, {"kind": "place", "t": float(s["t_start"]), "t_end": float(s["t_end"]),
                                     "id": pid}))
@@ -170,7 +170,7 @@ def run_codebook(home, policy, vault, now: float | None = None, *, ledger=None) 
                 report.problems.append(f"sound refit skipped: {e}")
     uncoded = [(rid, a) for rid, a in audio if rid not in coded_rids]
     if sound.fitted and uncoded:
-        for (rid, a), sid in zip(uncoded, sound.assign([a["vec"] for _, a in uncoded])):
+        for (rid, a), sid in zip(uncoded, sound.assign([a["vec"] for _, a in uncoded]), strict=False):
             new_coded.append((rid, {"kind": "sound", "t": float(a["t"]), "t_end": float(a["t"]) + snippet_s,
                                     "id": sid}))
             coded_rids.add(rid)
@@ -202,7 +202,7 @@ def run_codebook(home, policy, vault, now: float | None = None, *, ledger=None) 
             elif motion.fitted and wins:
                 labels = motion.assign([motion_features(w) for w in wins])
             if labels is not None:
-                for i, (w, lab) in enumerate(zip(wins, labels)):
+                for i, (w, lab) in enumerate(zip(wins, labels, strict=False)):
                     new_coded.append((f"{rid}:{i}", {"kind": "motion", "t": float(w[0]),
                                                      "t_end": float(w[0]) + window_s, "id": lab}))
                     coded_rids.add(f"{rid}:{i}")

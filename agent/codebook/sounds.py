@@ -133,7 +133,7 @@ class CentroidCodebook:
             oz = (np.array([c["centroid"] for c in old]) - scaler.mean_) / scale
             d = np.sqrt(((cz[:, None, :] - oz[None, :, :]) ** 2).mean(axis=2))  # RMS per dimension
             rows, cols = linear_sum_assignment(np.where(d <= CENTROID_GATE_SD, d, 1e6))
-            for r, c in zip(rows.tolist(), cols.tolist()):
+            for r, c in zip(rows.tolist(), cols.tolist(), strict=False):
                 if d[r, c] <= CENTROID_GATE_SD:
                     match[r] = old[c]["id"]
         # new classes ordered by size (largest first) so IDs do not depend on k-means' label order

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
 from datetime import time as dtime
 from pathlib import Path
-from typing import Iterable
+from collections.abc import Iterable
 
 import numpy as np
 
@@ -198,7 +198,7 @@ class Timeline:
                 "sick_days": self.sick_days, "segments": self.segments}
 
     @classmethod
-    def from_dict(cls, d: dict, source: str = "<memory>") -> "Timeline":
+    def from_dict(cls, d: dict, source: str = "<memory>") -> Timeline:
         if d.get("format") != TRUTH_FORMAT or d.get("version") != TRUTH_VERSION:
             raise DataError(f"{source}: not a {TRUTH_FORMAT} version {TRUTH_VERSION} file")
         sc = Scenario.from_dict(d["scenario"], f"{source}#scenario")

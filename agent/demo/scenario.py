@@ -18,7 +18,8 @@ import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
+from collections.abc import Mapping
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -125,7 +126,7 @@ class Scenario:
     _latlon: dict = field(default_factory=dict, repr=False)
 
     @classmethod
-    def load(cls, path=None) -> "Scenario":
+    def load(cls, path=None) -> Scenario:
         """Read and validate a scenario file (default: the bundled demo scenario)."""
         path = Path(path) if path is not None else default_scenario_path()
         try:
@@ -141,7 +142,7 @@ class Scenario:
         return cls.from_dict(raw, str(path))
 
     @classmethod
-    def from_dict(cls, raw: dict, source: str = "<memory>") -> "Scenario":
+    def from_dict(cls, raw: dict, source: str = "<memory>") -> Scenario:
         return _validate(raw, source)
 
     @property

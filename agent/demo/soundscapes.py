@@ -178,7 +178,7 @@ class _Ctx:
     def decay_tone(self, freqs_hz, decay_s, length_s):
         tt = np.arange(int(length_s * self.sr)) / self.sr
         ph = self.rng.uniform(0, 2 * np.pi, len(freqs_hz))
-        w = sum(np.sin(2 * np.pi * fr * tt + p) for fr, p in zip(freqs_hz, ph))
+        w = sum(np.sin(2 * np.pi * fr * tt + p) for fr, p in zip(freqs_hz, ph, strict=False))
         return w * np.exp(-tt / decay_s)
 
     def burst(self, lo_hz, hi_hz, decay_s, length_s):

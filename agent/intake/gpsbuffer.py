@@ -88,7 +88,7 @@ def fold(vault, policy, now: float | None = None) -> FoldReport:
         for s in stays:
             if vault.put(STAYS, stay_rid(s), _stay_payload(s)):
                 rep.stays_new += 1
-        drop = [rid for (rid, _), f in zip(buffered, fixes)
+        drop = [rid for (rid, _), f in zip(buffered, fixes, strict=False)
                 if id(f) not in left_ids or float(f["t"]) < cutoff]
         if drop:
             rep.fixes_deleted = vault.delete_many(FIXES, drop)

@@ -147,11 +147,8 @@ class RankOneSolver:
         """
         rows = np.asarray(rows, dtype=np.int64)
         st = self.state(cue_idx, cue_w, beta)
-        if self.n == 0:
-            act = np.zeros(rows.shape)
-        else:
-            # batched matrix-vector products (BLAS) rather than einsum's loop
-            act = np.matmul(self.u_ext[rows], st.coef[:, :, None])[:, :, 0]
+        # batched matrix-vector products (BLAS) rather than einsum's loop
+        act = np.zeros(rows.shape) if self.n == 0 else np.matmul(self.u_ext[rows], st.coef[:, :, None])[:, :, 0]
         return (act, st.mu) if return_mu else act
 
     def state(self, cue_idx, cue_w, beta: float) -> TrialState:

@@ -134,7 +134,7 @@ def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.da
                              f"is {pub['key_fingerprint']}; refusing to approve it on this card")
     fps = list(dict.fromkeys(p.fingerprint for p in pols))
     contact = contact if contact is not None else pols[0].study.contact
-    issued = (issued or _dt.datetime.now(_dt.timezone.utc).date()).isoformat()
+    issued = (issued or _dt.datetime.now(_dt.UTC).date()).isoformat()
     card = StudyCard(pub["study_id"], pub["suite"], pub["public_key"], pub["key_fingerprint"],
                      tuple(fps), contact, pols[0].study.consent_text, issued)
     if server_url is not None or server_pin is not None:
@@ -215,7 +215,7 @@ def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, 
     """
     check_policy_approved(card, policy)
     pub = _raw_public(device_private_key)
-    created = (created or _dt.datetime.now(_dt.timezone.utc).date()).isoformat()
+    created = (created or _dt.datetime.now(_dt.UTC).date()).isoformat()
     doc = {"format": ENROLMENT_FORMAT, "version": ENROLMENT_VERSION, "study_id": card.study_id,
            "pseudonym": pseudonym, "device_public_key": b64e(pub), "device_key_id": device_key_id(pub),
            "policy_fingerprint": policy.fingerprint, "created": created}

@@ -143,7 +143,7 @@ class StudyKeyPair:
     private_bytes: bytes
 
     @classmethod
-    def generate(cls, study_id: str, suite: str = "default") -> "StudyKeyPair":
+    def generate(cls, study_id: str, suite: str = "default") -> StudyKeyPair:
         from cryptography.hazmat.primitives.asymmetric.x25519 import X25519PrivateKey
 
         if suite not in SUITES:
@@ -210,7 +210,8 @@ def decrypt_private_key(doc: dict, passphrase: bytes, source="<study key>") -> S
     from cryptography.hazmat.primitives.ciphers.aead import AESGCM
 
     if not isinstance(doc, dict) or doc.get("format") != KEY_FORMAT:
-        raise DataError(f"{source}: not a lethe study key file (format {doc.get('format') if isinstance(doc, dict) else None!r})")
+        fmt = doc.get("format") if isinstance(doc, dict) else None
+        raise DataError(f"{source}: not a lethe study key file (format {fmt!r})")
     if doc.get("version") != KEY_VERSION:
         raise DataError(f"{source}: study key file version {doc.get('version')!r} is not supported "
                         f"(this lethe reads version {KEY_VERSION})")
@@ -236,7 +237,8 @@ def decrypt_private_key(doc: dict, passphrase: bytes, source="<study key>") -> S
     try:
         private = AESGCM(kek).decrypt(nonce, ct, aad)
     except InvalidTag:
-        raise IntegrityError(f"{source}: cannot open the study key: wrong passphrase, or the file was altered") from None
+        raise IntegrityError(f"{source}: cannot open the study key: wrong passphrase, "
+                             f"or the file was altered") from None
     pair = StudyKeyPair(doc["study_id"], doc["suite"], public, private)
     if len(private) != PRIVATE_KEY_BYTES[pair.suite]:
         raise IntegrityError(f"{source}: decrypted private key has the wrong length")

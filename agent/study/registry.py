@@ -64,7 +64,7 @@ class Registry:
     received_dir = property(lambda self: self.study_dir / "received")
 
     @classmethod
-    def load(cls, study_dir) -> "Registry":
+    def load(cls, study_dir) -> Registry:
         study_dir = Path(study_dir)
         p = study_dir / "registry.json"
         if not p.exists():

@@ -31,11 +31,11 @@ WITHDRAWAL_VERSION = 1
 
 def _minute_utc(now) -> str:
     if now is None:
-        t = _dt.datetime.now(_dt.timezone.utc)
+        t = _dt.datetime.now(_dt.UTC)
     elif isinstance(now, (int, float)):
-        t = _dt.datetime.fromtimestamp(now, _dt.timezone.utc)
+        t = _dt.datetime.fromtimestamp(now, _dt.UTC)
     else:
-        t = now.astimezone(_dt.timezone.utc)
+        t = now.astimezone(_dt.UTC)
     return t.strftime("%Y-%m-%dT%H:%MZ")
 
 
