@@ -23,7 +23,7 @@ from .rivals import model_and_rivals
 from .design import TrialDesign, as_model_graph, cue_kind_weights
 
 DEFAULT_FOLDS = 5
-DEFAULT_RESTARTS = 2
+DEFAULT_RESTARTS = 1
 DEFAULT_RECOVERY_SIMS = 30
 LABELS = {"model": "cue-biased eigenvector", **RIVAL_LABELS}
 
