@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import json
 import os
-import stat
 from contextlib import contextmanager, suppress
 from pathlib import Path
 
@@ -154,31 +153,18 @@ class Home:
 
 
 def overwrite_and_unlink(path: Path) -> None:
-    """Best-effort overwrite with zeros, then unlink.  Never follows a symlink.
+    """Best-effort overwrite with zeros, then unlink, through :mod:`agent.destroy` (the one safe way).
 
-    Overwriting is not guaranteed erasure on flash storage, journaling or
-    copy-on-write filesystems, snapshots or backups (NIST SP 800-88).
+    The folder holding ``path`` is opened without following a link, the file
+    is checked with ``fstat`` before writing, only its allocated data are
+    overwritten (at most 1 GiB; larger files are only unlinked), and a symlink
+    is removed, never followed.  Overwriting is not guaranteed erasure on flash
+    storage, journaling or copy-on-write filesystems, snapshots or backups
+    (NIST SP 800-88).
     """
-    path = Path(path)
+    from .destroy import destroy_path
+
     try:
-        st = os.lstat(path)
+        destroy_path(path, max_bytes=1 << 30)
     except FileNotFoundError:
         return
-    if stat.S_ISREG(st.st_mode) and st.st_nlink == 1 and st.st_size:
-        try:
-            fd = os.open(path, os.O_WRONLY | os.O_NOFOLLOW)
-        except OSError:
-            fd = None
-        if fd is not None:
-            try:
-                chunk = b"\0" * min(st.st_size, 1 << 20)
-                left = st.st_size
-                while left > 0:
-                    n = os.write(fd, chunk[: min(left, len(chunk))])
-                    left -= n
-                os.fsync(fd)
-            except OSError:
-                pass
-            finally:
-                os.close(fd)
-    os.unlink(path)
