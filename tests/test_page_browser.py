@@ -3,8 +3,9 @@
 The page is served by a real running agent (``lethe run`` in a subprocess),
 opened with the link ``lethe open --print-url`` prints, as a volunteer would.
 Every step checks what the page says *and* what happened on disk (vault, inbox,
-outbox, ledger).  Screenshots of every page go to ``docs/figures/page-*.png``
-for ``docs/participant.md``.
+outbox, ledger).  Screenshots of every page go to a temporary folder; with
+``LETHE_UPDATE_SCREENSHOTS=1`` they replace ``docs/figures/page-*.png`` for
+``docs/participant.md`` (a plain test run leaves the work tree untouched).
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import os
 import shutil
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -21,12 +23,14 @@ import pytest
 from page_home import STUDY_ID, make_page_home
 
 REPO = Path(__file__).resolve().parent.parent
-FIGURES = REPO / "docs" / "figures"
+FIGURES = (REPO / "docs" / "figures" if os.environ.get("LETHE_UPDATE_SCREENSHOTS") == "1"
+           else Path(tempfile.gettempdir()) / "lethe-page-screenshots")
 CHROMIUM, CHROMEDRIVER = "/usr/bin/chromium", "/usr/bin/chromedriver"
 
 pytestmark = [
     pytest.mark.slow,
-    pytest.mark.skipif(not (os.path.exists(CHROMIUM) and os.path.exists(CHROMEDRIVER)),
+    pytest.mark.skipif(not (os.path.exists(CHROMIUM) and os.path.exists(CHROMEDRIVER))
+                       and os.environ.get("LETHE_CI_SERVICES") != "1",
                        reason="Debian chromium and chromium-driver are not installed (.ci/services installs them)"),
 ]
 
