@@ -38,6 +38,7 @@ import hmac
 import json
 import os
 import re
+from typing import Any
 from pathlib import Path
 
 from cryptography.exceptions import InvalidTag
@@ -240,7 +241,7 @@ class Keystore:
                  storage: str | None = None):
         self.home = home if isinstance(home, Home) else Home(home)
         if passphrase is None and os.environ.get(PASSPHRASE_ENV):
-            passphrase = os.environ[PASSPHRASE_ENV]
+            passphrase = os.environ[PASSPHRASE_ENV].encode("utf-8")
         self._passphrase = _as_passphrase(passphrase)
         if storage is None:
             if self._passphrase is not None:
@@ -255,7 +256,7 @@ class Keystore:
             raise UsageError("key storage 'passphrase' needs a passphrase (or LETHE_KEY_PASSPHRASE)")
         self.storage = storage
         self._use_keyring = storage == "keyring"
-        self._cache: dict[str, object] = {}
+        self._cache: dict[str, Any] = {}
 
     keys_dir = property(lambda self: self.home.keys)
 
@@ -305,7 +306,8 @@ class Keystore:
                 kdf = {"n": SCRYPT_N, "r": SCRYPT_R, "p": SCRYPT_P, "salt": os.urandom(SALT_BYTES).hex()}
                 write_private(self.keys_dir / DEVICE_KDF_FILE,
                               json.dumps({"v": KEYFILE_VERSION, "kdf": kdf}, sort_keys=True).encode() + b"\n")
-                enc = serialization.BestAvailableEncryption(self._pem_password(kdf))
+                enc: serialization.KeySerializationEncryption = serialization.BestAvailableEncryption(
+                    self._pem_password(kdf))
             else:
                 enc = serialization.NoEncryption()
             write_private(priv, key.private_bytes(serialization.Encoding.PEM,
@@ -346,6 +348,8 @@ class Keystore:
 
     # -- passphrase wrap -----------------------------------------------------
     def _kek(self, salt: bytes, n: int, r: int, p: int) -> bytes:
+        if self._passphrase is None:
+            raise PassphraseError(f"{self.keys_dir}: a passphrase is needed for these key files")
         return derive_kek(self._passphrase, salt, n=n, r=r, p=p)
 
     def _pem_password(self, kdf: dict) -> bytes:
@@ -440,15 +444,15 @@ class Keystore:
             except (ValueError, KeyError, TypeError):
                 raise IntegrityError(f"{kdf_path}: damaged key-derivation parameters") from None
         try:
-            key = serialization.load_pem_private_key(pem, password=password)
+            loaded = serialization.load_pem_private_key(pem, password=password)
         except ValueError:
             if encrypted:
                 raise PassphraseError(f"{path}: wrong passphrase (or the key file was altered)") from None
             raise IntegrityError(f"{path}: damaged device key (not a PKCS8 PEM key)") from None
-        if not isinstance(key, Ed25519PrivateKey):
+        if not isinstance(loaded, Ed25519PrivateKey):
             raise IntegrityError(f"{path}: not an Ed25519 key")
-        self._cache["device"] = key
-        return key
+        self._cache["device"] = loaded
+        return loaded
 
     def _device_from_keyring(self, path: Path, data: bytes) -> Ed25519PrivateKey:
         try:

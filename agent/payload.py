@@ -115,7 +115,7 @@ def _num(v) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def _numeric_map(d) -> dict:
+def _numeric_map(d) -> dict[str, Any]:
     """Flatten one level of metrics into ``{name: number}``.
 
     A number stays as it is; an interval record ``{"value", "k", "ci": [lo, hi]}``
@@ -160,7 +160,7 @@ def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
         n = _num(v)
         if a in kinds and b in kinds and n is not None:
             theta[f"{a}|{b}"] = n
-    out_params = {"theta": theta}
+    out_params: dict[str, Any] = {"theta": theta}
     for k in ("beta", "tau"):
         out_params[k] = _num(params.get(k))
     ref = params.get("reference_pair")

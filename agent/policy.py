@@ -83,6 +83,8 @@ DEFAULT_EMOTIONS: tuple[str, ...] = tuple(SCHEMA["schedule"]["emotions"].default
 class Policy:
     """A validated policy.  Sections are frozen dataclasses: ``policy.retention.raw_seconds``."""
 
+    _resolved: dict[str, dict]
+    source: str
     policy: types.PolicySection
     study: types.StudySection
     schedule: types.ScheduleSection

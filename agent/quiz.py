@@ -66,7 +66,7 @@ def cue_text(episode: dict) -> str:
             f"between {start.hour:02d}:00 and {end_hour:02d}:00")
     if episode.get("repeated_hour"):
         off = start.utcoffset()
-        mins = int(off.total_seconds() // 60)
+        mins = int(off.total_seconds() // 60) if off is not None else 0
         sign = "+" if mins >= 0 else "-"
         text += f" (clock time UTC{sign}{abs(mins) // 60:02d}:{abs(mins) % 60:02d})"
     return text

@@ -155,10 +155,10 @@ class Vault:
         self.path = Path(path)
         aead_key, self._addr_key = derive_keys(key)
         self._aead = AESGCM(aead_key)
-        self._legacy_key = bytes(key)  # only to read a first-layout file once, while migrating it
+        self._legacy_key: bytes | None = bytes(key)  # only to read a first-layout file once, while migrating it
         self._lock = threading.RLock()
         self._depth = 0
-        self._db = None
+        self._db: sqlite3.Connection | None = None
         self.migrated = 0  # records rewritten from the first layout by this open
         self._connect()
         self._legacy_key = None
@@ -278,6 +278,7 @@ class Vault:
         Each row is opened with its old associated data before it is resealed, so
         an altered old file fails here, naming the record, and nothing changes.
         """
+        assert self._legacy_key is not None  # set by open() for a first-layout file
         legacy = AESGCM(self._legacy_key)
         db.execute(_SCHEMA.replace("CREATE TABLE records", "CREATE TABLE records_v2"))
         cur = db.execute("SELECT seq, tbl, rid, nonce, ct FROM records ORDER BY seq")

@@ -140,7 +140,7 @@ KEY_INFO: dict[str, KeyInfo] = {key: KeyInfo(key, phrase) for key, phrase in PHR
 def type_words(field: Field) -> str:
     t = field.spec.get("type")
     return {"number": "number", "integer": "integer", "string": "string", "boolean": "boolean",
-            "array": "list of strings"}.get(t, str(t))
+            "array": "list of strings"}.get(str(t), str(t))
 
 
 def default_words(field: Field) -> str:

@@ -16,9 +16,13 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 from ..errors import EXIT_FAILURE, EXIT_INTEGRITY, EXIT_OK, LetheError, PolicyError
 from ..home import Home
+
+if TYPE_CHECKING:
+    from ..ledger.verify import LedgerReport
 
 KIND_ORDER = ("audio", "gps", "accel", "mood", "unknown")
 
@@ -90,7 +94,7 @@ class VerifyResult:
         last ``policy`` event in the ledger.
     """
 
-    report: object
+    report: LedgerReport
     home: str
     policy_name: str | None = None
     policy_fingerprint: str | None = None

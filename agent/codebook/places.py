@@ -147,11 +147,11 @@ class PlaceCodebook:
         act_ids = [p["id"] for p in act]
         clusters = sorted(set(labels.tolist()) - {-1})
         # order clusters by their earliest stay so new IDs follow time, not input order
-        t_first = {c: min(float(stays[i].get("t_start", 0.0)) for i in np.flatnonzero(labels == c))
+        t_first = {c: min(float(stays[int(i)].get("t_start", 0.0)) for i in np.flatnonzero(labels == c))
                    for c in clusters}
         clusters.sort(key=lambda c: (t_first[c],) + spherical_mean(lat[labels == c], lon[labels == c]))
         cent = [spherical_mean(lat[labels == c], lon[labels == c]) for c in clusters]
-        votes = [Counter(near[i] for i in np.flatnonzero(labels == c) if near[i] is not None)
+        votes: list[Counter[str]] = [Counter(str(near[i]) for i in np.flatnonzero(labels == c) if near[i] is not None)
                  for c in clusters]
 
         match: dict[int, str] = {}

@@ -71,7 +71,7 @@ def _motion_state(policy, motion, sizes: Counter, prev) -> dict:
         d["method"] = "kmeans"
         return d
     old = dict(prev or {})
-    n = Counter(old.get("sizes", {}))
+    n: Counter = Counter(old.get("sizes", {}))
     n.update(sizes)
     return {"kind": "motion", "method": "enmo_cutpoints", "ids": list(MOTION_BANDS),
             "cutpoints_mg": {"sedentary_below": ENMO_SEDENTARY_MG, "mvpa_from": ENMO_MVPA_MG},

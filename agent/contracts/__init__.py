@@ -159,7 +159,7 @@ def _item(path) -> int | None:
 
 def _type_words(t, syntax: str) -> str:
     ts = t if isinstance(t, list) else [t]
-    return " or ".join("a table" if x == "object" and syntax == "toml" else _TYPE_WORDS.get(x, x) for x in ts)
+    return " or ".join("a table" if x == "object" and syntax == "toml" else _TYPE_WORDS.get(x, str(x)) for x in ts)
 
 
 def _show(value) -> str:

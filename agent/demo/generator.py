@@ -32,7 +32,7 @@ import numpy as np
 from ..errors import DataError
 from ..fsutil import atomic_write
 from ..intake.readers.gps import nmea_checksum
-from .scenario import Scenario, destination, offset_latlon
+from .scenario import Activity, Scenario, destination, offset_latlon
 from .soundscapes import synthesize
 
 __all__ = ["Scenario", "Timeline", "simulate_days", "write_day", "write_days", "write_truth",
@@ -169,7 +169,7 @@ class Timeline:
                     share[s["place_id"]] = share.get(s["place_id"], 0.0) + o
         if not share or sum(share.values()) < (t1 - t0) / 3.0:
             return None
-        return max(share, key=share.get)
+        return max(share, key=lambda p: share[p])
 
     def true_positions_m(self, t, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
         """True east/north (metres from the origin) at each time; visits wander inside the place."""
@@ -301,11 +301,12 @@ class _Walker:
         return arrive
 
 
-def _plan_day(sc: Scenario, rng, day: date) -> list[tuple[float, float, object]]:
+def _plan_day(sc: Scenario, rng, day: date) -> list[tuple[float, float, Activity]]:
     """Activities happening today as (start, duration, activity), by start time."""
     ir = sc.irregularity
     weekday = day.weekday()
-    chosen, groups = [], {}
+    chosen: list = []
+    groups: dict = {}
     for a in sc.routine:
         if weekday not in a.days:
             continue
@@ -672,7 +673,7 @@ def accel_signal(modes: np.ndarray, t: np.ndarray, r: np.random.Generator, rate_
             e = 0.03 * r.standard_normal((n, 3))
         elif m == "cycle":
             f = r.uniform(1.1, 1.5)
-            ph = r.uniform(0, 2 * np.pi)
+            ph = r.uniform(0, 2 * np.pi, 1)[0]
             # a phone in a trouser pocket follows the thigh: one swing per pedal turn
             v = 0.14 * np.sin(2 * np.pi * f * tt + ph) + 0.04 * np.sin(4 * np.pi * f * tt)
             fw = 0.12 * np.sin(2 * np.pi * f * tt + ph + 1.0)

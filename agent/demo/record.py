@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
+from typing import Any
 
 from ..errors import StateError
 from ..home import Home
@@ -56,7 +57,7 @@ def record(home, days: int = 14, seed: int = 7, *, wait_s: float = 60.0, say=pri
     timeline = simulate_days(Scenario.load(), now - (days + 1) * DAY_S, days, seed)
     home.update_config(enrolled_at=float(timeline.start_utc), simulated=True)
     truth = write_truth(timeline, home.state / "demo-truth.json")
-    totals = {"files": 0, "drained_here": 0}
+    totals: dict[str, Any] = {"files": 0, "drained_here": 0}
     for day in range(days):
         files = write_day(timeline, day, home.inbox, policy, seed)
         totals["files"] += len(files)

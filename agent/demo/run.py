@@ -19,6 +19,7 @@ import sys
 import tempfile
 import time
 from dataclasses import dataclass, field
+from typing import Any
 from pathlib import Path
 
 DEMO_PASSPHRASE = b"harbour-days demo only"  # the researcher's study key passphrase in the demo
@@ -30,10 +31,10 @@ class DemoContext:
     days: int
     seed: int
     policy_path: Path
-    out: object = sys.stdout
+    out: Any = sys.stdout
     started: float = field(default_factory=time.monotonic)
     facts: dict = field(default_factory=dict)
-    server: object = None  # the study server (agent.study.server.run.ServerThread) while the demo runs
+    server: Any = None  # the study server (agent.study.server.run.ServerThread) while the demo runs
 
     @property
     def study_dir(self) -> Path:
@@ -116,6 +117,7 @@ def researcher_setup(ctx: DemoContext) -> None:
     ctx.facts.update(server_url=server.url, dashboard=f"{server.url}/dashboard", dashboard_password=password,
                      server_pin=server.pin)
     ctx.facts["card"] = str(card)
+    assert server.ctx is not None  # set once the server thread is constructed
     ctx.facts["invitation"] = server.ctx.store.invite(1, "demo participant")[0]
     ctx.say(f"Created the study key pair (HPKE, X25519) in {ctx.study_dir / 'keys'}, started the study server at "
             f"{server.url} (self-signed certificate, SHA-256 pin {server.pin[:16]}...), and wrote the study card "
@@ -331,6 +333,7 @@ def export_bundle_step(ctx: DemoContext) -> None:
         return True
 
     path = export_bundle(home, policy, now=_now(ctx), confirm=confirm)
+    assert path is not None  # confirm() above always says yes
     ctx.facts["bundle"] = str(path)
     ctx.say(shown.get("text", "").rstrip())
     ctx.say(f"The participant confirmed; sealed and signed bundle: {path.name} ({path.stat().st_size} bytes), "

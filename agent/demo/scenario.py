@@ -18,7 +18,7 @@ import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 from collections.abc import Mapping
 from zoneinfo import ZoneInfo
 
@@ -181,7 +181,7 @@ def clock_minutes(v: str) -> float:
     return int(h) * 60.0 + int(m)
 
 
-def _fail(source, key, msg):
+def _fail(source, key, msg) -> NoReturn:
     raise DataError(f"{source}: [{key}] {msg}")
 
 
@@ -228,7 +228,7 @@ def _validate(raw: dict, source: str) -> Scenario:
         "night_start_min": clock_minutes(ir["night_start"]), "night_end_min": clock_minutes(ir["night_end"]),
     }
     md = raw["mood"]
-    mood = {
+    mood: dict[str, Any] = {
         "noise_sd": float(md["noise_sd"]), "skip_probability": float(md["skip_probability"]),
         "response_delay_minutes_max": float(md["response_delay_minutes_max"]),
         "prompt_start_min": clock_minutes(md["prompt_start"]), "prompt_end_min": clock_minutes(md["prompt_end"]),

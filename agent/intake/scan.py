@@ -108,7 +108,9 @@ def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float):
     ``raw_seconds`` (to be destroyed unread).  ``settling`` are files still
     being written; ``waiting`` are unfinished names still inside the window.
     """
-    ready, settling, waiting = [], [], []
+    ready: list = []
+    settling: list = []
+    waiting: list = []
     for name, lst in walk(inbox):
         why = unfinished_reason(name)
         c = Candidate(name, lst, complete_time(lst, judged_at), unread=why)

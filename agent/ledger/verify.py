@@ -575,7 +575,7 @@ def _hex32(v) -> bytes | None:
     return None
 
 
-def verify_log_continuity(previous: dict | None, current: dict, origin: str | None = None) -> list[str]:
+def verify_log_continuity(previous: dict | None, current: dict | None, origin: str | None = None) -> list[str]:
     """Problems between the log sections of two successive bundles of one device.
 
     Parameters

@@ -166,6 +166,7 @@ def install(home, *, dry_run: bool = False, manager: str | None = None) -> Servi
     if p.manager == "none":
         raise StateError("no supported service manager (systemd user session or launchd) found; "
                          "use 'lethe service install --dry-run' to see the unit and run it yourself")
+    assert p.path is not None  # a real manager always has a unit path
     existed = p.path.exists()
     made = [d for d in p.path.parents if not d.exists()]  # folders we are about to create, deepest first
     p.path.parent.mkdir(parents=True, exist_ok=True)
@@ -207,6 +208,7 @@ def remove(home, *, dry_run: bool = False, manager: str | None = None) -> Servic
         return p
     for cmd in p.disable:
         _run(cmd, check=False)
+    assert p.path is not None  # a real manager always has a unit path
     if p.path.exists():
         p.path.unlink()
     if p.manager == "systemd":

@@ -134,14 +134,14 @@ def make_card(study_dir, policies, contact: str | None = None, *, issued: _dt.da
                              f"is {pub['key_fingerprint']}; refusing to approve it on this card")
     fps = list(dict.fromkeys(p.fingerprint for p in pols))
     contact = contact if contact is not None else pols[0].study.contact
-    issued = (issued or _dt.datetime.now(_dt.UTC).date()).isoformat()
+    issued_on = (issued or _dt.datetime.now(_dt.UTC).date()).isoformat()
     card = StudyCard(pub["study_id"], pub["suite"], pub["public_key"], pub["key_fingerprint"],
-                     tuple(fps), contact, pols[0].study.consent_text, issued)
+                     tuple(fps), contact, pols[0].study.consent_text, issued_on)
     if server_url is not None or server_pin is not None:
         server = {"url": server_url, "certificate_sha256": server_pin}
         contracts.validate("study-card", {**card.as_dict(), "version": CARD_VERSION_SERVER, "server": server},
                            "study card")
-        card = dataclasses.replace(card, server_url=server_url.rstrip("/"), server_pin=server_pin)
+        card = dataclasses.replace(card, server_url=str(server_url).rstrip("/"), server_pin=server_pin)
     return card
 
 
@@ -215,10 +215,10 @@ def make_enrolment(card: StudyCard, policy, pseudonym: str, device_private_key, 
     """
     check_policy_approved(card, policy)
     pub = _raw_public(device_private_key)
-    created = (created or _dt.datetime.now(_dt.UTC).date()).isoformat()
+    created_on = (created or _dt.datetime.now(_dt.UTC).date()).isoformat()
     doc = {"format": ENROLMENT_FORMAT, "version": ENROLMENT_VERSION, "study_id": card.study_id,
            "pseudonym": pseudonym, "device_public_key": b64e(pub), "device_key_id": device_key_id(pub),
-           "policy_fingerprint": policy.fingerprint, "created": created}
+           "policy_fingerprint": policy.fingerprint, "created": created_on}
     if log_origin is not None:
         doc["log_origin"] = log_origin
     # Checked before signing: a bad pseudonym or log origin names the field.

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import NoReturn
+
 import math
 import re
 import time
@@ -18,7 +20,7 @@ FUTURE_SKEW_S = 600.0
 _STAMP = re.compile(r"(\d{4})(\d{2})(\d{2})T(\d{2})(\d{2})(\d{2})Z")
 
 
-def reject(path, reason: str, detail: str):
+def reject(path, reason: str, detail: str) -> NoReturn:
     """Raise :class:`~agent.errors.RejectedInput`; details never carry content."""
     raise RejectedInput(path, reason, detail)
 
