@@ -213,7 +213,7 @@ def routine_greedy(rows, cols, count, first, n_nodes: int, degree_cap: int,
         nbrs[i].append(j)
         nbrs[j].append(i)
     for v in range(n):  # strongest neighbour first
-        nbrs[v].sort(key=lambda u, v=v: rank[eid[(v, u)]])
+        nbrs[v].sort(key=lambda u, v=v: int(rank[eid[(v, u)]]))  # type: ignore[misc]
     keep = np.zeros(e, dtype=bool)
     deg = [0] * n
     kept: list[set] = [set() for _ in range(n)]

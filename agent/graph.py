@@ -27,6 +27,8 @@ for the greedy caps, which loop once over the distinct pairs.
 
 from __future__ import annotations
 
+from typing import Any
+
 import re
 from collections.abc import Iterable, Mapping, Sequence
 
@@ -364,20 +366,21 @@ def routine_diagnostics(g: CooccurrenceGraph, trials=None) -> dict:
     out["hour_place_linked"] = linked / pairs if pairs else None
     if trials is not None:
         trials = list(trials)
-        cue_sets, targets = [], []
+        cue_sets: list[list[int]] = []
+        targets: list[int | None] = []
         for t in trials:
             cue = [g.index.get((k, str(t.get(k)))) for k in TIME_KINDS if t.get(k) is not None]
-            cue_sets.append([i for i in cue if i is not None])
+            cue_sets.append([int(i) for i in cue if i is not None])
             targets.append(g.index.get(("place", str(t.get("correct")))))
         src = sorted({i for c in cue_sets for i in c})
         row = {s_: r for r, s_ in enumerate(src)}
-        dd = _hop_distances(g, src)
-        best = []
-        for cue, tgt in zip(cue_sets, targets, strict=False):
-            if tgt is None or not cue:
+        dd: Any = _hop_distances(g, src)
+        best: list[float] = []
+        for cue_ids, tgt in zip(cue_sets, targets, strict=False):
+            if tgt is None or not cue_ids:
                 best.append(np.inf)
                 continue
-            best.append(min(dd[row[c], tgt] for c in cue))
+            best.append(float(min(dd[row[c_id], int(tgt)] for c_id in cue_ids)))
         b = np.array(best, dtype=np.float64)
         ok = np.isfinite(b)
         out["n_trials"] = len(trials)

@@ -125,7 +125,7 @@ def _numeric_map(d) -> dict[str, Any]:
     """
     if not isinstance(d, Mapping):
         return {}
-    out = {}
+    out: dict[str, Any] = {}
     for k, v in d.items():
         if not (isinstance(k, str) and _NAME.match(k)) or k.startswith("_"):
             continue

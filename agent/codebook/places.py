@@ -218,9 +218,9 @@ class PlaceCodebook:
         # centroid update: weighted spherical mean of the old centre and the new members
         by_id = {p["id"]: p for p in self.places}
         members: dict[str, list[int]] = {}
-        for i, pid in enumerate(out):
-            if pid is not None:
-                members.setdefault(pid, []).append(i)
+        for i, member_of in enumerate(out):
+            if member_of is not None:
+                members.setdefault(member_of, []).append(i)
         for pid, idx in members.items():
             p = by_id[pid]
             w_old = float(p.get("n", 0))

@@ -36,9 +36,10 @@ def drain(home, policy, now: float | None = None, *, settle_s: float | None = No
     """
     t0 = time.time()
     own = intake is None
-    if own:
+    if intake is None:
         intake = Intake(home, policy, now=now)
-    outcomes, skipped = [], {}
+    outcomes: list = []
+    skipped: dict = {}
     stuck = 0
     try:
         intake.finish_leftovers()
@@ -81,7 +82,8 @@ BATCH_BYTES = 32 << 20      # and at most this many raw bytes in memory at once
 
 def batches(candidates, max_file_bytes: int, max_files: int = BATCH_FILES, max_bytes: int = BATCH_BYTES):
     """Split deadline-ordered candidates into groups for :meth:`Intake.process_many`."""
-    group, size = [], 0
+    group: list = []
+    size = 0
     for c in candidates:
         n = min(int(c.lst.st_size), int(max_file_bytes))
         if group and (len(group) >= max_files or size + n > max_bytes):
@@ -95,7 +97,8 @@ def batches(candidates, max_file_bytes: int, max_files: int = BATCH_FILES, max_b
 
 def adaptive_batches(candidates, intake: Intake, max_bytes: int = BATCH_BYTES):
     """Like :func:`batches`, the group size read from ``intake.group_files`` as each group is cut."""
-    group, size = [], 0
+    group: list = []
+    size = 0
     for c in candidates:
         n = min(int(c.lst.st_size), int(intake.inbox.max_file_bytes))
         alone = intake.is_suspect(c.name)   # a file a dead agent was parsing goes in a group of its own

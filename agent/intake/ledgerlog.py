@@ -130,8 +130,9 @@ class LedgerWriter:
     def alarm(self, reason: str, error: BaseException) -> None:
         """Raise (log and record) an integrity alarm; logged once per reason until cleared."""
         what = type(error).__name__
-        if getattr(error, "errno", None):
-            what += f"/{os.strerror(error.errno)}"
+        errno_ = getattr(error, "errno", None)
+        if errno_:
+            what += f"/{os.strerror(errno_)}"
         if self.alarmed != reason:
             log.error("integrity_alarm reason=%s error=%s pending=%d: destruction goes on; entries are "
                       "appended when the ledger takes them again", reason, what, len(self.pending))

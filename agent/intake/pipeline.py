@@ -34,6 +34,8 @@ item id
 
 from __future__ import annotations
 
+from typing import Any
+
 import logging
 import os
 import stat
@@ -98,7 +100,7 @@ class _Work:
 
     name: str
     lst: os.stat_result
-    opened: object
+    opened: Any
     data: bytes | None
     out: Outcome
     final: bool = False   # rejected before featurising (unsafe, unread, paused, unknown)
@@ -140,7 +142,7 @@ class Intake:
         self.policy = policy
         self.now = None if now is None else float(now)
         self.raw_seconds = float(policy.retention.raw_seconds)
-        ks = None
+        ks: Any = None
         if content_key is None or ledger is None or vault is None:
             ks = Keystore(self.home).ensure()
         self._key = content_key if content_key is not None else ks.content_key()
@@ -166,7 +168,7 @@ class Intake:
         self._executor = None
         self.reader_timeout_s = max(READER_TIMEOUT_MIN_S, self.raw_seconds / 3.0)
         self.isolate = bool(isolate) and hasattr(os, "fork")
-        self.pool = None   # ForkedPool, made on the first group to parse
+        self.pool: Any = None   # ForkedPool, made on the first group to parse
         self.gps_buffered = self.vault.count("gps_fixes") > 0   # the watcher prunes them by the clock
         self._readers_loaded = False
         self.taken_limit = TAKEN_LIMIT
@@ -411,6 +413,7 @@ class Intake:
                           bytes=size, complete_at=complete_at, name=name)
             w = _Work(name, lst, opened, None, out, final=True)
         else:
+            assert data is not None  # read above whenever there was no error
             out = Outcome(shown, self.mac(data)[:32], kind, "rejected", bytes=len(data), complete_at=complete_at,
                           name=name)
             w = _Work(name, lst, opened, data, out)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import time
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
@@ -47,8 +49,13 @@ class DrainReport:
 
     @classmethod
     def from_outcomes(cls, outcomes, raw_seconds: float, **kw) -> DrainReport:
-        rec, fea, dup, rej, des, why = (Counter() for _ in range(6))
-        samples = Counter()
+        rec: Counter = Counter()
+        fea: Counter = Counter()
+        dup: Counter = Counter()
+        rej: Counter = Counter()
+        des: Counter = Counter()
+        why: Counter = Counter()
+        samples: Counter = Counter()
         rows = 0
         for o in outcomes:
             rec[o.kind] += 1
@@ -125,7 +132,7 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
     from ..ledger import Ledger
 
     h = home if isinstance(home, Home) else Home(home)
-    counts = {k: defaultdict(int) for k in ("received", "featurised", "rejected", "destroyed")}
+    counts: dict[str, defaultdict] = {k: defaultdict(int) for k in ("received", "featurised", "rejected", "destroyed")}
     reasons: Counter = Counter()
     exp = []
     if h.ledger_path.exists():
@@ -160,7 +167,7 @@ def intake_counts(home, policy=None, now: float | None = None) -> dict:
         except LetheError:
             policy = None
     limit = float(policy.retention.raw_seconds) if policy is not None else None
-    out = {k: dict(v) for k, v in counts.items()}
+    out: dict[str, Any] = {k: dict(v) for k, v in counts.items()}
     out.update(reasons=dict(reasons), exposure=exposure_stats(exp),
                inbox={"files": files, "oldest_age_s": None if oldest is None else round(max(oldest, 0.0), 3),
                       "limit_s": limit, "in_subfolders": subdirs, "unfinished": unfinished},

@@ -65,7 +65,7 @@ def extract_stays(fixes, radius_m: float, min_minutes: float, *, flush: bool = F
     if np.any(np.diff(t) < 0):
         raise ValueError("fixes must be sorted by time")
     min_s = 60.0 * float(min_minutes)
-    stays = []
+    stays: list[dict] = []
     i = 0
     while i < n:
         j = _run_end(t, lat, lon, i, radius_m, max_gap_s)   # first fix not in the run

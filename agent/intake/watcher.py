@@ -26,6 +26,8 @@ retention deadline of a pending file, so an empty inbox costs no CPU.
 
 from __future__ import annotations
 
+from typing import Any
+
 import contextlib
 import logging
 import os
@@ -144,7 +146,7 @@ class InboxWatcher:
         self.outcomes: list = []
         self.skipped: list[str] = []
         self.on_outcome = on_outcome
-        self.observer = None
+        self.observer: Any = None
         self.wakeups = 0
 
     # -- lifecycle -------------------------------------------------------------
@@ -155,10 +157,11 @@ class InboxWatcher:
         from watchdog.observers import Observer
 
         try:
-            observer = Observer(generate_full_events=True)  # inotify: moves in from outside are moves
+            observer = Observer(generate_full_events=True)  # type: ignore[call-arg]  # inotify: moves in from outside are moves
         except TypeError:
             observer = Observer()
-        observer.schedule(_Handler(self.intake.inbox.path, self.q), self.intake.inbox.path, recursive=True,
+        handler: Any = _Handler(self.intake.inbox.path, self.q)
+        observer.schedule(handler, self.intake.inbox.path, recursive=True,
                           event_filter=[FileClosedEvent, FileMovedEvent, FileCreatedEvent, FileModifiedEvent,
                                         FileDeletedEvent, DirCreatedEvent, DirMovedEvent])
         observer.daemon = True

@@ -262,7 +262,7 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
     expected = 0
     max_seq = -1
     prev_line = None          # (seq, hash) of the previous well-formed line
-    anchor_doc = None
+    anchor_doc: Any = None
     try:
         anchor_doc = json.loads(anchor_path.read_text("utf-8"))
         if not (isinstance(anchor_doc, dict) and isinstance(anchor_doc.get("seq"), int)
@@ -434,17 +434,16 @@ def _compare_checkpoint(cp: dict, state: LogState, probs) -> None:
 
 
 def _runs(values: list[int]) -> Iterator[tuple[int, int]]:
-    start = prev = None
-    for v in values:
-        if start is None:
-            start = prev = v
-        elif v == prev + 1:
+    if not values:
+        return
+    start = prev = values[0]
+    for v in values[1:]:
+        if v == prev + 1:
             prev = v
         else:
             yield start, prev
             start = prev = v
-    if start is not None:
-        yield start, prev
+    yield start, prev
 
 
 def _account(report, event, f, seq, t, open_items, limit, kinds, rejections) -> None:

@@ -29,6 +29,8 @@ the design of the study (the graph is the participant's record), not a fold leak
 
 from __future__ import annotations
 
+from typing import Any
+
 from collections import Counter
 
 import numpy as np
@@ -111,7 +113,9 @@ class Frequency(ScoreBaseline):
         self.source = "episodes" if episodes is not None else (
             "graph counts" if graph.counts is not None else "capped graph")
         if episodes is not None:
-            self.n_hdp, self.n_hp, self.n_p = Counter(), Counter(), Counter()
+            self.n_hdp: Counter | None = Counter()
+            self.n_hp: Counter = Counter()
+            self.n_p: Counter = Counter()
             for e in episodes:
                 p = e.get("place")
                 if p is None or e.get("hour") is None:
@@ -150,7 +154,7 @@ class Centrality(ScoreBaseline):
     def __init__(self, graph: ModelGraph):
         super().__init__()
         self.graph = graph
-        self._last = (None, None)
+        self._last: tuple[Any, Any] = (None, None)
 
     def scores(self, design: TrialDesign) -> np.ndarray:
         if self._last[0] is not design:  # identity, not id(): ids are reused after collection
@@ -169,9 +173,10 @@ class EigenModel:
         self.restarts = int(restarts)
         self.seed = int(seed)
         self.maxiter = int(maxiter)
-        self.p = None
-        self.nll = None
-        self.runs = []
+        self.p: Any = None
+        self.nll: float | None = None
+        self.objective: float | None = None
+        self.runs: list[dict] = []
 
     @property
     def n_params(self) -> int:
@@ -190,7 +195,8 @@ class EigenModel:
                            for q in draws])
         best_draws = [draws[i] for i in np.argsort(values)[: self.restarts - 1]]
         starts = [self.spec.start()] + best_draws + self._nested_starts(design, rng)
-        best, self.runs = None, []
+        best: Any = None
+        self.runs = []
         for p0 in starts:
             res = minimize(f, p0, jac=True, method="L-BFGS-B", bounds=self.spec.bounds(),
                            options={"maxiter": self.maxiter, "ftol": FTOL, "gtol": GTOL, "maxls": MAXLS})

@@ -14,6 +14,8 @@ In-sample fits are compared by AIC = ``2k + 2 NLL`` (Akaike 1974) and BIC =
 
 from __future__ import annotations
 
+from typing import Any
+
 import math
 
 import numpy as np
@@ -56,7 +58,7 @@ def paired_differences(logps: dict, design: TrialDesign, rows, *, reference: str
     rows = np.asarray(rows, dtype=np.int64)
     days = design.dates[rows].astype(str)
     ref = per_trial(logps[reference], design, rows)
-    out = {}
+    out: dict[str, Any] = {}
     for k, (name, lp) in enumerate(logps.items()):
         if name == reference:
             continue

@@ -20,6 +20,8 @@ loglik
 
 from __future__ import annotations
 
+from typing import Any
+
 import os
 
 import numpy as np
@@ -149,7 +151,8 @@ def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0,
 
     folds = day_folds(design, k, seed)
     all_ans = np.flatnonzero(design.answered)
-    jobs, where = [], []
+    jobs: list[tuple[Any, Any, Any, list[int]]] = []
+    where: list[tuple[str, int | None]] = []
     for p_i, (name, pred) in enumerate(predictors.items()):
         if in_sample:
             jobs.append((copy.deepcopy(pred), design.subset(all_ans), None, [seed, 12345]))
@@ -160,21 +163,22 @@ def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0,
             where.append((name, f))
     results = run_fits(jobs, n_jobs)
     out: dict = {}
-    lps, fitted = {}, {}
+    lps: dict[str, Any] = {}
+    fitted: dict[str, Any] = {}
     for name in predictors:
         pooled_lp = np.full(design.opt_mask.shape, -np.inf)
         per_fold = []
-        for (nm, f), (fit, lp_test) in zip(where, results, strict=True):
+        for (nm, fold), (fit, lp_test) in zip(where, results, strict=True):
             if nm != name:
                 continue
-            if f is None:
+            if fold is None:
                 fitted[name] = fit
                 continue
-            test = folds[f]
+            test = folds[fold]
             pooled_lp[test] = lp_test
-            m = metrics(pooled_lp, design, np.random.default_rng([seed, f, 7]), rows=test)
+            m = metrics(pooled_lp, design, np.random.default_rng([seed, fold, 7]), rows=test)
             m.pop("_per_trial")
-            m["fold"] = f
+            m["fold"] = fold
             m["days"] = sorted(set(design.dates[test].astype(str)))
             per_fold.append(m)
         rows = np.concatenate(folds)

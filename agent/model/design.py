@@ -67,12 +67,12 @@ class ModelGraph:
             raise ValueError("capped adjacency: expected nonnegative entries")
         if a.diagonal().any():
             raise ValueError("capped adjacency: expected a zero diagonal (no self-loops)")
-        kinds = np.asarray([str(k) for k in kinds], dtype=object)
-        if kinds.shape != (n,):
-            raise ValueError(f"kinds: expected {n} entries (one per node), got {kinds.shape[0]}")
+        kinds_arr = np.asarray([str(k) for k in kinds], dtype=object)
+        if kinds_arr.shape != (n,):
+            raise ValueError(f"kinds: expected {n} entries (one per node), got {kinds_arr.shape[0]}")
         self.n = int(n)
         self.capped = a
-        self.kinds = kinds
+        self.kinds = kinds_arr
         self.index = {(str(k), str(lab)): int(i) for (k, lab), i in dict(index).items()}
         bad = [node for node, i in self.index.items() if not 0 <= i < n]
         if bad:
@@ -82,7 +82,7 @@ class ModelGraph:
         self.edge_rows = upper.row.astype(np.int64)
         self.edge_cols = upper.col.astype(np.int64)
         self.edge_vals = upper.data.astype(np.float64)
-        pairs = [tuple(sorted((kinds[i], kinds[j])))
+        pairs = [tuple(sorted((kinds_arr[i], kinds_arr[j])))
                  for i, j in zip(self.edge_rows.tolist(), self.edge_cols.tolist(), strict=False)]
         self.type_pairs: list[tuple[str, str]] = sorted(set(pairs))
         pid = {p: k for k, p in enumerate(self.type_pairs)}

@@ -20,6 +20,8 @@ separately identified (shown by recovery, ``docs/model.md``).
 
 from __future__ import annotations
 
+from typing import Any
+
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -258,10 +260,10 @@ class ActivationCache:
 
     def __init__(self, graph: ModelGraph, design: TrialDesign):
         self.graph, self.design = graph, design
-        self._theta_key = None
-        self._solver = None
-        self._act_key = None
-        self._act = None
+        self._theta_key: Any = None
+        self._solver: Any = None
+        self._act_key: Any = None
+        self._act: Any = None
         self.n_eigh = 0
 
     def solver(self, theta) -> RankOneSolver:

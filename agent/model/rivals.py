@@ -36,6 +36,8 @@ Each score rival fits a temperature ``tau`` by maximum likelihood (the Luce rule
 
 from __future__ import annotations
 
+from typing import Any
+
 from collections import Counter
 
 import numpy as np
@@ -127,6 +129,7 @@ class FrequencyLOEO(Frequency):
     def scores(self, design: TrialDesign) -> np.ndarray:
         out = np.zeros(design.opt_mask.shape)
         if self.table is not None:
+            assert self.n_hdp is not None  # counted from the same episodes as the table
             probed = self.table.probed(design)
             tab = self.table
             for t, opts in enumerate(design.options):
@@ -149,9 +152,9 @@ class FrequencyLOEO(Frequency):
                 pi = idx.get((PLACE, p))
                 if pi is None:
                     continue
-                own = 1.0 if j == correct else 0.0  # the probed episode itself, if counts are uncapped
-                hv = (mat[hi, pi] - own) if hi is not None else 0.0
-                dv = (mat[di, pi] - own) if di is not None else 0.0
+                own_n = 1.0 if j == correct else 0.0  # the probed episode itself, if counts are uncapped
+                hv = (mat[hi, pi] - own_n) if hi is not None else 0.0
+                dv = (mat[di, pi] - own_n) if di is not None else 0.0
                 out[t, j] = max(hv, 0.0) + max(dv, 0.0)
         return np.log1p(out)
 
@@ -174,7 +177,7 @@ class ACTR:
         self.table = table
         self.d = 0.5
         self.tau = 1.0
-        self._cache = (None, None)
+        self._cache: tuple[Any, Any] = (None, None)
 
     def _parts(self, design: TrialDesign):
         """Per trial: ages (hours) and option index of every usable past visit, split by hour match."""

@@ -97,8 +97,8 @@ def validate_fixes(fixes: list[dict], policy, now: float) -> tuple[list[dict], C
             continue
         good.append({"t": float(t), "lat": float(lat), "lon": float(lon),
                      "acc_m": None if acc is None else float(acc)})
-    good.sort(key=lambda f: f["t"])
-    unique = []
+    good.sort(key=lambda f: float(f["t"] or 0.0))
+    unique: list[dict] = []
     for f in good:
         if unique and f["t"] == unique[-1]["t"]:
             drops["duplicate"] += 1

@@ -146,7 +146,7 @@ def _parse_piece(body: bytes, n_cols: int) -> np.ndarray | None:
     buf = np.frombuffer(_PAD_BYTES + body + (b"" if body.endswith(b"\n") else b"\n"), np.uint8)
     # Only digits, '.', '-', ',' and '\n' (the only two of them at or below ',' = 44).
     n_minus = int(np.count_nonzero(buf == 45))
-    seps = np.flatnonzero(buf <= 44)
+    seps: np.ndarray = np.flatnonzero(buf <= 44)
     if (int(np.count_nonzero((buf - np.uint8(48)) < 10)) + int(np.count_nonzero(buf == 46))
             + n_minus + seps.size != buf.size) or seps.size % n_cols:
         return None
