@@ -282,3 +282,28 @@ def test_service_unit_marks_the_service():
 
     assert "Environment=LETHE_SERVICE=1" in systemd_unit(Path("/h"), ["lethe"])
     assert "<key>LETHE_SERVICE</key>" in launchd_plist(Path("/h"), ["lethe"])
+
+
+def test_pending_ledger_entries_survive_a_restart(hp, monkeypatch):
+    """Entries the ledger could not take are kept in state/ledger-pending.json and appended by the next run."""
+    from agent.intake.ledgerlog import LedgerWriter
+    from agent.keystore import Keystore
+    from agent.ledger import Ledger
+
+    h, policy = hp
+    _start(h)
+    lg = Ledger(h, signing_key=Keystore(h).ensure().device_key())
+    w = LedgerWriter(h, lg)
+
+    def full_disk(*a, **k):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(lg, "append_many", full_disk)
+    step = ("rejected", {"item": "ab" * 16, "kind": "mood", "reason": "paused"})
+    assert not w.write([step])
+    monkeypatch.undo()
+    again = LedgerWriter(h, Ledger(h, signing_key=Keystore(h).ensure().device_key()))   # the next life
+    assert again.pending == [step]
+    assert again.flush(force=True)
+    assert [e["event"] for e in _events(h)][-1] == "rejected"
+    assert not (h.state / "ledger-pending.json").exists() and not (h.state / "intake-alarm.json").exists()
