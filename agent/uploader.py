@@ -127,7 +127,7 @@ def _read(path: Path) -> dict | None:
 
 def server_of(home) -> tuple[str, str] | None:
     """``(url, pin)`` from the home's study card, or None when the card names no server."""
-    from .bundle import home_card
+    from .export import home_card
     from .home import Home
 
     h = home if isinstance(home, Home) else Home(home)

@@ -7,7 +7,7 @@ import json
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
 from agent.bundle import make_header, seal_bundle
-from agent.payload import Relabeller, coarse_date, payload_from_parts
+from agent.export import Relabeller, coarse_date, payload_from_parts
 from agent.policy import bundled_policy_path, load_policy
 from agent.identity import device_key_id
 from agent.study.card import load_card, make_enrolment, write_card

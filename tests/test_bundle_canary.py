@@ -49,7 +49,7 @@ def test_planted_values_leave_no_trace(tmp_path):
     from agent.study.keys import study_keygen
     from agent.study.open import open_bundles
     from agent.study.registry import enroll
-    from agent.bundle import export_bundle
+    from agent.export import export_bundle
     from agent.vault import Vault
 
     from _bundle_fixtures import FAST_N, PASS

@@ -7,12 +7,12 @@ import shutil
 
 import pytest
 
-from agent.bundle import export_bundle, home_card
+from agent.export import export_bundle, home_card
 from agent.errors import BudgetError, StateError
 from agent.home import Home
 from agent.keystore import Keystore
 from agent.ledger import Ledger
-from agent.payload import build_payload, preview
+from agent.export import build_payload, preview
 from agent.policy import bundled_policy_path, load_policy
 from agent.study.card import make_enrolment, write_card
 from agent.study.keys import study_keygen

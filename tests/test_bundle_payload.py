@@ -9,7 +9,7 @@ import tomllib
 import pytest
 
 from agent.errors import DataError
-from agent.payload import (Relabeller, coarse_date, edge_list_from, payload_from_parts, preview,
+from agent.export import (Relabeller, coarse_date, edge_list_from, payload_from_parts, preview,
                            project_fit, validate_payload)
 from agent.canonical import dumps as canonical_json
 from agent.policy import bundled_policy_path, load_policy, policy_from_dict

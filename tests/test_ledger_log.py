@@ -245,7 +245,7 @@ def test_study_open_refuses_a_bundle_from_a_restarted_ledger(tmp_path):
     from _bundle_fixtures import PASS
     from test_bundle_export import make_world
 
-    from agent.bundle import export_bundle
+    from agent.export import export_bundle
     from agent.errors import IntegrityError
     from agent.home import Home
     from agent.study.open import open_bundles
@@ -267,7 +267,7 @@ def test_study_open_accepts_a_continued_ledger(tmp_path):
     from _bundle_fixtures import PASS
     from test_bundle_export import make_world
 
-    from agent.bundle import export_bundle
+    from agent.export import export_bundle
     from agent.study.open import open_bundles
 
     home, study = make_world(tmp_path)

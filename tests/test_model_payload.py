@@ -8,7 +8,7 @@ import copy
 import pytest
 
 from agent.errors import DataError
-from agent.payload import project_fit, validate_payload
+from agent.export import project_fit, validate_payload
 from tests._bundle_fixtures import FIT, make_payload
 
 KINDS = ["hour", "weekday", "week", "place", "sound", "motion", "mood"]

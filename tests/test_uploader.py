@@ -12,7 +12,7 @@ import time
 
 import pytest
 
-from agent.bundle import export_bundle
+from agent.export import export_bundle
 from agent.home import Home
 from agent.study.card import load_card, write_card
 from agent.uploader import Uploader, pinned_context, queue_status
@@ -38,7 +38,7 @@ def enrolment_file(home, study):
     from agent.keystore import Keystore
     from agent.study.card import make_enrolment
 
-    from agent.bundle import home_card
+    from agent.export import home_card
 
     doc = make_enrolment(home_card(home), home.load_policy(), home.read_config()["pseudonym"],
                          Keystore(home).device_key())
@@ -218,7 +218,7 @@ def test_server_killed_mid_upload_loses_nothing(tmp_path):
 def test_server_refuses_a_ledger_that_does_not_continue(setup):
     # The enrolment names a log origin the device's ledger does not start with (a reset ledger):
     # the bundle is refused with 422 ledger_discontinuity and stored nowhere (docs/server.md).
-    from agent.bundle import home_card
+    from agent.export import home_card
     from agent.keystore import Keystore
     from agent.study.card import make_enrolment
 

@@ -31,8 +31,8 @@ def _ask(text: str) -> bool:
 
 
 def _export(args) -> int:
-    from ..bundle import export_bundle
-    from ..payload import build_payload, preview
+    from ..export import export_bundle
+    from ..export import build_payload, preview
     from ..vault import Vault
 
     home = home_from(args).require()

@@ -320,7 +320,7 @@ def fit_model(ctx: DemoContext) -> None:
 
 
 def export_bundle_step(ctx: DemoContext) -> None:
-    from ..bundle import export_bundle
+    from ..export import export_bundle
     from ..home import Home
 
     home = Home(ctx.home_dir)

@@ -116,7 +116,7 @@ class ExportDialogue:
             self._thread.start()
             self._ready.wait(timeout_s)
         else:
-            from ...payload import build_payload, preview
+            from ...export import build_payload, preview
             from ...vault import Vault
 
             try:
@@ -126,7 +126,7 @@ class ExportDialogue:
                 self.error = str(e)
 
     def _run(self) -> None:
-        from ...bundle import export_bundle
+        from ...export import export_bundle
 
         try:
             self.result = export_bundle(self.home, self.policy, confirm=self._confirm)
@@ -145,7 +145,7 @@ class ExportDialogue:
     def decide(self, yes: bool, timeout_s: float = 120.0):
         if self._thread is None:
             if yes and self.error is None:
-                from ...bundle import export_bundle
+                from ...export import export_bundle
 
                 try:
                     self.result = export_bundle(self.home, self.policy)
