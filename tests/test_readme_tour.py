@@ -37,10 +37,10 @@ os.replace(sys.argv[2] + ".part", sys.argv[2])  # appears whole
 '''
 
 
-def tour_commands() -> list[tuple[str, list[str], bool]]:
-    """(the line as written, its words, whether the README says it exits 1) for each tour command."""
+def tour_commands(start: str = "## A short tour", end: str = "Exit codes:") -> list[tuple[str, list[str], bool]]:
+    """(the line as written, its words, whether the README says it exits 1) for each command of a README section."""
     text = (REPO / "README.md").read_text("utf-8")
-    section = text[text.index("## A short tour"):text.index("Exit codes:")]
+    section = text[text.index(start):text.index(end, text.index(start))]
     out = []
     for block in re.findall(r"```sh\n(.*?)```", section, flags=re.S):
         for line in block.replace("\\\n", " ").splitlines():
@@ -83,8 +83,12 @@ def test_the_readme_tour_runs_as_written_outside_the_clone(tmp_path):
     page = tmp_path / "page.html"
     env["BROWSER"] = f"{sys.executable} {tmp_path / 'fetch.py'} %s {page}"
     background: list[subprocess.Popen] = []
+    state: dict = {}
     try:
-        _follow(work, lethe, env, page, background)
+        _follow(tour_commands(), work, lethe, env, page, background, state)
+        # then the study-server section, in the same folder, as the README says
+        _follow(tour_commands("## With the study server", "Stop the server"), work, lethe, env, page,
+                background, state)
     finally:
         for p in background:
             p.terminate()
@@ -92,15 +96,20 @@ def test_the_readme_tour_runs_as_written_outside_the_clone(tmp_path):
     # the tour left what it says it leaves
     assert sorted(p.name for p in (work / "ph").iterdir()) == ["withdrawal-certificate.json"]
     assert (work / "cohort-report" / "report.html").exists() and (work / "board" / "index.html").exists()
+    # the second participant's enrolment and bundle reached the server and were acknowledged
+    from agent.home import Home
+    from agent.uploader import queue_status
+
+    q = queue_status(Home(work / "ph2"))
+    assert len(q["sent"]) >= 2 and not q["prepared"] and not q["failed"], q
 
 
-def _follow(work, lethe, env, page, background):
+def _follow(commands, work, lethe, env, page, background, state):
     import json
 
     import pexpect
 
-    study_id = invitation = None
-    for line, words, exits_1 in tour_commands():
+    for line, words, exits_1 in commands:
         if words[0] == "export":
             name, _, value = words[1].partition("=")
             env[name] = value
@@ -112,13 +121,13 @@ def _follow(work, lethe, env, page, background):
         args = []
         for w in words[1:]:
             w = w.replace("$PWD", str(work))  # the shell would expand it
-            if w == "CODE" and invitation:
-                w = invitation  # the participant types the code the study gave them
+            if w == "CODE" and state.get("invitation"):
+                w = state["invitation"]  # the participant types the code the study gave them
             hits = sorted(glob.glob(w, root_dir=work)) if any(c in w for c in "*?[") else []
             args += hits or [w]
         sub = args[2] if args[:1] == ["--home"] else args[0]
         if sub == "study" and "--study-id" in args:
-            study_id = args[args.index("--study-id") + 1]
+            state["study_id"] = args[args.index("--study-id") + 1]
         if in_background:
             # the study server: started as the README starts it, stopped when the tour is over
             with open(work / f"background-{len(background)}.log", "w") as log:
@@ -135,7 +144,7 @@ def _follow(work, lethe, env, page, background):
             assert "Traceback" not in r.stderr, line
             if sub == "study" and args[1:2] == ["invite"]:
                 codes = re.findall(r"\b[A-Za-z0-9_-]{12,}\b", r.stdout)
-                invitation = codes[0] if codes else None
+                state["invitation"] = codes[0] if codes else None
             continue
         child = pexpect.spawn(lethe, args, cwd=str(work), env=env, encoding="utf-8", timeout=600,
                               dimensions=(50, 200))
@@ -144,7 +153,7 @@ def _follow(work, lethe, env, page, background):
             child.expect(r"Type the published fingerprint")
             child.sendline(card["key_fingerprint"])  # as printed by 'lethe study card' above
             child.expect(r"To agree, type the study id")
-            child.sendline(study_id)
+            child.sendline(state["study_id"])
         elif sub == "quiz":
             k = 0
             while child.expect([r"answer> ", pexpect.EOF]) == 0:
@@ -157,7 +166,7 @@ def _follow(work, lethe, env, page, background):
             child.expect(r"It has not been sent")
         elif sub == "withdraw":
             child.expect(r"Type the study id")
-            child.sendline(study_id)
+            child.sendline(state["study_id"])
             child.expect(r"You have withdrawn")
         elif sub == "open":
             deadline = time.monotonic() + 300  # waiting for the stand-in browser, not a timing check
