@@ -31,7 +31,8 @@ from pathlib import Path
 
 from ..errors import DataError, LetheError
 from ..plots import empty, figure, save, styled
-from .report import cautions_html, esc, fmt_s, page, table
+from ..templates import Markup, esc, table
+from .report import cautions_html, fmt_s, page
 
 CHECK_SHORT = {"violations": "no violations", "max_exposure": "within limit", "head": "head monotone",
                "approved": "approved", "enrolled_policy": "enrolled policy"}
@@ -250,7 +251,7 @@ def write_cohort_report(study_dir, out_dir, policies=None) -> Path:
                      esc(fmt_s(d.get("max_exposure_s"))),
                      esc("–" if limits[p.pseudonym] is None else f"{limits[p.pseudonym]:g} s"),
                      d.get("violations", 0),
-                     '<span class="pass">pass</span>' if p.ok else '<span class="fail">FAIL</span>'])
+                     Markup('<span class="pass">pass</span>' if p.ok else '<span class="fail">FAIL</span>')])
     body.append(table(["participant", "bundles", "last bundle", "policy", "received", "destroyed", "rejected",
                        "median", "p95", "max", "limit", "violations", "result"], rows,
                       num_cols=(1, 2, 4, 5, 6, 7, 8, 9, 10, 11), cls="wide"))
@@ -266,8 +267,8 @@ def write_cohort_report(study_dir, out_dir, policies=None) -> Path:
                 + "</ul>")
 
     def mark(res):
-        return ('<span class="pass">pass</span>' if res else '<span class="fail">FAIL</span>' if res is False
-                else "not checked")
+        return Markup('<span class="pass">pass</span>' if res else '<span class="fail">FAIL</span>' if res is False
+                      else "not checked")
 
     body.append(table(["participant"] + [CHECK_SHORT[k] for k in used],
                       [[esc(p.pseudonym)] + [mark(p.checks[k][0]) if k in p.checks else "–" for k in used]

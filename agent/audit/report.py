@@ -17,12 +17,13 @@ content.
 
 from __future__ import annotations
 
-import html
 import json
 import time
 from pathlib import Path
 
+from .. import templates
 from ..errors import LetheError
+from ..templates import Markup, esc, table
 from ..home import Home
 from ..plots import empty, figure, integer_ticks, save, styled
 from ..policy_summary import CAUTIONS, summarise
@@ -60,31 +61,13 @@ ul { margin-top: 4px; }
 """
 
 
-def esc(x) -> str:
-    return html.escape(str(x), quote=True)
-
-
 def page(title: str, body: str) -> str:
-    """A complete HTML document with the report's inline style."""
-    return ("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
-            f"<title>{esc(title)}</title>\n<style>{CSS}</style>\n</head>\n<body>\n{body}\n</body>\n</html>\n")
+    """A complete HTML document with the report's inline style (jinja2, autoescape)."""
+    return templates.page(title, Markup(body), CSS)
 
 
 def fmt_s(x) -> str:
     return "–" if x is None else f"{x:.2f} s"
-
-
-def table(header: list[str], rows: list[list], num_cols=(), cls: str = "") -> str:
-    out = [f'<table class="{cls}">' if cls else "<table>",
-           "<tr>" + "".join(f"<th>{esc(h)}</th>" for h in header) + "</tr>"]
-    for row in rows:
-        cells = []
-        for i, c in enumerate(row):
-            cls = ' class="num"' if i in num_cols else ""
-            cells.append(f"<td{cls}>{c}</td>")
-        out.append("<tr>" + "".join(cells) + "</tr>")
-    out.append("</table>")
-    return "\n".join(out)
 
 
 # -- plots -----------------------------------------------------------------------
@@ -297,8 +280,8 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
 
     key_rows = [
         ["Ledger entries", f"{r.entries}"],
-        ["Head entry", f"{r.head['seq']} <span class=\"fp\">{esc(r.head['hash'])}</span>"],
-        ["Device key", f"<span class=\"fp\">{esc(r.device_key_id or 'unavailable')}</span>"],
+        ["Head entry", Markup(f"{r.head['seq']} <span class=\"fp\">{esc(r.head['hash'])}</span>")],
+        ["Device key", Markup(f"<span class=\"fp\">{esc(r.device_key_id or 'unavailable')}</span>")],
         ["Raw files destroyed", f"{e.get('n', 0)}"],
         ["Exposure median", esc(fmt_s(e.get("median")))],
         ["Exposure 95th percentile", esc(fmt_s(e.get("p95")))],
@@ -318,7 +301,7 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
     body.append("<p>Each ledger entry is hash-chained to the one before and signed with the device key; "
                 "the anchor file records the last entry so that a rollback to an older copy shows.</p>")
     body.append(table(["check", "result"],
-                      [[esc(w), '<span class="pass">pass</span>' if ok else '<span class="fail">FAIL</span>']
+                      [[esc(w), Markup('<span class="pass">pass</span>' if ok else '<span class="fail">FAIL</span>')]
                        for w, ok in result.checks()]))
     if r.problems:
         body.append("<h3>Problems found</h3><ul>" + "".join(
