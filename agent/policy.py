@@ -129,10 +129,6 @@ class Policy:
         return f"Policy({self.policy.name!r}, version={self.policy.version!r}, fp={self.fingerprint[:12]})"
 
 
-# Kept for branches written before agent/canonical.py; new code imports agent.canonical.dumps.
-canonical_json = canonical.dumps
-
-
 def validate(raw: dict, source: str = "<memory>") -> Policy:
     """Validate a parsed TOML document and return the resolved :class:`Policy`."""
     if not isinstance(raw, dict):
