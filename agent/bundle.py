@@ -65,35 +65,18 @@ def make_header(*, suite: str, study_id: str, recipient: str, device_key_id: str
 
 
 def check_header(h, source: str) -> dict:
-    """Strict header check (run only on the authenticated header)."""
-    from .study.keys import SUITES
+    """Strict header check against ``bundle-header.json`` (run only on the authenticated header)."""
+    from .contracts import validate
 
     if not isinstance(h, dict):
         raise DataError(f"{source}: header is not a JSON object")
-    unknown = sorted(set(h) - set(HEADER_FIELDS))
-    if unknown:
-        raise DataError(f"{source}: header [{unknown[0]}] unknown field; allowed: {', '.join(HEADER_FIELDS)}")
-    missing = [k for k in HEADER_FIELDS if k not in h]
-    if missing:
-        raise DataError(f"{source}: header [{missing[0]}] required field is missing")
-    if h["format"] != HEADER_FORMAT or h["version"] != FORMAT_VERSION:
+    validate("bundle-header", h, source, error=lambda src, key, msg: DataError(f"{src}: header [{key}] {msg}"))
+    if h["version"] != FORMAT_VERSION:
         raise DataError(f"{source}: header [format/version] {h['format']!r} v{h['version']!r} does not match "
                         f"the container (lethe-bundle v{FORMAT_VERSION})")
-    if h["suite"] not in SUITES:
-        raise DataError(f"{source}: header [suite] {h['suite']!r} is not one of {', '.join(SUITES)}")
-    if not (isinstance(h["seq"], int) and not isinstance(h["seq"], bool) and 1 <= h["seq"] < 2**53):
-        raise DataError(f"{source}: header [seq] expected a positive integer, got {h['seq']!r}")
-    if not (isinstance(h["recipient"], str) and re.fullmatch(r"[0-9a-f]{64}", h["recipient"])):
-        raise DataError(f"{source}: header [recipient] expected a 64-hex-digit key fingerprint")
-    if not (isinstance(h["device_key_id"], str) and re.fullmatch(r"[0-9a-f]{16}", h["device_key_id"])):
-        raise DataError(f"{source}: header [device_key_id] expected 16 hex digits")
-    if not (isinstance(h["created"], str) and re.fullmatch(r"\d{4}-(\d{2}-\d{2}|W\d{2})", h["created"])):
-        raise DataError(f"{source}: header [created] expected YYYY-MM-DD or YYYY-Www, got {h['created']!r}")
     if h["payload_schema"] != PAYLOAD_SCHEMA:
         raise DataError(f"{source}: header [payload_schema] {h['payload_schema']!r} is not supported "
                         f"(this lethe reads payload schema {PAYLOAD_SCHEMA})")
-    if not isinstance(h["study_id"], str):
-        raise DataError(f"{source}: header [study_id] expected a string")
     return h
 
 

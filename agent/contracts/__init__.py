@@ -47,7 +47,8 @@ from ..errors import DataError
 __all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "check_header", "iter_problems", "read_json", "schema",
            "validate"]
 
-SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload", "scenario")
+SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload", "scenario",
+                "bundle-header")
 
 
 class ContractError(DataError):
