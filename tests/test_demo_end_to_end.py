@@ -41,6 +41,11 @@ def test_two_day_demo_runs_every_stage(tmp_path):
     assert facts["server_counts"]["enrolled"] == 1 and facts["server_counts"]["bundles"] == 1
     assert facts["dashboard_ok"] is True and facts["dashboard"] in text
     assert facts["uploaded"] == [Path(facts["bundle"]).name]
+    # the closing status agrees with the upload queue: the one bundle is sent, none is left "prepared"
+    assert "Summaries for the study: 1 made (1 sent, 0 prepared and waiting)" in text
+    assert "sent (the server confirmed it has them), 0 prepared and waiting" in text  # enrolment + bundle
+    # the server is stopped when the demo returns: the closing lines say so instead of offering a dead link
+    assert "study server stops now" in text and "'lethe demo --serve'" in text
 
 
 def test_demo_refuses_a_used_directory(tmp_path):

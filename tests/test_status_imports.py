@@ -32,3 +32,19 @@ def test_status_with_answers_imports_no_scipy(h):
     mods = _modules_after(f"import sys\nfrom agent.cli import main\nmain(['--home', {str(h.root)!r}, 'status'])")
     assert "agent.quiz" in mods          # the score was computed
     assert not {m for m in mods if m == "scipy" or m.startswith("scipy.")}
+
+
+def test_status_summary_line_follows_the_upload_queue():
+    # common practice, no source: one word per state -- "prepared" until the server acknowledged, "sent" after
+    from agent.participant.status import _summaries_made
+
+    up = {"server": "https://127.0.0.1:1",
+          "sent": [{"kind": "enrolment", "name": "e"}, {"kind": "bundle", "name": "b1"}],
+          "prepared": [{"kind": "bundle", "name": "b2"}], "failed": []}
+    assert _summaries_made(2, up) == "2 made (1 sent, 1 prepared and waiting)"
+
+
+def test_status_summary_line_without_a_server_keeps_the_outbox_words():
+    from agent.participant.status import _summaries_made
+
+    assert _summaries_made(3, {"server": None}) == "3 prepared (in the outbox)"

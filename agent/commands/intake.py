@@ -28,7 +28,18 @@ def _run(args) -> int:
 
     from ..errors import UsageError
 
-    home = home_from(args).require()
+    home = home_from(args)
+    from ..participant.withdraw import withdrawal_record
+
+    record = withdrawal_record(home)
+    if record is not None:
+        from ..errors import StateError
+
+        raise StateError(f"{home.root}: this home was withdrawn from the study ({record.name} is all it holds), "
+                         f"so there is nothing for 'lethe run' to do; if a background service started this, "
+                         f"'lethe service remove' stops it (and if the withdrawal was interrupted, 'lethe withdraw' "
+                         f"finishes it)")
+    home.require()
     if args.settle is not None and not (0.0 <= args.settle <= 60.0):
         raise UsageError(f"--settle {args.settle}: expected seconds between 0 and 60")
     # numba (used by librosa) reads this when first imported: it must point into

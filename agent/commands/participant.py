@@ -254,13 +254,17 @@ def _resume(args) -> int:
 
 def _withdraw(args) -> int:
     from ..participant.withdraw import withdrawal_pending, withdraw
+    from ..uploader import server_of
 
     home = home_from(args)
+    try:
+        server = server_of(home)  # read before the card is destroyed
+    except Exception:  # noqa: BLE001 - a damaged card must not stand in the way of a withdrawal
+        server = None
     if withdrawal_pending(home):
         # Interrupted after the certificate was signed: the participant already confirmed; finish the job.
         res = withdraw(home)
-        emit(args, res, f"Finished an interrupted withdrawal. Send the certificate to the study team: "
-                        f"{res['certificate']}")
+        emit(args, res, "Finished an interrupted withdrawal.\n" + _withdrawal_words(res, server))
         return 0
     home.require()
     cfg = home.read_config()
@@ -280,9 +284,49 @@ def _withdraw(args) -> int:
             print("Not withdrawn.")
             return 1
     res = withdraw(home)
-    emit(args, res, f"You have withdrawn; everything lethe held was destroyed. Send this signed note to the "
-                    f"study team so they can remove what they already received: {res['certificate']}")
+    emit(args, res, _withdrawal_words(res, server))
     return 0
+
+
+def _withdrawal_words(res: dict, server: tuple[str, str] | None) -> str:
+    """What happened, in words; sends a signed certificate to the study server once when the card names one.
+
+    Adds ``res["upload"]`` (``sent``, ``failed: reason``, ``not signed`` or ``no server``).
+    """
+    import shlex
+
+    from ..errors import LetheError
+    from ..uploader import upload_withdrawal
+
+    cert = res["certificate"]
+    lines = ["You have withdrawn; everything lethe held on this laptop was destroyed."]
+    if res.get("service_removed"):
+        lines.append(f"The background service was stopped and removed ({res['service_removed']}).")
+    if not res.get("signed", True):
+        res["upload"] = "not signed"
+        lines.append(f"The withdrawal note could NOT be signed: {res.get('unsigned_reason')}")
+        lines.append(f"An unsigned note was left at {cert}; the study cannot check it on its own, so please "
+                     f"contact the study team (the contact on your study card) to confirm your withdrawal.")
+        return "\n".join(lines)
+    if server is None:
+        res["upload"] = "no server"
+        lines.append(f"Send this signed note to the study team so they can remove what they already received: "
+                     f"{cert}")
+        return "\n".join(lines)
+    url, pin = server
+    try:
+        ack = upload_withdrawal(cert, url, pin, attempts=1)
+    except LetheError as e:
+        res["upload"] = f"failed: {e}"
+        later = shlex.join(["lethe", "upload", "--withdrawal", cert, "--server", url, "--pin", pin])
+        lines.append(f"The study server {url} could not be reached ({e}).")
+        lines.append(f"Your signed note is kept at {cert}. Send it later with:\n  {later}\n"
+                     f"or hand it to the study team as agreed.")
+        return "\n".join(lines)
+    res["upload"] = "sent"
+    lines.append(f"The signed note was sent to the study server, which confirmed it ({ack.get('status')}); "
+                 f"a copy stays at {cert}.")
+    return "\n".join(lines)
 
 
 _PAGE_PATHS = {"today": "/", "places": "/places", "test": "/test", "feel": "/feel", "leaves": "/leaves",

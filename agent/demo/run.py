@@ -78,14 +78,19 @@ def run_demo(workdir=None, days: int = 14, seed: int = 7, policy_path=None, out=
             step(ctx)
         ctx.stage("Done")
         ctx.say(f"Everything is in {workdir}")
-        ctx.say(f"Researcher's dashboard: {ctx.facts['dashboard']} (password {ctx.facts['dashboard_password']})")
         if serve:
+            ctx.say(f"Researcher's dashboard: {ctx.facts['dashboard']} "
+                    f"(password {ctx.facts['dashboard_password']})")
             ctx.say("The study server keeps running for the dashboard; press Ctrl-C to stop it.")
             try:
                 while True:
                     time.sleep(3600)
             except KeyboardInterrupt:
                 pass
+        else:
+            ctx.say(f"The demo's study server stops now that the demo is done, so its dashboard "
+                    f"({ctx.facts['dashboard']}) goes with it; 'lethe demo --serve' keeps the server and its "
+                    f"dashboard up until Ctrl-C.")
     finally:
         if getattr(ctx, "server", None) is not None:
             ctx.server.stop()

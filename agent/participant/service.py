@@ -8,6 +8,7 @@ commands, so the participant can see exactly what would be done.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import shlex
 import shutil
@@ -214,6 +215,39 @@ def remove(home, *, dry_run: bool = False, manager: str | None = None) -> Servic
     if p.manager == "systemd":
         _run(["systemctl", "--user", "daemon-reload"], check=False)
     return p
+
+
+def remove_installed(home, manager: str | None = None) -> str | None:
+    """Disable and remove the unit installed for *this* home, if there is one; quiet otherwise.
+
+    Used by withdrawal, so the service does not restart on an emptied home.
+    A unit naming another home is left alone.  Under the service itself
+    (``LETHE_SERVICE=1``) the unit is disabled without ``--now``: the running
+    agent stops by itself once the home is withdrawn.  Returns the path of the
+    file removed, or None.
+    """
+    p = plan(home, manager)
+    if p.path is None:
+        return None
+    try:
+        text = p.path.read_text("utf-8")
+    except OSError:
+        return None
+    if f"--home {shlex.quote(str(Path(home.root)))} run" not in text:
+        return None
+    under_service = os.environ.get("LETHE_SERVICE") == "1"
+    if p.manager != "none":
+        for cmd in p.disable:
+            with contextlib.suppress(OSError):  # no service manager command: the file goes all the same
+                _run([c for c in cmd if not (under_service and c == "--now")], check=False)
+    try:
+        p.path.unlink()
+    except OSError:
+        return None
+    if p.manager == "systemd":
+        with contextlib.suppress(OSError):
+            _run(["systemctl", "--user", "daemon-reload"], check=False)
+    return str(p.path)
 
 
 def _run(cmd, check=True):

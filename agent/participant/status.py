@@ -175,7 +175,7 @@ def status_text(st: dict) -> str:
         lines += [
             f"Places: {v['places']} found, {v['named_places']} named by you.",
             f"Memory test: {q['answered']} answered, {q['skipped']} not sure, {q['pending']} waiting.",
-            f"Summaries for the study: {e['count']} prepared (in the outbox), "
+            f"Summaries for the study: {_summaries_made(e['count'], st.get('upload'))}, "
             f"last {e['last'] or 'never'}; next " + ("can be prepared now" if due == "now" else f"from {due or '-'}")
             + ".",
         ]
@@ -183,6 +183,20 @@ def status_text(st: dict) -> str:
     lines.append(f"Space used on this laptop: {st['disk_bytes'] / 1e6:.1f} MB.")
     lines.append("'lethe open' shows all this on your own page.")
     return "\n".join(lines)
+
+
+def _summaries_made(count: int, up: dict | None) -> str:
+    """How many summaries were made, split the way the upload queue sees them.
+
+    With a study server, a summary is "prepared" until the server acknowledged
+    it and "sent" after (the same words as :func:`upload_lines`); without one,
+    every summary stays in the outbox for the participant to hand over.
+    """
+    if not up or not up.get("server"):
+        return f"{count} prepared (in the outbox)"
+    sent = sum(1 for i in up.get("sent", []) if i.get("kind") == "bundle")
+    waiting = sum(1 for i in up.get("prepared", []) if i.get("kind") == "bundle")
+    return f"{count} made ({sent} sent, {waiting} prepared and waiting)"
 
 
 def upload_lines(up: dict | None) -> list[str]:

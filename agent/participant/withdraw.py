@@ -16,7 +16,18 @@ that key is destroyed:
    the inbox first (raw data), then the rest -- walking directory file
    descriptors opened ``O_NOFOLLOW | O_DIRECTORY``, so a folder swapped for a
    link while withdrawal runs is never followed (the link itself is removed);
-7. afterwards the home holds the certificate and nothing else.
+7. afterwards the home holds the certificate and nothing else;
+8. the per-user background service installed for this home (if any) is
+   disabled and its unit file removed, so it does not restart on an empty home.
+
+**The right to withdraw does not depend on the keyring.**  When the device
+key cannot be had (keys held by the OS keyring, which is gone, locked or does
+not hold them any more), everything is destroyed all the same, and instead of
+a certificate the home keeps an *unsigned withdrawal record*
+(``HOME/withdrawal-unsigned.json``, format ``lethe-withdrawal-unsigned``) that
+says why it is unsigned.  The study cannot verify it
+(``lethe study verify-withdrawal`` refuses it), so the participant is told to
+contact the study.
 
 **Resumable.**  A withdrawal killed at any point after step 4 is finished by
 running ``lethe withdraw`` again: the certificate marks the home as withdrawn,
@@ -39,24 +50,46 @@ import json
 import os
 import stat
 import time
+from pathlib import Path
 
 from ..destroy import TreeReport, destroy_tree, open_dir, open_subdir
-from ..errors import StateError
+from ..errors import LetheError, StateError
 from ..home import Home
 
 CERT_NAME = "withdrawal-certificate.json"
+UNSIGNED_NAME = "withdrawal-unsigned.json"   # kept instead of the certificate when the device key is unavailable
 INBOX_MAX_BYTES = 16 << 20       # overwrite bound for the inbox when the policy cannot be read
 HOME_MAX_BYTES = 1 << 30         # overwrite bound for the home's own files (vault, ledger)
 
 
-def withdrawal_pending(home) -> bool:
-    """True when a withdrawal was committed (its certificate exists) but may not have finished."""
+def withdrawal_record(home) -> Path | None:
+    """The withdrawal certificate (or unsigned record) the home holds, or None when it was not withdrawn."""
     home = home if isinstance(home, Home) else Home(home)
-    try:
-        st = os.lstat(home.root / CERT_NAME)
-    except FileNotFoundError:
-        return False
-    return stat.S_ISREG(st.st_mode)
+    for name in (CERT_NAME, UNSIGNED_NAME):
+        try:
+            st = os.lstat(home.root / name)
+        except OSError:
+            continue
+        if stat.S_ISREG(st.st_mode):
+            return home.root / name
+    return None
+
+
+def withdrawal_pending(home) -> bool:
+    """True when a withdrawal was committed (its certificate or record exists) but may not have finished."""
+    return withdrawal_record(home) is not None
+
+
+def _key_unavailable(home: Home, e: Exception) -> str | None:
+    """Why the device key cannot be had because of the keyring, or None for any other failure."""
+    from ..keystore import KeyringUnavailableError, key_storage
+
+    if isinstance(e, KeyringUnavailableError):
+        return str(e)
+    if not isinstance(e, LetheError) and key_storage(home) == "keyring":
+        # the keyring backends raise their own errors (locked collection, D-Bus gone)
+        return f"the OS keyring did not answer ({type(e).__name__}: {e})"
+    return None
 
 
 def withdraw(home, now: float | None = None, passphrase=None) -> dict:
@@ -66,31 +99,64 @@ def withdraw(home, now: float | None = None, passphrase=None) -> dict:
     -------
     dict
         ``{"certificate": path, "counts_destroyed": {...}, "ledger_head": {...},
-        "resumed": bool, "left": int}``; ``left`` counts entries that could not
-        be removed (a mount point inside the home, an entry that kept changing).
+        "resumed": bool, "left": int, "signed": bool, "unsigned_reason": str | None,
+        "service_removed": path | None}``; ``left`` counts entries that could not
+        be removed (a mount point inside the home, an entry that kept changing);
+        ``signed`` is False when the device key was unavailable and the home
+        keeps an unsigned record instead of a certificate.
     """
     from ..keystore import Keystore
     from ..ledger import Ledger
-    from ..study.withdrawal import make_withdrawal_certificate, write_withdrawal_certificate
+    from ..study.withdrawal import (make_unsigned_withdrawal, make_withdrawal_certificate,
+                                    write_withdrawal_certificate)
 
     home = home if isinstance(home, Home) else Home(home)
-    cert_path = home.root / CERT_NAME
-    if withdrawal_pending(home):
-        return _finish(home, cert_path, passphrase, resumed=True)
+    pending = withdrawal_record(home)
+    if pending is not None:
+        return _finish(home, pending, passphrase, resumed=True)
     home.require()
     now = time.time() if now is None else float(now)
     cfg = home.read_config()
     with home.lock("withdraw"):
         counts = _count(home, passphrase)
         ks = Keystore(home, passphrase=passphrase)
-        device = ks.device_key()
-        ledger = Ledger(home, signing_key=device)
-        ledger.append("withdrawn", scope="all")
-        head = ledger.head()
-        cert = make_withdrawal_certificate(cfg.get("study_id", "?"), cfg.get("pseudonym", "?"), device,
-                                           {"seq": head["seq"], "hash": head["hash"]}, counts, now=now)
-        write_withdrawal_certificate(cert_path, cert)
+        try:
+            device = ks.device_key()
+        except Exception as e:  # noqa: BLE001 - only a keyring failure is let through (see _key_unavailable)
+            why = _key_unavailable(home, e)
+            if why is None:
+                raise
+            device = None
+            cert_path = home.root / UNSIGNED_NAME
+            write_withdrawal_certificate(cert_path, make_unsigned_withdrawal(
+                cfg.get("study_id", "?"), cfg.get("pseudonym", "?"), _public_or_none(ks),
+                _head_or_none(home), counts, why, now=now))
+        if device is not None:
+            ledger = Ledger(home, signing_key=device)
+            ledger.append("withdrawn", scope="all")
+            head = ledger.head()
+            cert = make_withdrawal_certificate(cfg.get("study_id", "?"), cfg.get("pseudonym", "?"), device,
+                                               {"seq": head["seq"], "hash": head["hash"]}, counts, now=now)
+            cert_path = home.root / CERT_NAME
+            write_withdrawal_certificate(cert_path, cert)
     return _finish(home, cert_path, passphrase, resumed=False)
+
+
+def _public_or_none(ks):
+    try:
+        return ks.device_public()
+    except Exception:  # noqa: BLE001 - the record is written without it
+        return None
+
+
+def _head_or_none(home: Home) -> dict | None:
+    from ..ledger import Ledger
+
+    try:
+        head = Ledger(home).head()
+        return {"seq": int(head["seq"]), "hash": str(head["hash"])}
+    except Exception:  # noqa: BLE001 - the record is written without it
+        return None
 
 
 def _finish(home: Home, cert_path, passphrase, resumed: bool) -> dict:
@@ -128,14 +194,19 @@ def _finish(home: Home, cert_path, passphrase, resumed: bool) -> dict:
                     destroy_tree(inbox, max_bytes=inbox_cap, _report=rep)
                 finally:
                     os.close(inbox)
-            top = destroy_tree(root, max_bytes=HOME_MAX_BYTES, keep={CERT_NAME}, _report=rep)
+            top = destroy_tree(root, max_bytes=HOME_MAX_BYTES, keep={cert_path.name}, _report=rep)
         finally:
             os.close(root)
     finally:
         if lock is not None:
             os.close(lock)
+    from .service import remove_installed
+
+    signed = cert.get("format") != "lethe-withdrawal-unsigned"
     return {"certificate": str(cert_path), "counts_destroyed": cert.get("counts_destroyed", {}),
-            "ledger_head": cert.get("ledger_head", {}), "resumed": resumed, "left": top.left}
+            "ledger_head": cert.get("ledger_head") or {}, "resumed": resumed, "left": top.left,
+            "signed": signed, "unsigned_reason": None if signed else cert.get("why_unsigned"),
+            "service_removed": remove_installed(home)}
 
 
 def _inbox_cap(home: Home) -> int:
@@ -167,9 +238,14 @@ def _count(home: Home, passphrase) -> dict:
     if home.vault_path.exists():
         from ..vault import Vault
 
-        with Vault.open(home, passphrase=passphrase) as v:
-            for table, n in v.tables().items():
-                counts[table] = int(n)
+        try:
+            with Vault.open(home, passphrase=passphrase) as v:
+                for table, n in v.tables().items():
+                    counts[table] = int(n)
+        except Exception as e:  # noqa: BLE001 - only a keyring failure is let through (see _key_unavailable)
+            if _key_unavailable(home, e) is None:
+                raise
+            # the vault cannot be opened without its key: its records go uncounted, destroyed all the same
     for sub in ("inbox", "outbox"):
         counts[f"{sub}_files"] = _count_files(home.root, sub)
     if home.ledger_path.exists():

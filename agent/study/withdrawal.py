@@ -68,6 +68,41 @@ def make_withdrawal_certificate(study_id: str, pseudonym: str, device_private_ke
     return doc
 
 
+UNSIGNED_FORMAT = "lethe-withdrawal-unsigned"
+
+
+def make_unsigned_withdrawal(study_id: str, pseudonym: str, device_public_key, ledger_head: dict | None,
+                             counts_destroyed: dict, why_unsigned: str, now=None) -> dict:
+    """The record a device keeps when it withdrew but could not sign (its device key was unavailable).
+
+    Same facts as a certificate where they could be had (the public key comes
+    from ``device.pub``, which needs no secret), no signature, and the reason
+    in words.  It proves nothing: :func:`verify_withdrawal_signature` refuses it.
+    """
+    pub = None
+    if device_public_key is not None:
+        from cryptography.hazmat.primitives import serialization
+
+        pub = device_public_key.public_bytes(serialization.Encoding.Raw, serialization.PublicFormat.Raw)
+    return {"format": UNSIGNED_FORMAT, "version": 1, "signed": False, "study_id": study_id,
+            "pseudonym": pseudonym, "device_public_key": b64e(pub) if pub else None,
+            "device_key_id": device_key_id(pub) if pub else None, "time": _minute_utc(now),
+            "ledger_head": ledger_head,
+            "counts_destroyed": {str(k): int(v) for k, v in sorted(counts_destroyed.items())},
+            "why_unsigned": ("the device key could not be used, so this record is NOT signed and the study "
+                             f"cannot verify it: {why_unsigned}. Everything lethe held on the device was "
+                             "destroyed all the same. Contact the study team to confirm the withdrawal.")}
+
+
+def _refuse_unsigned(cert, source) -> None:
+    if isinstance(cert, dict) and cert.get("format") == UNSIGNED_FORMAT:
+        raise IntegrityError(
+            f"{source}: an UNSIGNED withdrawal record (pseudonym {cert.get('pseudonym')!r}), not a withdrawal "
+            f"certificate: it cannot be verified and is not accepted as one. The device says: "
+            f"{cert.get('why_unsigned', 'no reason given')} Confirm the withdrawal with the participant directly "
+            f"(through the study contact) and record it as your protocol says.")
+
+
 def write_withdrawal_certificate(path, cert: dict) -> Path:
     write_private(Path(path), (json.dumps(cert, indent=2, sort_keys=True) + "\n").encode())
     return Path(path)
@@ -94,6 +129,7 @@ def verify_withdrawal_signature(cert: dict, public_key=None, source="<memory>") 
     from cryptography.hazmat.primitives import serialization
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
+    _refuse_unsigned(cert, source)
     contracts.check_header(cert, WITHDRAWAL_FORMAT, WITHDRAWAL_VERSION, source, "withdrawal certificate")
     contracts.validate("withdrawal", cert, source)
     pub = b64d(cert["device_public_key"], what="device_public_key", source=source)
@@ -129,6 +165,7 @@ def verify_withdrawal(cert: dict, registry, source="<memory>") -> WithdrawalChec
     registry : Registry
         From :class:`agent.study.registry.Registry`.
     """
+    _refuse_unsigned(cert, source)
     if isinstance(cert, dict) and cert.get("study_id") not in (None, registry.study_id):
         raise StateError(f"{source}: [study_id] {cert.get('study_id')!r} is not this study ({registry.study_id!r})")
     if not isinstance(cert, dict) or not isinstance(cert.get("pseudonym"), str):
