@@ -117,3 +117,15 @@ def test_study_verify_withdrawal_refuses_an_unsigned_record(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "UNSIGNED withdrawal record" in err and "the OS keyring is locked" in err
     assert not (study / "withdrawals").exists() or not list((study / "withdrawals").iterdir())
+
+
+
+def test_a_launchd_agent_for_this_home_is_removed(tmp_path, no_service_manager, monkeypatch):
+    # macOS cannot run here: the plist is written where launchd would read it (HOME points into tmp_path) and
+    # launchctl is not on PATH, so only the file's removal is checked
+    monkeypatch.setenv("HOME", str(tmp_path / "user"))
+    home, _ = _world(tmp_path)
+    p = service.plan(home, "launchd")
+    p.path.parent.mkdir(parents=True)
+    p.path.write_text(p.content)
+    assert service.remove_installed(home, "launchd") == str(p.path) and not p.path.exists()

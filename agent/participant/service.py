@@ -233,7 +233,10 @@ def remove_installed(home, manager: str | None = None) -> str | None:
         text = p.path.read_text("utf-8")
     except OSError:
         return None
-    if f"--home {shlex.quote(str(Path(home.root)))} run" not in text:
+    root = str(Path(home.root))
+    ours = (f"--home {shlex.quote(root)} run" in text                      # the systemd unit's ExecStart
+            or f"<string>--home</string>\n      <string>{_xml(root)}</string>" in text)  # the launchd plist
+    if not ours:
         return None
     under_service = os.environ.get("LETHE_SERVICE") == "1"
     if p.manager != "none":
