@@ -41,7 +41,7 @@ def test_b_matching_with_b_1_equals_networkx_max_weight_matching(seed):
     # networkx.max_weight_matching: Edmonds' blossom algorithm (Galil 1986), the
     # reference for b = 1 (a b-matching with b = 1 is a matching)
     rows, cols, w = _random_graph(12, 0.35, seed)
-    keep, method = caps.b_matching(rows, cols, w, 12, 1)
+    keep, method, _ = caps.b_matching(rows, cols, w, 12, 1)
     assert method == "milp"
     G = nx.Graph()
     for i, j, x in zip(rows.tolist(), cols.tolist(), w.tolist(), strict=True):
@@ -57,7 +57,7 @@ def test_b_matching_with_b_1_equals_networkx_max_weight_matching(seed):
 def test_b_matching_equals_brute_force_on_tiny_graphs(seed, b):
     rows, cols, w = _random_graph(6, 0.6, seed)
     assert len(rows) <= 15  # 2^15 subsets at most
-    keep, method = caps.b_matching(rows, cols, w, 6, b)
+    keep, method, _ = caps.b_matching(rows, cols, w, 6, b)
     assert method == "milp"
     assert w[keep].sum() == pytest.approx(_brute_force_b_matching(rows, cols, w, 6, b))
 
@@ -75,7 +75,7 @@ def test_greedy_bound_is_tight_on_the_path_example():
     # path a-b-c-d, weights 1, 1+e, 1, b = 1: greedy takes the middle edge only
     rows, cols, w = np.array([0, 1, 2]), np.array([1, 2, 3]), np.array([1.0, 1.01, 1.0])
     greedy = caps.greedy_degree_cap(rows, cols, caps.order_strongest(np.arange(3), w), 4, 1)
-    keep, _ = caps.b_matching(rows, cols, w, 4, 1)
+    keep, _, _ = caps.b_matching(rows, cols, w, 4, 1)
     assert greedy.tolist() == [False, True, False]
     assert keep.tolist() == [True, False, True]
 
@@ -173,3 +173,117 @@ def test_weights_follow_the_edge_weight_scheme():
     i, j = g.capped.nonzero()
     expect = 1 + np.log(np.asarray(g.counts[i, j]).ravel())
     assert np.asarray(g.weights[i, j]).ravel() == pytest.approx(expect)
+
+
+# -- the routine constraints of the b-matching MILP --------------------------------------------
+
+def _routine_ok(rows, cols, keep, n, kind):
+    """(a) every node with a pair keeps a link; (b) every hour with a place pair reaches one of
+    its places within two kept links.  Written out independently of agent/caps.py."""
+    adj: list[set] = [set() for _ in range(n)]
+    full: list[set] = [set() for _ in range(n)]
+    for i, j, k in zip(rows.tolist(), cols.tolist(), keep.tolist(), strict=True):
+        full[i].add(j)
+        full[j].add(i)
+        if k:
+            adj[i].add(j)
+            adj[j].add(i)
+    if any(full[v] and not adj[v] for v in range(n)):
+        return False, True
+    for h in range(n):
+        if kind[h] != "hour":
+            continue
+        places = {p for p in full[h] if kind[p] == "place"}
+        if places and not (places & (adj[h] | set().union(*[adj[k] for k in adj[h]]))):
+            return True, False
+    return True, True
+
+
+def _brute_force_routine(rows, cols, w, n, b, kind, need=("min_degree", "hour_place")):
+    """Best weight over every edge subset with degrees <= b meeting the required constraints
+    (exhaustive enumeration, common practice, no source)."""
+    best = None
+    for mask in itertools.product((0, 1), repeat=len(rows)):
+        m = np.array(mask, dtype=bool)
+        deg = np.zeros(n, dtype=int)
+        np.add.at(deg, rows[m], 1)
+        np.add.at(deg, cols[m], 1)
+        if deg.max(initial=0) > b:
+            continue
+        a_ok, b_ok = _routine_ok(rows, cols, m, n, kind)
+        if ("min_degree" in need and not a_ok) or ("hour_place" in need and not b_ok):
+            continue
+        best = float(w[m].sum()) if best is None else max(best, float(w[m].sum()))
+    return best
+
+
+_KINDS7 = ["hour", "hour", "hour", "place", "place", "mood", "weekday"]
+
+
+@pytest.mark.parametrize("seed,b", [(0, 1), (1, 2), (2, 2), (3, 1), (7, 2), (8, 3)])
+def test_routine_b_matching_equals_brute_force_on_tiny_graphs(seed, b):
+    rows, cols, w = _random_graph(7, 0.5, seed)
+    assert len(rows) <= 16  # 2^16 subsets at most
+    keep, method, relaxed = caps.b_matching(rows, cols, w, 7, b, node_kind_name=_KINDS7)
+    assert method == "milp"
+    need = [c for c in ("min_degree", "hour_place") if c not in relaxed]
+    ref = _brute_force_routine(rows, cols, w, 7, b, _KINDS7, need)
+    assert ref is not None
+    assert w[keep].sum() == pytest.approx(ref)
+    deg = np.bincount(np.concatenate([rows[keep], cols[keep]]), minlength=7)
+    assert deg.max() <= b
+    a_ok, b_ok = _routine_ok(rows, cols, keep, 7, _KINDS7)
+    assert a_ok or "min_degree" in relaxed
+    assert b_ok or "hour_place" in relaxed
+
+
+def test_routine_b_matching_reports_no_relaxation_when_feasible():
+    rows, cols, w = _random_graph(7, 0.5, 1)
+    assert _brute_force_routine(rows, cols, w, 7, 2, _KINDS7) is not None  # feasible
+    _, method, relaxed = caps.b_matching(rows, cols, w, 7, 2, node_kind_name=_KINDS7)
+    assert (method, relaxed) == ("milp", [])
+
+
+def test_routine_b_matching_prefers_a_place_link_over_a_heavier_one():
+    # hour 0 co-occurs with place 1 (weight 1) and mood 2 (weight 9), b = 1: the plain optimum
+    # keeps 0-2 and leaves the hour without its place; the routine constraint keeps 0-1 and
+    # the mood stays linked through 2-3
+    rows, cols = np.array([0, 0, 2]), np.array([1, 2, 3])
+    w = np.array([1.0, 9.0, 1.0])
+    kind = ["hour", "place", "mood", "weekday"]
+    plain, _, _ = caps.b_matching(rows, cols, w, 4, 1)
+    keep, method, relaxed = caps.b_matching(rows, cols, w, 4, 1, node_kind_name=kind)
+    assert plain.tolist() == [False, True, False]
+    assert keep.tolist() == [True, False, True] and relaxed == []
+
+
+def test_infeasible_hour_place_constraint_is_relaxed_and_reported():
+    # place 0 visited at hours 1, 2, 3, each hour with its own mood (4, 5, 6), mood 7 with the
+    # place; b = 1 allows direct links only, and place 0 takes one: (b) is infeasible, while a
+    # perfect matching 0-7, 1-4, 2-5, 3-6 meets (a)
+    rows = np.array([0, 0, 0, 0, 1, 2, 3])
+    cols = np.array([1, 2, 3, 7, 4, 5, 6])
+    w = np.array([5.0, 5.0, 5.0, 1.0, 1.0, 1.0, 1.0])
+    kind = ["place", "hour", "hour", "hour", "mood", "mood", "mood", "mood"]
+    keep, method, relaxed = caps.b_matching(rows, cols, w, 8, 1, node_kind_name=kind)
+    assert method == "milp" and relaxed == ["hour_place"]
+    assert keep.tolist() == [False, False, False, True, True, True, True]
+
+
+def test_infeasible_min_degree_is_relaxed_and_reported():
+    # a star of moods around a weekday, b = 1: the leaves cannot all keep a link
+    rows, cols, w = np.array([0, 0, 0]), np.array([1, 2, 3]), np.array([1.0, 2.0, 3.0])
+    kind = ["weekday", "mood", "mood", "mood"]
+    keep, method, relaxed = caps.b_matching(rows, cols, w, 4, 1, node_kind_name=kind)
+    assert method == "milp" and relaxed == ["min_degree"]  # no hour: (b) has nothing to constrain
+    assert keep.tolist() == [False, False, True]
+
+
+def test_bmatching_keeps_the_routine_on_the_demo_like_graph():
+    # the shipped rule at the shipped cap (5) on the 14-day demo-like episodes
+    g = CooccurrenceGraph.from_episodes(_routine_episodes(), degree_cap=5, cap_rule="bmatching")
+    d = routine_diagnostics(g)
+    # the MILP may stop at its time limit on this graph; its incumbent meets every constraint
+    assert g.cap_info["method"] in ("milp", "milp_time_limit") and g.cap_info["relaxed"] == []
+    assert g.degrees("capped").max() <= 5
+    assert d["n_isolated"] == 0 and d["hours_without_place_2"] == []

@@ -289,3 +289,37 @@ def test_fit_carries_recovery_figures_and_identifiability(demo):
         assert row["identifiable"] == (row["r"] is not None and row["r"] >= 0.7), name
     assert "recovery r" in f.table()
     json.dumps(f.to_dict())
+
+
+# -- weight groupings (docs/model.md, "Identifiable grouping") ------------------------------------
+
+def _expected_class(pair, coarse):
+    # written out from the definition, independently of likelihood.pair_class / COARSE
+    fam = {"hour": "time", "weekday": "time", "week": "time", "place": "place",
+           "sound": "context", "motion": "context", "mood": "context"}
+    a, b = sorted(fam[k] for k in pair)
+    if coarse and "place" not in (a, b):
+        return "non-place"
+    return {("place", "time"): "time-place", ("context", "place"): "place-context",
+            ("time", "time"): "time-time", ("context", "time"): "time-context",
+            ("context", "context"): "context-context", ("place", "place"): "place-place"}[(a, b)]
+
+
+@pytest.mark.parametrize("weights,coarse", [("grouped", True), ("classes5", False)])
+def test_each_type_pair_falls_in_its_class(demo, weights, coarse):
+    mg = demo[2]
+    spec = ModelSpec.full(mg, weights=weights)
+    for k, pair in enumerate(mg.type_pairs):
+        assert spec.group_names[spec.pair_group[k]] == _expected_class(pair, coarse)
+    assert spec.reference == "time-place"
+
+
+def test_default_grouping_has_at_most_three_classes(demo):
+    spec = ModelSpec.full(demo[2])
+    assert spec.weights == "grouped"
+    assert set(spec.group_names) <= {"time-place", "place-context", "non-place", "place-place"}
+
+
+def test_unknown_weights_scheme_is_refused(demo):
+    with pytest.raises(ValueError, match="expected one of"):
+        ModelSpec.full(demo[2], weights="six")

@@ -11,8 +11,9 @@ def register(sub) -> None:
     p = sub.add_parser("fit", help="fit the memory model to your quiz answers (model vs baselines table)")
     p.add_argument("--seed", type=int, default=0, help="seed for restarts, folds and bootstrap (default 0)")
     p.add_argument("--no-store", action="store_true", help="do not store the result in the vault")
-    p.add_argument("--weights", choices=("grouped", "full"), default="grouped",
-                   help="type-pair weights: five classes of kind families (default) or one per kind pair")
+    p.add_argument("--weights", choices=("grouped", "classes5", "full"), default="grouped",
+                   help="type-pair weights: three classes (time-place, place-context, non-place; default), "
+                        "five classes of kind families, or one per kind pair")
     add_json(p)
     p.set_defaults(func=_fit)
 

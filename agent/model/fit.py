@@ -113,7 +113,7 @@ def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episode
         For the rivals that count visits (most-visited, frequency, ACT-R);
         without them the frequency rival uses the graph's counts and the others
         are left out.
-    weights : {"grouped", "full"}
+    weights : {"grouped", "classes5", "full"}
         Type-pair weight classes (default) or one weight per kind pair.
     n_jobs : int, optional
         Worker processes for the fits (default: every usable core).
