@@ -68,3 +68,20 @@ def test_unknown_parameter_name_is_refused():
     p["model"]["params"]["recovery"]["gamma"] = p["model"]["params"]["recovery"]["beta"]
     with pytest.raises(DataError, match="unexpected key"):
         validate_payload(p)
+
+
+def test_default_grouping_holds_back_every_pair_of_an_unidentifiable_non_place_class():
+    # The default three classes (docs/model.md): hour|weekday (time-time), hour|sound
+    # (time-context) and mood|sound (context-context) all share the "non-place" weight.
+    fit = copy.deepcopy(FIT)
+    fit["params"]["theta"] = {"hour|place": 1.0, "place|sound": 0.4, "hour|weekday": 5.0,
+                              "hour|sound": 5.0, "mood|sound": 5.0}
+    fit["params"]["theta_groups"] = {"time-place": 1.0, "place-context": 0.4, "non-place": 5.0}
+    fit["recovery"] = {"n_sims": 30, "threshold": 0.7, "params": {
+        "theta[place-context]": {"r": 0.9, "bias": 0.0, "rmse": 0.2, "identifiable": True},
+        "theta[non-place]": {"r": 0.33, "bias": -1.0, "rmse": 1.2, "identifiable": False},
+        "beta": {"r": 0.93, "bias": -0.1, "rmse": 0.2, "identifiable": True},
+        "tau": {"r": 0.96, "bias": -0.1, "rmse": 0.2, "identifiable": True}}}
+    out = project_fit(fit, KINDS)
+    assert set(out["params"]["theta"]) == {"hour|place", "place|sound"}
+    assert out["params"]["recovery"]["theta[non-place]"]["value"] == 5.0

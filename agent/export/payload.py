@@ -206,11 +206,15 @@ def _pair_group(pair: str, groups) -> str | None:
     """The weight group of a kind pair: the pair itself (full weights) or its family class."""
     if pair in groups:
         return pair
+    from ..model.likelihood import COARSE  # the default grouping's classes (docs/model.md)
+
     a, _, b = pair.partition("|")
     fa, fb = _PAIR_FAMILY.get(a, a), _PAIR_FAMILY.get(b, b)
     for name in (f"{fa}-{fb}", f"{fb}-{fa}"):
         if name in groups:
-            return name
+            return name  # five family classes
+        if COARSE.get(name) in groups:
+            return COARSE[name]  # three classes: time-time, time-context, context-context share "non-place"
     return None
 
 
