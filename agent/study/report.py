@@ -59,8 +59,13 @@ def _plot_accuracy(quiz, metrics, path: Path) -> bool:
         return False
     plt = _fig()
     n_panels = 1 + len(diffs)
-    fig, axes = plt.subplots(1, n_panels, figsize=(4 * n_panels, 3.2), squeeze=False)
-    ax = axes[0][0]
+    cols = min(n_panels, 3)  # a grid, so that seven rivals stay readable on one page
+    n_rows = -(-n_panels // cols)
+    fig, grid = plt.subplots(n_rows, cols, figsize=(4.2 * cols, 3.2 * n_rows), squeeze=False)
+    panels = list(grid.ravel())
+    for spare in panels[n_panels:]:
+        spare.set_visible(False)
+    ax = panels[0]
     acc = [r["accuracy"] for r in rows if r.get("accuracy") is not None]
     if acc:
         ax.hist(acc, bins=min(30, max(5, len(acc) // 10)), range=(0, 1), color="#4a7ab0")
@@ -71,7 +76,7 @@ def _plot_accuracy(quiz, metrics, path: Path) -> bool:
     ax.set_title(f"Participants' accuracy (n = {len(acc)})", fontsize=9)
     ax.set_xlabel("fraction of answered trials correct", fontsize=8)
     ax.set_ylabel("participants", fontsize=8)
-    for ax, (name, vals) in zip(axes[0][1:], sorted(diffs.items()), strict=True):
+    for ax, (name, vals) in zip(panels[1:n_panels], sorted(diffs.items()), strict=True):
         ax.hist(vals, bins=min(30, max(5, len(vals) // 10)), color="#5b8c5a")
         ax.axvline(0, color="tab:red", lw=1)
         ax.set_title(f"model - {name} (n = {len(vals)})", fontsize=9)
