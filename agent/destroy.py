@@ -107,6 +107,7 @@ def check_name(name: str) -> None:
 
 
 def entry_kind(st: os.stat_result) -> str:
+    """``'file'``, ``'dir'``, ``'symlink'``, ``'fifo'``, ``'socket'`` or ``'device'``."""
     m = st.st_mode
     if stat.S_ISREG(m):
         return "file"

@@ -29,7 +29,7 @@ import stat
 from contextlib import contextmanager
 from dataclasses import dataclass
 
-from ..destroy import destroy_entry, destroy_opened, open_subdir, overwrite_fd
+from ..destroy import destroy_entry, destroy_opened, entry_kind, open_subdir, overwrite_fd
 from ..errors import RejectedInput, StateError
 
 # Reason codes for entries refused before any byte is read.  They extend the
@@ -54,20 +54,8 @@ class UnsafeEntry(RejectedInput):
     """An inbox entry refused for what it *is* (link, pipe, device, size), not its content."""
 
 
-def entry_type(st: os.stat_result) -> str:
-    """``'file'``, ``'dir'``, ``'symlink'``, ``'fifo'``, ``'socket'`` or ``'device'``."""
-    m = st.st_mode
-    if stat.S_ISLNK(m):
-        return "symlink"
-    if stat.S_ISREG(m):
-        return "file"
-    if stat.S_ISDIR(m):
-        return "dir"
-    if stat.S_ISFIFO(m):
-        return "fifo"
-    if stat.S_ISSOCK(m):
-        return "socket"
-    return "device"
+#: ``'file'``, ``'dir'``, ``'symlink'``, ``'fifo'``, ``'socket'`` or ``'device'`` (one definition, in destroy).
+entry_type = entry_kind
 
 
 def same_file(a: os.stat_result, b: os.stat_result, *, strict: bool = False) -> bool:

@@ -122,19 +122,8 @@ def _one_child(jobs, policy, now, timeout_s) -> list:
             for sig in (signal.SIGALRM, signal.SIGTERM, signal.SIGINT):   # not the agent's handlers
                 signal.signal(sig, signal.SIG_DFL)
             signal.alarm(int(timeout_s * len(jobs)) + 1)   # never outlives its deadline, even if orphaned
-            from . import featurise
-
             for name, data in jobs:
-                try:
-                    res = featurise(name, data, policy, now=now)
-                    ans = {"status": "ok", "kind": res.kind, "rows": res.rows, "warnings": list(res.warnings),
-                           "n_samples": int(res.n_samples), "dropped": dict(res.dropped),
-                           "t_start": res.t_start, "t_end": res.t_end}
-                except RejectedInput as e:
-                    ans = {"status": "rejected", "reason": e.reason, "detail": e.detail}
-                except Exception as e:  # noqa: BLE001 - a reader bug is reported by its class
-                    ans = {"status": "error", "error": type(e).__name__}
-                body = json.dumps(ans, default=_plain).encode("utf-8")
+                body = json.dumps(_answer(name, data, policy, now), default=_plain).encode("utf-8")
                 view = memoryview(_LEN.pack(len(body)) + body)
                 while view:
                     view = view[os.write(w, view):]
@@ -292,9 +281,22 @@ class ForkedWorker:
         self.pid, self.jobs_w, self.answers_r = 0, -1, -1
 
 
-def _child_loop(jobs_r: int, ans_w: int, policy) -> None:
+def _answer(name, data, policy, now) -> dict:
+    """One file's outcome as the child reports it (JSON-ready)."""
     from . import featurise
 
+    try:
+        res = featurise(name, data, policy, now=now)
+        return {"status": "ok", "kind": res.kind, "rows": res.rows, "warnings": list(res.warnings),
+                "n_samples": int(res.n_samples), "dropped": dict(res.dropped),
+                "t_start": res.t_start, "t_end": res.t_end}
+    except RejectedInput as e:
+        return {"status": "rejected", "reason": e.reason, "detail": e.detail}
+    except Exception as e:  # noqa: BLE001 - a reader bug is reported by its class
+        return {"status": "error", "error": type(e).__name__}
+
+
+def _child_loop(jobs_r: int, ans_w: int, policy) -> None:
     for sig in (signal.SIGALRM, signal.SIGTERM, signal.SIGINT):   # not the agent's handlers
         signal.signal(sig, signal.SIG_DFL)
 
@@ -307,14 +309,7 @@ def _child_loop(jobs_r: int, ans_w: int, policy) -> None:
         name, data, now, timeout_s = pickle.loads(_read_blocking(jobs_r, n))
         signal.alarm(int(timeout_s) + 2)   # a hang ends the child even if the agent is gone
         try:
-            res = featurise(name, data, policy, now=now)
-            ans = {"status": "ok", "kind": res.kind, "rows": res.rows, "warnings": list(res.warnings),
-                   "n_samples": int(res.n_samples), "dropped": dict(res.dropped),
-                   "t_start": res.t_start, "t_end": res.t_end}
-        except RejectedInput as e:
-            ans = {"status": "rejected", "reason": e.reason, "detail": e.detail}
-        except Exception as e:  # noqa: BLE001 - a reader bug is reported by its class
-            ans = {"status": "error", "error": type(e).__name__}
+            ans = _answer(name, data, policy, now)
         finally:
             signal.alarm(0)
         del data
