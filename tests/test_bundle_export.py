@@ -86,7 +86,13 @@ def test_sequence_numbers_increase_and_relabelling_is_stable(tmp_path):
     assert (a.name, b.name) == ("pX7QmN2a-000001.lethe", "pX7QmN2a-000002.lethe")
     open_bundles(study, [a, b], PASS)
     p1, p2 = (json.loads((study / "received" / "pX7QmN2a" / f"{i}.json").read_text())["payload"] for i in (1, 2))
-    assert p1["edge_list"] == p2["edge_list"]
+    # The same random code for each place, sound and motion label in both bundles.  (The kept
+    # links themselves may differ: a b-matching solve stopped at its time limit depends on the
+    # machine's speed, docs/graph.md.)
+    def codes(p):
+        return {n for n in p["edge_list"]["nodes"] if n.split(":")[0] in ("place", "sound", "motion")}
+
+    assert codes(p1) == codes(p2) and len(codes(p1)) >= 3
 
 
 def test_no_raw_labels_leave(tmp_path):
