@@ -26,7 +26,7 @@ import itertools
 import resource
 import time
 import tracemalloc
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timedelta, UTC
 
 import numpy as np
 
@@ -38,7 +38,7 @@ from agent.spectrum import spectrum_report
 def synthetic_episodes(days: int, n_places: int, n_sounds: int, seed: int = 0) -> list[dict]:
     """Hourly episodes: a home/work routine plus Zipf-distributed other places."""
     rng = np.random.default_rng(seed)
-    start = datetime(2026, 1, 5, tzinfo=timezone.utc)  # a Monday
+    start = datetime(2026, 1, 5, tzinfo=UTC)  # a Monday
     ranks = np.arange(1, n_places + 1, dtype=float)
     zipf = 1.0 / ranks
     zipf /= zipf.sum()

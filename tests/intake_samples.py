@@ -55,7 +55,7 @@ def accel_bytes(t0: float = T0, seconds: float = 60.0, rate_hz: float = 10.0, se
     t = t0 + np.arange(n) / rate_hz
     xyz = np.column_stack([0.02 * rng.standard_normal(n), 0.02 * rng.standard_normal(n),
                            1.0 + 0.02 * rng.standard_normal(n)])
-    body = "\n".join(f"{a:.3f},{x:.4f},{y:.4f},{z:.4f}" for a, (x, y, z) in zip(t, xyz))
+    body = "\n".join(f"{a:.3f},{x:.4f},{y:.4f},{z:.4f}" for a, (x, y, z) in zip(t, xyz, strict=True))
     return f"# unit=g rate_hz={rate_hz:g}\ntime,x,y,z\n{body}\n".encode()
 
 

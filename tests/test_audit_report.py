@@ -40,7 +40,7 @@ def figures(report):
 
 
 def _entries(root):
-    return [json.loads(l) for l in (Path(root) / "ledger.jsonl").read_text("utf-8").splitlines()]
+    return [json.loads(line) for line in (Path(root) / "ledger.jsonl").read_text("utf-8").splitlines()]
 
 
 def test_exposure_matches_independent_computation(home, figures):
@@ -65,7 +65,7 @@ def test_items_per_kind_per_day_match_ledger(home, figures):
     expect: dict = {}
     for e in _entries(home):
         if e["event"] == "received":
-            day = dt.datetime.fromtimestamp(e["t"], dt.timezone.utc).date().isoformat()
+            day = dt.datetime.fromtimestamp(e["t"], dt.UTC).date().isoformat()
             expect.setdefault(day, Counter())[e["kind"]] += 1
     assert figures["daily"] == {d: dict(c) for d, c in expect.items()}
 

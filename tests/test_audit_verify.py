@@ -90,7 +90,7 @@ def test_item_past_raw_window_is_violation(copy):
 
 def test_edited_entry_is_integrity_failure(copy):
     lines = _lines(copy)
-    i = next(k for k, l in enumerate(lines) if b'"received"' in l)
+    i = next(k for k, line in enumerate(lines) if b'"received"' in line)
     lines[i] = lines[i].replace(b'"bytes":1', b'"bytes":9', 1)
     (copy / "ledger.jsonl").write_bytes(b"".join(lines))
     res = verify_home(copy, now=LATER)

@@ -182,7 +182,8 @@ def _outcome(name, data, policy):
         return e
 
 
-FUZZ = settings(max_examples=int(__import__("os").environ.get("LETHE_FUZZ_EXAMPLES", "40")), deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+FUZZ = settings(max_examples=int(__import__("os").environ.get("LETHE_FUZZ_EXAMPLES", "40")), deadline=None,
+                suppress_health_check=[HealthCheck.function_scoped_fixture])
 
 
 @pytest.mark.parametrize("name", [f"snd_{STAMP}.wav", "t.gpx", "t.nmea", "t.gps.csv", "b.accel.csv",

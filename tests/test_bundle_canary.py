@@ -15,6 +15,7 @@ import time
 
 import numpy as np
 import pytest
+from datetime import UTC
 
 pytestmark = pytest.mark.slow
 
@@ -24,9 +25,9 @@ TONE_HZ = 1234.5
 
 
 def _canary_gpx(day_start: float) -> bytes:
-    from datetime import datetime, timezone
+    from datetime import datetime
 
-    day = datetime.fromtimestamp(day_start + 6 * 3600, timezone.utc).strftime("%Y-%m-%d")
+    day = datetime.fromtimestamp(day_start + 6 * 3600, UTC).strftime("%Y-%m-%d")
     pts = "\n".join(f'      <trkpt lat="{CANARY_LAT[:-1]}{i}" lon="{CANARY_LON[:-1]}{i}">'
                     f"<ele>12.0</ele><time>{day}T{CANARY_TIME[:-1]}{i}Z</time><hdop>1.0</hdop></trkpt>"
                     for i in range(2, 5))

@@ -125,7 +125,7 @@ def test_ids_survive_a_refit_with_shuffled_input_and_new_data():
     rng = np.random.default_rng(4)
     stays = _three_places(rng)
     cb = PlaceCodebook(75.0, 2)
-    first = dict(zip(range(len(stays)), cb.update(stays, now=0.0)))
+    first = dict(zip(range(len(stays)), cb.update(stays, now=0.0), strict=True))
     refit = PlaceCodebook(75.0, 2, state=cb.to_dict())
     more = _three_places(rng, n=3, t0=1.81e9)
     order = rng.permutation(len(stays) + len(more))

@@ -16,6 +16,7 @@ import operator
 import re
 from collections import Counter
 from datetime import datetime
+from itertools import pairwise
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
@@ -157,7 +158,7 @@ def test_every_written_fix_is_on_open_ocean(inbox):
 # -- NMEA 0183 ----------------------------------------------------------------------
 def _xor(body: str) -> str:
     # Independent re-implementation of the NMEA 0183 rule for the check below.
-    return "%02X" % functools.reduce(operator.xor, body.encode("ascii"), 0)
+    return f"{functools.reduce(operator.xor, body.encode('ascii'), 0):02X}"
 
 
 def test_every_written_nmea_sentence_has_a_correct_checksum(inbox):
@@ -264,7 +265,7 @@ def test_some_gps_hours_carry_an_outlier_or_a_gap(scenario, policy, tmp_path):
             pts = [(float(a), float(b)) for a, b in re.findall(r'lat="([-0-9.]+)" lon="([-0-9.]+)"', p.read_text())]
         else:
             continue
-        for a, b in zip(pts, pts[1:]):
+        for a, b in pairwise(pts):
             if WGS84.Inverse(a[0], a[1], b[0], b[1])["s12"] > 1500:
                 jumps += 1
     assert jumps > 0
@@ -421,7 +422,7 @@ def test_mood_files_rate_every_policy_emotion_on_the_scale(inbox, policy):
             head, *body = p.read_text().splitlines()
             cols = head.split(",")
             assert cols[0] == "time" and cols[1:] == list(sch.emotions)
-            rows = [(r.split(",")[0], dict(zip(cols[1:], map(int, r.split(",")[1:])))) for r in body]
+            rows = [(r.split(",")[0], dict(zip(cols[1:], map(int, r.split(",")[1:]), strict=True))) for r in body]
         for t, ratings in rows:
             assert datetime.fromisoformat(t.replace("Z", "+00:00")).tzinfo is not None
             assert set(ratings) == set(sch.emotions)
@@ -498,7 +499,7 @@ def test_same_seed_gives_the_same_timeline(scenario):
 def test_truth_tiles_every_day_without_gaps(timeline):
     segs = timeline.segments
     assert segs[0]["t_start"] == timeline.start_utc and segs[-1]["t_end"] == timeline.end_utc
-    for a, b in zip(segs, segs[1:]):
+    for a, b in pairwise(segs):
         assert a["t_end"] == b["t_start"] and a["t_end"] > a["t_start"]
     assert len(timeline.day_starts) == DAYS + 1
 
@@ -645,8 +646,8 @@ def test_simulated_answers_are_noisy_but_informed(scenario):
     ans = simulate_answers(trials, eps, tl, seed=0)
     assert len(ans) == len(trials)
     assert all(a["source"] == "simulated" for a in ans)
-    assert all(a["choice"] is None or a["choice"] in t["options"] for a, t in zip(ans, trials))
-    correct = np.mean([a["choice"] == t["correct"] for a, t in zip(ans, trials)])
+    assert all(a["choice"] is None or a["choice"] in t["options"] for a, t in zip(ans, trials, strict=True))
+    correct = np.mean([a["choice"] == t["correct"] for a, t in zip(ans, trials, strict=True)])
     assert 0.4 < correct < 0.98  # above the 25% chance level, below perfect
     assert all(a["rt_s"] > 0 for a in ans)
     times = [a["answered_at"] for a in ans]
@@ -659,8 +660,8 @@ def test_simulated_answers_lean_towards_habitual_places(scenario):
     eps, dev = _device_episodes(tl, scenario, rng)
     trials = _trials(eps, rng, 300)
     ans = simulate_answers(trials, eps, tl, seed=0)
-    wrong = Counter(a["choice"] for a, t in zip(ans, trials) if a["choice"] not in (None, t["correct"]))
-    offered = Counter(o for a, t in zip(ans, trials) if a["choice"] not in (None, t["correct"])
+    wrong = Counter(a["choice"] for a, t in zip(ans, trials, strict=True) if a["choice"] not in (None, t["correct"]))
+    offered = Counter(o for a, t in zip(ans, trials, strict=True) if a["choice"] not in (None, t["correct"])
                       for o in t["options"] if o != t["correct"])
     # home is the habitual place: among wrong answers it is picked more often than its share of foils
     assert wrong[dev["home"]] / sum(wrong.values()) > offered[dev["home"]] / sum(offered.values())
@@ -746,7 +747,7 @@ def _band_energies(x, sr):
 
     f, pxx = welch(x, fs=sr, nperseg=1024)
     edges = np.geomspace(40, 7000, 17)
-    return np.log10([pxx[(f >= a) & (f < b)].sum() + 1e-20 for a, b in zip(edges, edges[1:])])
+    return np.log10([pxx[(f >= a) & (f < b)].sum() + 1e-20 for a, b in pairwise(edges)])
 
 
 def test_sound_types_are_learnable_from_band_energies():

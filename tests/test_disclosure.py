@@ -28,7 +28,7 @@ def full_episode(i, date="2025-12-01", moods=("calm", "tired")):
 
 
 def l1(a, b):
-    return sum(abs(x - y) for x, y in zip(flatten(a), flatten(b)))
+    return sum(abs(x - y) for x, y in zip(flatten(a), flatten(b), strict=True))
 
 
 # -- suppression ------------------------------------------------------------------

@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from datetime import date, datetime, timezone
+from datetime import date, datetime, UTC
+from itertools import pairwise
 from zoneinfo import ZoneInfo
 
 import pytest
@@ -14,7 +15,7 @@ EMOTIONS = ["happy", "calm", "tired"]
 
 
 def _utc(*a) -> float:
-    return datetime(*a, tzinfo=timezone.utc).timestamp()
+    return datetime(*a, tzinfo=UTC).timestamp()
 
 
 def _episodes(coded, moods=(), tz="UTC", now=None, start=None, window=90, present_at=5):
@@ -37,7 +38,7 @@ def _independent_local_hours(tz: ZoneInfo, day: date) -> list[str]:
     for h in range(24):
         for fold in (0, 1):
             loc = datetime(day.year, day.month, day.day, h, tzinfo=tz, fold=fold)
-            back = loc.astimezone(timezone.utc).astimezone(tz)
+            back = loc.astimezone(UTC).astimezone(tz)
             if back.replace(tzinfo=None) != loc.replace(tzinfo=None):
                 continue  # skipped by a spring-forward gap
             if fold == 1 and loc.utcoffset() == loc.replace(fold=0).utcoffset():
@@ -77,7 +78,7 @@ def test_every_local_hour_is_one_utc_hour_long_on_dst_days(zone, day, expected, 
     tz = ZoneInfo(zone)
     t0 = datetime(day.year, day.month, day.day, tzinfo=tz).timestamp()
     starts = [t for t, _ in local_hour_starts(tz, t0, t0 + 26 * 3600)]
-    assert all(b - a == 3600 for a, b in zip(starts, starts[1:]))
+    assert all(b - a == 3600 for a, b in pairwise(starts))
 
 
 def test_repeated_autumn_hour_has_two_episodes_with_different_utc():

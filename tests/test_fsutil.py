@@ -49,9 +49,8 @@ def test_second_exclusive_lock_is_refused_naming_the_holder(tmp_path):
     # same process conflicts like another process would.
     lock = tmp_path / "state" / "x.lock"
     with file_lock(lock, note="pid 1 (agent)"):
-        with pytest.raises(LockHeld, match=r"pid 1 \(agent\)") as e:
-            with file_lock(lock, blocking=False):
-                pass
+        with pytest.raises(LockHeld, match=r"pid 1 \(agent\)") as e, file_lock(lock, blocking=False):
+            pass
         assert isinstance(e.value, StateError)
 
 

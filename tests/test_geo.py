@@ -37,7 +37,7 @@ def test_earth_radius_is_the_grs80_mean_radius():
     # R1 = (2a + b) / 3 of GRS 80 (Moritz 2000): a = 6378137 m, f = 1/298.257222101.
     a = 6378137.0
     b = a * (1 - 1 / 298.257222101)
-    assert EARTH_RADIUS_M == pytest.approx((2 * a + b) / 3, abs=0.05)
+    assert pytest.approx((2 * a + b) / 3, abs=0.05) == EARTH_RADIUS_M
 
 
 def test_arrays_broadcast_and_scalars_give_floats():

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import itertools
 import math
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timedelta, UTC
 
 import networkx as nx
 import numpy as np
@@ -26,7 +26,7 @@ def demo_like_episodes(days=14, seed=0, n_places=10, p_missing_place=0.05):
     depending on the demo generator.
     """
     rng = np.random.default_rng(seed)
-    start = datetime(2026, 11, 2, tzinfo=timezone.utc)  # a Monday
+    start = datetime(2026, 11, 2, tzinfo=UTC)  # a Monday
     sound_of = {"P1": "S1", "P2": "S2", "P3": "S3", "P4": "S3", "P5": "S3"}
     out = []
     for h in range(days * 24):
@@ -88,7 +88,7 @@ def _to_nx(g, mat):
     G = nx.Graph()
     G.add_nodes_from(g.nodes)
     coo = sp.triu(mat, k=1).tocoo()
-    for i, j, w in zip(coo.row, coo.col, coo.data):
+    for i, j, w in zip(coo.row, coo.col, coo.data, strict=True):
         G.add_edge(g.nodes[i], g.nodes[j], weight=float(w))
     return G
 
@@ -158,7 +158,7 @@ def test_strongest_rule_matches_independent_implementation(episodes):
     first = {}
     for t, e in enumerate(sorted(episodes, key=lambda e: e["utc"])):
         ns = sorted(episode_nodes(e), key=g.index.__getitem__)
-        for k, (a, b) in enumerate(itertools.combinations(ns, 2)):
+        for a, b in itertools.combinations(ns, 2):
             first.setdefault(frozenset((a, b)), (t, g.index[a], g.index[b]))
     order = sorted(G.edges(data="weight"), key=lambda x: (-x[2], first[frozenset(x[:2])]))
     H = nx.Graph()
@@ -249,7 +249,7 @@ def test_weighted_puts_theta_on_capped_edges(episodes):
     assert (w != w.T).nnz == 0
     assert ((w != 0) != (g.capped != 0)).nnz == 0
     coo = sp.triu(w, 1).tocoo()
-    for i, j, v in zip(coo.row, coo.col, coo.data):
+    for i, j, v in zip(coo.row, coo.col, coo.data, strict=True):
         assert v == theta[tuple(sorted((g.kinds[i], g.kinds[j])))]
 
 

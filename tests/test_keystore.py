@@ -63,7 +63,10 @@ def test_two_homes_get_different_keys(tmp_path):
 
 def test_device_public_matches_private(home):
     ks = Keystore(home).ensure()
-    raw = lambda k: k.public_bytes(serialization.Encoding.Raw, serialization.PublicFormat.Raw)
+
+    def raw(k):
+        return k.public_bytes(serialization.Encoding.Raw, serialization.PublicFormat.Raw)
+
     assert raw(ks.device_public()) == raw(ks.device_key().public_key())
     assert (home.keys / "device.pub").read_text().strip() == raw(ks.device_public()).hex()
 
@@ -272,7 +275,7 @@ def test_destroy_removes_every_key_file(home):
 def _ed25519_vectors(n):
     # Format of sign.input: sk||pk : pk : message : signature||message, hex.
     with cryptography_vectors.open_vector_file("asymmetric/Ed25519/sign.input", "r") as f:
-        for _, line in zip(range(n), f):
+        for _, line in zip(range(n), f, strict=False):
             sk_pk, pk, msg, sig_msg, _ = line.strip().split(":")
             yield bytes.fromhex(sk_pk[:64]), bytes.fromhex(pk), bytes.fromhex(msg), bytes.fromhex(sig_msg[:128])
 

@@ -373,7 +373,7 @@ def test_exposure_statistics_match_numpy(home, ledger, clock):
     rng = np.random.default_rng(3)
     complete = T0 + np.cumsum(rng.uniform(5, 60, size=31))
     delay = rng.gamma(2.0, 0.4, size=31)
-    for i, (c, d) in enumerate(zip(complete, delay)):
+    for i, (c, d) in enumerate(zip(complete, delay, strict=True)):
         lifecycle(ledger, clock, i, kind="accel", complete_at=float(c), destroyed_at=float(c + d))
     r = verify_ledger(home, policy=30, now=float(complete[-1]) + 100)
     expected = (complete + delay) - complete  # from the test's own timestamps

@@ -123,7 +123,8 @@ def test_edited_event_name(built):
     msgs = check(home).messages()
     assert "entry 3: content does not match its hash" in msgs
     assert "entry 3: event 'rejected' lacks field 'reason'" in msgs
-    assert "entry 3: event 'rejected' has no field 'exposure_s' (allowed: item, kind, reason, bytes, complete_at)" in msgs
+    assert ("entry 3: event 'rejected' has no field 'exposure_s' (allowed: item, kind, reason, bytes, complete_at)"
+            in msgs)
 
 
 def test_edited_entry_with_recomputed_hash(built):

@@ -30,7 +30,7 @@ def _fill(home, repo, n_trials=60):
     v = Vault.open(home)
     for e in eps:
         v.put("episodes", e["key"], e)
-    for t, r in zip(trials, rows):
+    for t, r in zip(trials, rows, strict=True):
         v.put("trials", t["trial_id"], t)
         v.put("answers", t["trial_id"], {"trial_id": t["trial_id"], "choice": r["choice"], "rt_s": 2.0,
                                           "answered_at": 0.0, "source": "simulated"})

@@ -40,7 +40,7 @@ def test_analytic_gradient_matches_finite_differences(demo):
         p = spec.start(np.random.default_rng(4))
         _, grad = nll_and_grad(spec, cache, p)
 
-        def objective(q):
+        def objective(q, spec=spec, cache=cache):  # bound now: the closure is used inside this iteration
             return nll_and_grad(spec, cache, q)[0]
 
         fd = approx_fprime(p, objective, 1e-6)
@@ -251,7 +251,7 @@ def test_time_links_spec_zeroes_every_other_pair(demo):
     _, _, mg, _, _ = demo
     spec = ModelSpec.time_links(mg)
     theta, _, _ = spec.unpack(spec.start())
-    for pair, w in zip(mg.type_pairs, theta):
+    for pair, w in zip(mg.type_pairs, theta, strict=True):
         timeish = "place" in pair and ({"hour", "weekday", "week"} & set(pair))
         assert (w > 0) == bool(timeish), pair
 

@@ -76,7 +76,7 @@ def test_secular_root_equals_dense_leading_eigenvalue():
 
 def test_fast_matches_eigh_and_eigsh_on_random_graphs():
     rng = np.random.default_rng(2)
-    for k in range(40):
+    for _ in range(40):
         n = int(rng.integers(5, 60))
         w = random_graph(rng, n, float(rng.uniform(0.05, 0.5)))
         x = cue(n, rng.choice(n, int(rng.integers(1, 4)), replace=False))

@@ -5,6 +5,7 @@ from __future__ import annotations
 from card_pin import card_fingerprint  # the participant confirms the study key (issue 12, finding 8)
 import json
 import os
+from pathlib import Path
 
 import pytest
 
@@ -103,7 +104,7 @@ def test_withdrawal_leaves_only_a_verifiable_certificate(enrolled):
     from agent.vault import Vault
 
     home = Home(enrolled["home"])
-    enrolment = json.loads(open(enrolled["enrolment"]).read())  # the researcher's copy
+    enrolment = json.loads(Path(enrolled["enrolment"]).read_text())  # the researcher's copy
     with Vault.open(home) as v:
         v.put("episodes", "k", {"place": "P1"})
     (home.inbox / "waiting.wav").write_bytes(b"RIFF....")

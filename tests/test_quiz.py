@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import json
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timedelta, UTC
 from zoneinfo import ZoneInfo
 
 import pytest
@@ -33,10 +33,10 @@ def make_episodes(start_utc: datetime, hours: int, tz=TZ):
 
 @pytest.fixture
 def episodes():
-    return make_episodes(datetime(2026, 10, 1, tzinfo=timezone.utc), 24 * 21)
+    return make_episodes(datetime(2026, 10, 1, tzinfo=UTC), 24 * 21)
 
 
-NOW = datetime(2026, 10, 22, tzinfo=timezone.utc).timestamp()
+NOW = datetime(2026, 10, 22, tzinfo=UTC).timestamp()
 
 
 def test_every_trial_is_consistent_with_its_episode(episodes, default_policy):
@@ -88,7 +88,7 @@ def test_excluded_and_merged_places(episodes, default_policy):
 
 
 def test_too_few_places_is_a_clear_error(default_policy):
-    eps = make_episodes(datetime(2026, 10, 1, tzinfo=timezone.utc), 24 * 10)
+    eps = make_episodes(datetime(2026, 10, 1, tzinfo=UTC), 24 * 10)
     for e in eps:
         e["place"] = "P1" if e["hour"] < 12 else "P2"
     with pytest.raises(StateError, match="at least 4 visited places"):
@@ -98,7 +98,7 @@ def test_too_few_places_is_a_clear_error(default_policy):
 def test_repeated_autumn_hour_is_named_with_its_offset():
     # IANA tz database: Atlantic/Azores leaves summer time at 01:00 UTC on 2026-10-25,
     # so local 00:00-01:00 occurs twice (UTC+00:00 then UTC-01:00).
-    eps = make_episodes(datetime(2026, 10, 24, 22, tzinfo=timezone.utc), 6)
+    eps = make_episodes(datetime(2026, 10, 24, 22, tzinfo=UTC), 6)
     from agent.quiz import _mark_repeated_hours
 
     _mark_repeated_hours(eps)

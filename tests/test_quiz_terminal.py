@@ -5,7 +5,7 @@ from __future__ import annotations
 from card_pin import card_fingerprint  # the participant confirms the study key (issue 12, finding 8)
 import sys
 import time
-from datetime import datetime, timezone
+from datetime import datetime, UTC
 
 import pexpect
 import pytest
@@ -25,7 +25,7 @@ def quiz_home(tmp_path, repo, default_policy):
                       out=tmp_path / "card.json")
     res = enrol(tmp_path / "home", card, repo / "policies" / "default.toml", consent="harbour-days-2027",
                 confirm_fingerprint=card_fingerprint(card))
-    start = datetime.fromtimestamp(time.time() - 20 * 86400, timezone.utc).replace(minute=0, second=0,
+    start = datetime.fromtimestamp(time.time() - 20 * 86400, UTC).replace(minute=0, second=0,
                                                                                      microsecond=0)
     from agent.home import Home
 

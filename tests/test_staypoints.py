@@ -181,7 +181,7 @@ def test_long_stay_spanning_several_search_blocks():
 def test_leftover_holds_the_callers_own_fix_objects():
     fixes = around(HOME, range(0, 11, 5))
     _, leftover = extract_stays(fixes, 100.0, 20.0)
-    assert all(a is b for a, b in zip(leftover, fixes)) and len(leftover) == 3
+    assert all(a is b for a, b in zip(leftover, fixes, strict=True)) and len(leftover) == 3
 
 
 def test_scalar_and_array_haversine_paths_agree():

@@ -28,7 +28,7 @@ def cohort(tmp_path):
         enroll(s.dir, f)
         devices[name] = key
     paths = []
-    for i, (name, key) in enumerate(devices.items()):
+    for name, key in devices.items():
         for seq in (1, 2):
             paths.append(s.write(s.seal(make_payload(s.policy), seq=seq, device=key), f"{name}-{seq}.lethe"))
     open_bundles(s.dir, paths, PASS)

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import struct
 
-import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
 from _bundle_fixtures import make_payload

@@ -262,20 +262,18 @@ def test_no_plaintext_payload_on_disk(home, vault):
 # -- transactions ----------------------------------------------------------------------
 
 def test_transaction_rolls_back_on_error(vault):
-    with pytest.raises(RuntimeError):
-        with vault.transaction():
-            vault.put("t", "a", 1)
-            raise RuntimeError("boom")
+    with pytest.raises(RuntimeError), vault.transaction():
+        vault.put("t", "a", 1)
+        raise RuntimeError("boom")
     assert vault.count("t") == 0
 
 
 def test_nested_transaction_failure_keeps_outer_writes(vault):
     with vault.transaction():
         vault.put("t", "outer", 1)
-        with pytest.raises(KeyError):
-            with vault.transaction():
-                vault.put("t", "inner", 2)
-                raise KeyError("inner fails")
+        with pytest.raises(KeyError), vault.transaction():
+            vault.put("t", "inner", 2)
+            raise KeyError("inner fails")
         vault.put("t", "after", 3)
     assert vault.rids("t") == ["outer", "after"]
 
@@ -289,11 +287,10 @@ def test_nested_transaction_commits_with_outer(vault):
 
 
 def test_outer_failure_undoes_inner(vault):
-    with pytest.raises(ValueError):
+    with pytest.raises(ValueError), vault.transaction():
         with vault.transaction():
-            with vault.transaction():
-                vault.put("t", "a", 1)
-            raise ValueError
+            vault.put("t", "a", 1)
+        raise ValueError
     assert vault.count("t") == 0
 
 
@@ -624,7 +621,7 @@ def test_two_opens_racing_on_a_first_layout_migrate_once(home):
     def work():
         try:
             opened.append(Vault(home.vault_path, key))
-        except Exception as e:  # pragma: no cover - reported below
+        except Exception as e:  # noqa: BLE001  # pragma: no cover - any failure in the thread is reported below
             errors.append(e)
 
     threads = [threading.Thread(target=work) for _ in range(2)]
