@@ -191,7 +191,7 @@ def ledger_exposure(home) -> dict:
 
     rep = verify_ledger(home)
     e = rep.exposure
-    return {"n": e["n"], "median_s": e["median"], "p95_s": e["p95"], "max_s": e["max"], "ok": rep.ok,
+    return {"n": e["n"], "median_s": e["median_s"], "p95_s": e["p95_s"], "max_s": e["max_s"], "ok": rep.ok,
             "violations": len(rep.violations)}
 
 
@@ -324,7 +324,7 @@ def backlog_run(home, files) -> dict:
     return {"files": len(files), "seconds": round(wall, 2),
             "first_destroy_s": None if first is None else round(first, 3),
             "past_limit": sum(1 for e in rep.exposures if e is not None and e > limit),
-            "exposure_max_s": rep.exposure["max"], "peak_rss_mb": round(peak_kb(err.decode()) / 1024.0, 1),
+            "exposure_max_s": rep.exposure["max_s"], "peak_rss_mb": round(peak_kb(err.decode()) / 1024.0, 1),
             "left_in_inbox": len(os.listdir(home.inbox))}
 
 

@@ -67,7 +67,7 @@ def bench_ledger(root: Path, sizes) -> dict:
         _fill_ledger(lg, n_entries // 3)
         size = home.ledger_path.stat().st_size
         t = time.perf_counter()
-        r = verify_ledger(home, policy=30, now=time.time())
+        r = verify_ledger(home, retention_limit_s=30, now=time.time())
         dt = time.perf_counter() - t
         assert r.ok, r.problems[:3]
         out[f"verify_{r.entries}"] = {"seconds": dt, "entries_per_s": r.entries / dt, "file_mb": size / 1e6}
@@ -129,11 +129,11 @@ def bench_startup_and_verify(root: Path, sizes) -> dict:
         shutil.copy(saved, cp)
         if n_entries == max(sizes):
             t = time.perf_counter()
-            r = verify_ledger(home, policy=30, now=time.time())
+            r = verify_ledger(home, retention_limit_s=30, now=time.time())
             res["verify_all_cores_s"] = time.perf_counter() - t
             assert r.ok, r.problems[:3]
             t = time.perf_counter()
-            verify_ledger(home, policy=30, now=time.time(), workers=1)
+            verify_ledger(home, retention_limit_s=30, now=time.time(), workers=1)
             res["verify_one_process_s"] = time.perf_counter() - t
             res["ed25519_alone_one_core_s"] = _ed25519_alone(home)
             res["verify_vs_ed25519_alone"] = res["verify_all_cores_s"] / res["ed25519_alone_one_core_s"]

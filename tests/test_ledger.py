@@ -13,11 +13,12 @@ import threading
 
 import numpy as np
 import pytest
+import rfc8785
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
 from agent.errors import StateError
 from agent.keystore import Keystore
-from agent.ledger import LEDGER_EVENTS, ZERO_HASH, Ledger, digest, exposure_stats, verify_ledger
+from agent.ledger import LEDGER_EVENTS, ZERO_HASH, Ledger, digest, verify_ledger
 
 T0 = 1_790_000_000.0  # a fixed Unix time, so every timestamp below is known
 
@@ -59,8 +60,9 @@ def lifecycle(lg, clock, i, *, kind="audio", complete_at, destroyed_at, exposure
 
 
 def canonical(obj):
-    # canonical JSON as documented in docs/ledger.md: sorted keys, no whitespace, UTF-8
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+    # Entry version 2 hashes the JSON Canonicalization Scheme (RFC 8785); the reference here is the
+    # rfc8785 package itself, not lethe's wrapper of it.
+    return rfc8785.dumps(obj)
 
 
 # -- layout -----------------------------------------------------------------------
@@ -68,7 +70,7 @@ def canonical(obj):
 def test_first_entry_layout(ledger, keys, clock):
     e = ledger.append("agent_start", version="0.1.0")
     assert list(e)[:5] == ["v", "seq", "prev", "t", "event"]
-    assert e["v"] == 1 and e["seq"] == 0 and e["prev"] == ZERO_HASH and e["t"] == T0
+    assert e["v"] == 2 and e["seq"] == 0 and e["prev"] == ZERO_HASH and e["t"] == T0
     body = {k: v for k, v in e.items() if k not in ("hash", "sig")}
     assert e["hash"] == hashlib.sha256(canonical(body)).hexdigest()
     keys.device_public().verify(bytes.fromhex(e["sig"]), bytes.fromhex(e["hash"]))
@@ -96,7 +98,7 @@ def test_head_and_anchor(home, ledger, keys):
     anchor = json.loads(home.ledger_head_path.read_text())
     assert (anchor["seq"], anchor["hash"]) == (1, e["hash"])
     keys.device_public().verify(bytes.fromhex(anchor["sig"]),
-                                canonical({"v": 1, "seq": 1, "hash": e["hash"]}))
+                                canonical({"v": 2, "seq": 1, "hash": e["hash"]}))
 
 
 def test_files_are_private(home, ledger):
@@ -128,22 +130,22 @@ def test_unknown_field(ledger):
 
 
 def test_missing_field(ledger):
-    with pytest.raises(ValueError, match="event 'received' lacks field 'complete_at'"):
+    with pytest.raises(ValueError, match=r"event 'received': \[complete_at\] required field is missing"):
         ledger.append("received", item=item(1), kind="audio", bytes=1)
 
 
 def test_wrong_field_type(ledger):
-    with pytest.raises(ValueError, match="field 'bytes' = '12' is not a non-negative integer"):
+    with pytest.raises(ValueError, match=r"\[bytes\] expected a non-negative integer, got '12'"):
         ledger.append("received", item=item(1), kind="audio", bytes="12", complete_at=T0)
 
 
 def test_file_name_cannot_pose_as_item(ledger):
-    with pytest.raises(ValueError, match="is not an item id"):
+    with pytest.raises(ValueError, match=r"\[item\] expected an item id"):
         ledger.append("rejected", item="snd_20261103T142000Z.wav", kind="audio", reason="truncated")
 
 
 def test_free_text_reason_refused(ledger):
-    with pytest.raises(ValueError, match="is not a short code"):
+    with pytest.raises(ValueError, match=r"\[reason\] expected a short code"):
         ledger.append("rejected", item=item(1), kind="audio", reason="could not read /home/ana/x.wav")
 
 
@@ -153,7 +155,7 @@ def test_reserved_field_refused(ledger):
 
 
 def test_unknown_kind(ledger):
-    with pytest.raises(ValueError, match="is not one of audio, gps, accel, mood, unknown"):
+    with pytest.raises(ValueError, match=r"\[kind\] expected one of 'audio', 'gps', 'accel', 'mood', 'unknown'"):
         ledger.append("featurised", item=item(1), kind="video", rows=1)
 
 
@@ -187,7 +189,7 @@ def test_concurrent_appends_from_threads(home, keys):
         t.start()
     for t in threads:
         t.join()
-    r = verify_ledger(home, policy=30)
+    r = verify_ledger(home, retention_limit_s=30)
     assert r.ok, r.problems
     assert r.entries == 100 and r.head["seq"] == 99
 
@@ -198,7 +200,7 @@ def test_two_ledger_objects_on_one_file(home, keys):
     for _ in range(5):
         a.append("paused", until=None)
         b.append("resumed")
-    r = verify_ledger(home, policy=30)
+    r = verify_ledger(home, retention_limit_s=30)
     assert r.ok, r.problems
     assert r.entries == 10
 
@@ -221,7 +223,7 @@ def test_concurrent_appends_from_processes(home, keys):
     for p in procs:
         p.join(30)
         assert p.exitcode == 0
-    r = verify_ledger(home, policy=30)
+    r = verify_ledger(home, retention_limit_s=30)
     assert r.ok, r.problems
     assert r.entries == 100
 
@@ -231,7 +233,7 @@ def test_torn_tail_is_repaired_and_recorded(home, ledger):
     ledger.append("resumed")
     with open(home.ledger_path, "ab") as f:
         f.write(b'{"v":1,"seq":2,"prev":"ab')  # a crash mid-write
-    before = verify_ledger(home, policy=30)
+    before = verify_ledger(home, retention_limit_s=30)
     assert [p["check"] for p in before.problems] == ["truncation"]
     fresh = Ledger(home, Keystore(home).device_key())  # the restarted agent
     e = fresh.append("agent_start")
@@ -239,7 +241,7 @@ def test_torn_tail_is_repaired_and_recorded(home, ledger):
     assert events == ["agent_start", "resumed", "repaired", "agent_start"]
     rep = list(fresh.entries())[2]
     assert rep["dropped_bytes"] == len(b'{"v":1,"seq":2,"prev":"ab')
-    after = verify_ledger(home, policy=30)
+    after = verify_ledger(home, retention_limit_s=30)
     assert after.ok, after.problems
     assert after.repairs == [{"seq": 2, "t": rep["t"], "dropped_bytes": rep["dropped_bytes"]}]
     assert after.head == {"seq": 3, "hash": e["hash"]}
@@ -253,7 +255,7 @@ def test_whole_entry_missing_only_its_newline_is_kept(home, ledger):
     fresh = Ledger(home, Keystore(home).device_key())
     fresh.append("agent_stop")
     assert [x["event"] for x in fresh.entries()] == ["agent_start", "resumed", "agent_stop"]
-    assert verify_ledger(home, policy=30).ok
+    assert verify_ledger(home, retention_limit_s=30).ok
 
 
 # -- a damaged ledger never stops appending (issue 12, finding 6) ----------------------
@@ -287,7 +289,7 @@ def test_garbage_line_is_reported_by_the_verifier(home, ledger):
     with open(home.ledger_path, "ab") as f:
         f.write(b"garbage\n")
     Ledger(home, Keystore(home).device_key()).append("resumed")
-    r = verify_ledger(home, policy=30)
+    r = verify_ledger(home, retention_limit_s=30)
     assert not r.ok and r.messages("json") == ["line 2: not valid JSON"]
     assert r.damaged_lines == 1 and r.alarms[0]["lines"] == 1
 
@@ -306,38 +308,59 @@ def test_verify_needs_no_passphrase(home, monkeypatch):
     monkeypatch.setattr(keystore, "SCRYPT_N", 2 ** 10)
     ks = Keystore(home, b"participant secret").ensure()
     Ledger(home, ks.device_key()).append("agent_start")
-    r = verify_ledger(home, policy=30)  # reads keys/device.pub only
+    r = verify_ledger(home, retention_limit_s=30)  # reads keys/device.pub only
     assert r.ok and r.device_key_id == ks.device_key_id()
 
 
 def test_verify_a_ledger_file_directly(home, ledger, keys):
     ledger.append("agent_start")
-    r = verify_ledger(home.ledger_path, public_key=keys.device_public(), policy=30)
+    r = verify_ledger(home.ledger_path, public_key=keys.device_public(), retention_limit_s=30)
     assert r.ok and r.entries == 1
 
 
 def test_missing_ledger_is_reported(home, keys):
-    r = verify_ledger(home, policy=30)
+    r = verify_ledger(home, retention_limit_s=30)
     assert not r.ok and r.messages("missing") == [f"{home.ledger_path}: no ledger here"]
 
 
-def test_policy_object_supplies_the_limit(home, ledger, default_policy):
+def test_home_policy_supplies_the_default_limit(home, ledger, default_policy):
+    import shutil
+    from pathlib import Path
+
+    shutil.copyfile(Path(__file__).resolve().parent.parent / "policies" / "default.toml", home.root / "policy.toml")
     ledger.append("agent_start")
-    r = verify_ledger(home, policy=default_policy)
+    r = verify_ledger(home)
     assert r.limit_s == default_policy.retention.raw_seconds
+
+
+def test_no_limit_and_no_home_policy_is_a_note(home, ledger):
+    ledger.append("agent_start")
+    r = verify_ledger(home)
+    assert r.limit_s is None and any("retention limits not checked" in n for n in r.notes)
+
+
+def test_a_policy_object_is_not_a_limit(home, ledger, default_policy):
+    ledger.append("agent_start")
+    with pytest.raises(ValueError, match="retention_limit_s must be a finite number of seconds"):
+        verify_ledger(home, retention_limit_s=default_policy)
+
+
+def test_negative_limit_refused(home, ledger):
+    with pytest.raises(ValueError, match="retention_limit_s"):
+        verify_ledger(home, retention_limit_s=-1)
 
 
 # -- retention -------------------------------------------------------------------------
 
 def test_destruction_within_window_is_fine(home, ledger, clock):
     lifecycle(ledger, clock, 1, complete_at=T0, destroyed_at=T0 + 1.5)
-    r = verify_ledger(home, policy=30, now=T0 + 100)
+    r = verify_ledger(home, retention_limit_s=30, now=T0 + 100)
     assert r.ok and r.violations == [] and r.exposures == [1.5]
 
 
 def test_late_destruction_is_flagged(home, ledger, clock):
     lifecycle(ledger, clock, 1, complete_at=T0, destroyed_at=T0 + 45.0)
-    r = verify_ledger(home, policy=30, now=T0 + 100)
+    r = verify_ledger(home, retention_limit_s=30, now=T0 + 100)
     assert not r.ok
     (v,) = r.violations
     assert v["check"] == "late" and v["item"] == item(1) and v["exposure_s"] == 45.0
@@ -347,14 +370,14 @@ def test_late_destruction_is_flagged(home, ledger, clock):
 def test_late_recorded_exposure_is_flagged(home, ledger, clock):
     # The entry is written promptly but records that the file lived too long.
     lifecycle(ledger, clock, 1, complete_at=T0, destroyed_at=T0 + 2.0, exposure_s=31.0)
-    r = verify_ledger(home, policy=30, now=T0 + 100)
+    r = verify_ledger(home, retention_limit_s=30, now=T0 + 100)
     assert [v["check"] for v in r.violations] == ["late"]
 
 
 def test_missing_destruction_flagged_past_window(home, ledger, clock):
     clock.t = T0
     ledger.append("received", item=item(7), kind="gps", bytes=2048, complete_at=T0)
-    r = verify_ledger(home, policy=30, now=T0 + 31.0)
+    r = verify_ledger(home, retention_limit_s=30, now=T0 + 31.0)
     assert not r.ok and r.pending == []
     (v,) = r.violations
     assert v["check"] == "not_destroyed" and v["age_s"] == 31.0
@@ -364,7 +387,7 @@ def test_missing_destruction_flagged_past_window(home, ledger, clock):
 def test_pending_within_window_is_not_a_violation(home, ledger, clock):
     clock.t = T0
     ledger.append("received", item=item(7), kind="gps", bytes=2048, complete_at=T0)
-    r = verify_ledger(home, policy=30, now=T0 + 29.0)
+    r = verify_ledger(home, retention_limit_s=30, now=T0 + 29.0)
     assert r.ok and r.violations == []
     assert [(p["item"], p["age_s"]) for p in r.pending] == [(item(7), 29.0)]
 
@@ -375,23 +398,22 @@ def test_exposure_statistics_match_numpy(home, ledger, clock):
     delay = rng.gamma(2.0, 0.4, size=31)
     for i, (c, d) in enumerate(zip(complete, delay, strict=True)):
         lifecycle(ledger, clock, i, kind="accel", complete_at=float(c), destroyed_at=float(c + d))
-    r = verify_ledger(home, policy=30, now=float(complete[-1]) + 100)
+    r = verify_ledger(home, retention_limit_s=30, now=float(complete[-1]) + 100)
     expected = (complete + delay) - complete  # from the test's own timestamps
     e = r.exposure
     assert e["n"] == 31
     # numpy's default percentile method ("linear", Hyndman and Fan type 7)
-    assert e["median"] == pytest.approx(float(np.median(expected)), abs=1e-6)
-    assert e["p95"] == pytest.approx(float(np.percentile(expected, 95)), abs=1e-6)
-    assert e["max"] == pytest.approx(float(expected.max()), abs=1e-6)
-    assert digest(r)["p95_exposure_s"] == e["p95"]
+    assert e["median_s"] == pytest.approx(float(np.median(expected)), abs=1e-6)
+    assert e["p95_s"] == pytest.approx(float(np.percentile(expected, 95)), abs=1e-6)
+    assert e["max_s"] == pytest.approx(float(expected.max()), abs=1e-6)
+    assert digest(r)["p95_exposure_s"] == e["p95_s"]
 
 
-def test_exposure_stats_small_cases():
-    assert exposure_stats([]) == {"n": 0, "median": None, "p95": None, "max": None}
-    assert exposure_stats([2.0]) == {"n": 1, "median": 2.0, "p95": 2.0, "max": 2.0}
-    xs = [4.0, 1.0, 3.0, 2.0]
-    assert exposure_stats(xs)["median"] == float(np.median(xs))
-    assert exposure_stats(xs)["p95"] == pytest.approx(float(np.percentile(xs, 95)))
+def test_exposure_of_an_empty_ledger_has_the_same_names(home, ledger):
+    # one set of names with units (agent.stats.exposure_summary) for status, verify, report and bundles
+    ledger.append("agent_start")
+    assert verify_ledger(home, retention_limit_s=30).exposure == {"n": 0, "median_s": None, "p95_s": None,
+                                                                   "max_s": None}
 
 
 def test_counts_kinds_and_rejections(home, ledger, clock):
@@ -402,7 +424,7 @@ def test_counts_kinds_and_rejections(home, ledger, clock):
     ledger.append("destroyed", item=item(2), kind="unknown", complete_at=T0 + 2, exposure_s=0.1)
     ledger.append("coded", counts={"place": 3, "sound": 2})
     ledger.append("exported", bundle_seq=1, digest="c" * 64)
-    r = verify_ledger(home, policy=30, now=T0 + 10)
+    r = verify_ledger(home, retention_limit_s=30, now=T0 + 10)
     assert r.ok, r.problems
     assert r.counts == {"received": 2, "featurised": 1, "destroyed": 2, "rejected": 1, "coded": 1, "exported": 1}
     assert r.kinds["audio"] == {"received": 1, "featurised": 1, "rejected": 0, "destroyed": 1}
@@ -414,7 +436,7 @@ def test_counts_kinds_and_rejections(home, ledger, clock):
 
 def test_digest_layout(home, ledger, clock):
     lifecycle(ledger, clock, 1, complete_at=T0, destroyed_at=T0 + 2.0)
-    r = verify_ledger(home, policy=30, now=T0 + 10)
+    r = verify_ledger(home, retention_limit_s=30, now=T0 + 10)
     d = digest(r)
     assert set(d) == {"counts", "max_exposure_s", "median_exposure_s", "p95_exposure_s", "violations", "head"}
     assert d["head"] == ledger.head() and d["violations"] == 0 and d["max_exposure_s"] == 2.0
@@ -423,12 +445,12 @@ def test_digest_layout(home, ledger, clock):
 
 def test_report_to_dict_is_json(home, ledger, clock):
     lifecycle(ledger, clock, 1, complete_at=T0, destroyed_at=T0 + 2.0)
-    json.dumps(verify_ledger(home, policy=30, now=T0 + 10).to_dict(), allow_nan=False)
+    json.dumps(verify_ledger(home, retention_limit_s=30, now=T0 + 10).to_dict(), allow_nan=False)
 
 
 def test_summary_holds_no_item_ids(home, ledger, clock):
     lifecycle(ledger, clock, 1, complete_at=T0, destroyed_at=T0 + 2.0)
-    text = verify_ledger(home, policy=30, now=T0 + 10).summary()
+    text = verify_ledger(home, retention_limit_s=30, now=T0 + 10).summary()
     assert "OK" in text and item(1) not in text
 
 
@@ -436,7 +458,7 @@ def test_other_signing_key_detected_by_verifier(home, clock):
     # Entries signed by a key that is not the device's fail (and say which key).
     Keystore(home).ensure()
     Ledger(home, Ed25519PrivateKey.generate(), clock=clock).append("agent_start")
-    r = verify_ledger(home, policy=30)
+    r = verify_ledger(home, retention_limit_s=30)
     assert r.messages("signature")[0].startswith("no entry's signature verifies with device key")
 
 
@@ -456,7 +478,7 @@ def test_repair_at_every_cut_inside_the_last_line(home, keys, tmp_path):
         Ledger(home, keys.device_key()).append("resumed")
         events = [e["event"] for e in Ledger(home).entries()]
         assert events == ["agent_start", "received", "repaired", "resumed"], cut
-        r = verify_ledger(home, policy=1e9, now=T0)
+        r = verify_ledger(home, retention_limit_s=1e9, now=T0)
         assert r.ok, (cut, r.problems)
         assert r.repairs[0]["dropped_bytes"] == cut - last_start
 
@@ -485,9 +507,9 @@ def test_sigkill_during_appends_leaves_a_verifiable_ledger(home, keys):
         time.sleep(0.15 + 0.05 * round_)
         os.kill(p.pid, signal.SIGKILL)
         p.join(10)
-        r = verify_ledger(home, policy=1e9, now=T0)
+        r = verify_ledger(home, retention_limit_s=1e9, now=T0)
         # a kill can tear the last line, and nothing else
         assert {x["check"] for x in r.problems} <= {"truncation"}, r.problems
         Ledger(home, keys.device_key()).append("agent_start")  # the restarted agent
-        after = verify_ledger(home, policy=1e9, now=T0)
+        after = verify_ledger(home, retention_limit_s=1e9, now=T0)
         assert after.ok, after.problems

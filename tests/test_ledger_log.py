@@ -47,7 +47,7 @@ def fill(lg, n, start=0):
 
 
 def section(home):
-    return log_section(verify_ledger(home, policy=1e9, now=T0, keep_leaves=True))
+    return log_section(verify_ledger(home, retention_limit_s=1e9, now=T0, keep_leaves=True))
 
 
 # -- finding 3: the device does not quietly start a new ledger -------------------------
@@ -124,7 +124,7 @@ def test_continuity_flags_a_new_ledger(tmp_path, home, ledger):
     other = tmp_path / "other.jsonl"  # a ledger begun again elsewhere with the same device key
     lg2 = Ledger(other, Keystore(home, use_keyring=False).device_key(), clock=lambda: T0 + 1)
     fill(lg2, 5)
-    second = log_section(verify_ledger(other, public_key=Keystore(home).device_public(), policy=1e9,
+    second = log_section(verify_ledger(other, public_key=Keystore(home).device_public(), retention_limit_s=1e9,
                                        now=T0, keep_leaves=True))
     problems = verify_log_continuity(first, second)
     assert any(p.startswith("reset: the log now starts at") for p in problems)
@@ -201,13 +201,13 @@ def test_open_items_from_the_running_state(home, ledger):
 
 def test_verifier_checks_the_checkpoint(home, ledger, keys):
     fill(ledger, CHECKPOINT_EVERY // 2 + 1)
-    assert verify_ledger(home, policy=1e9, now=T0).ok
+    assert verify_ledger(home, retention_limit_s=1e9, now=T0).ok
     cp = home.root / CHECKPOINT_NAME
     doc = json.loads(cp.read_text())
     doc["state"]["counts"]["destroyed"] -= 5  # a checkpoint that disagrees with the entries before it
     doc["sig"] = keys.device_key().sign(checkpoint_body(doc["state"])).hex()
     cp.write_text(json.dumps(doc))
-    r = verify_ledger(home, policy=1e9, now=T0)
+    r = verify_ledger(home, retention_limit_s=1e9, now=T0)
     assert r.messages("checkpoint") == [
         f"entry {doc['state']['seq']}: the signed checkpoint does not match the ledger up to it "
         f"(counts differ): entries before it were changed"]
@@ -219,7 +219,7 @@ def test_verifier_flags_a_checkpoint_beyond_a_cut_ledger(home, ledger, tmp_path)
     shutil.copy(home.ledger_path, old)
     fill(ledger, CHECKPOINT_EVERY // 2, start=3)
     shutil.copy(old, home.ledger_path)
-    r = verify_ledger(home, policy=1e9, now=T0)
+    r = verify_ledger(home, retention_limit_s=1e9, now=T0)
     msgs = r.messages("checkpoint")
     assert any(m.startswith(f"{CHECKPOINT_NAME}: the signed checkpoint records entry") for m in msgs)
 
@@ -235,7 +235,7 @@ def test_parallel_signature_check_finds_a_bad_signature(home, ledger, monkeypatc
     e["sig"] = ("0" if e["sig"][0] != "0" else "1") + e["sig"][1:]
     lines[30] = json.dumps(e, separators=(",", ":")).encode() + b"\n"
     home.ledger_path.write_bytes(b"".join(lines))
-    r = verify_ledger(home, policy=1e9, now=T0, workers=2)
+    r = verify_ledger(home, retention_limit_s=1e9, now=T0, workers=2)
     assert r.messages("signature") == [f"entry 30: signature does not verify with device key {r.device_key_id}"]
 
 
@@ -285,7 +285,7 @@ def test_opening_reads_only_after_the_checkpoint(home, ledger):
     assert Ledger(home).state().damaged == 0       # from the checkpoint on
     (home.root / CHECKPOINT_NAME).unlink()
     assert Ledger(home).state().damaged == 1       # the whole file
-    assert not verify_ledger(home, policy=1e9, now=T0).ok  # the verifier always reads everything
+    assert not verify_ledger(home, retention_limit_s=1e9, now=T0).ok  # the verifier always reads everything
 
 
 def test_taken_counts_from_the_running_state(home, ledger):

@@ -31,7 +31,7 @@ def test_one_simulated_day_is_taken_in_and_destroyed(fresh_home):
     totals = record(home, days=1, seed=3, say=lambda s: None)
     assert totals["files"] > 100
     assert [p for p in home.inbox.iterdir()] == []
-    rep = verify_ledger(home, policy=home.load_policy())
+    rep = verify_ledger(home, retention_limit_s=home.load_policy().retention.raw_seconds)
     assert rep.ok and not rep.violations
     assert rep.counts["destroyed"] == totals["files"]
     # the study start moved back to the first simulated day, which ended before now

@@ -92,11 +92,11 @@ def plot_exposure(exposures, limit_s, path: Path, stats: dict | None = None) -> 
             ax.annotate(f"{over} later than {hi:g} s", xy=(hi, 0), xytext=(0.97, 0.55),
                         textcoords="axes fraction", ha="right", color="#c62828",
                         arrowprops={"arrowstyle": "->", "color": "#c62828"})
-        if stats and stats.get("median") is not None:
-            ax.axvline(stats["median"], color="#222", linestyle=":", linewidth=1.5,
-                       label=f"median {stats['median']:.2f} s")
-            ax.axvline(stats["p95"], color="#555", linestyle="--", linewidth=1.2,
-                       label=f"95th percentile {stats['p95']:.2f} s")
+        if stats and stats.get("median_s") is not None:
+            ax.axvline(stats["median_s"], color="#222", linestyle=":", linewidth=1.5,
+                       label=f"median {stats['median_s']:.2f} s")
+            ax.axvline(stats["p95_s"], color="#555", linestyle="--", linewidth=1.2,
+                       label=f"95th percentile {stats['p95_s']:.2f} s")
         ax.set_xlabel("seconds from file complete to destroyed")
         ax.set_ylabel("raw files")
         integer_ticks(ax.yaxis)
@@ -205,10 +205,16 @@ def _now_utc(t=None) -> str:
     return time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime(time.time() if t is None else t))
 
 
+# report.json: version 2 names the exposure statistics with their unit (median_s, p95_s, max_s:
+# agent.stats.exposure_summary); the unnumbered first layout called them median, p95, max.
+REPORT_FIGURES_VERSION = 2
+
+
 def report_figures(result) -> dict:
-    """The figures the page shows, as a plain dict (also written to ``report.json``)."""
+    """The figures the page shows, as a plain dict (also written to ``report.json``, docs/audit.md)."""
     r = result.report
-    return {"ok": result.ok, "exit_code": result.exit_code, "verdict": result.verdict(),
+    return {"format": "lethe-audit-figures", "version": REPORT_FIGURES_VERSION,
+            "ok": result.ok, "exit_code": result.exit_code, "verdict": result.verdict(),
             "entries": r.entries, "head": r.head, "limit_s": r.limit_s,
             "exposure": dict(r.exposure), "violations": len(r.violations), "problems": len(r.problems),
             "pending": len(r.pending), "kinds": r.kinds, "daily": r.daily, "rejections": r.rejections,
@@ -283,9 +289,9 @@ def write_report(home, out_dir, policy=None, now: float | None = None) -> Path:
         ["Head entry", Markup(f"{r.head['seq']} <span class=\"fp\">{esc(r.head['hash'])}</span>")],
         ["Device key", Markup(f"<span class=\"fp\">{esc(r.device_key_id or 'unavailable')}</span>")],
         ["Raw files destroyed", f"{e.get('n', 0)}"],
-        ["Exposure median", esc(fmt_s(e.get("median")))],
-        ["Exposure 95th percentile", esc(fmt_s(e.get("p95")))],
-        ["Exposure maximum", esc(fmt_s(e.get("max")))],
+        ["Exposure median", esc(fmt_s(e.get("median_s")))],
+        ["Exposure 95th percentile", esc(fmt_s(e.get("p95_s")))],
+        ["Exposure maximum", esc(fmt_s(e.get("max_s")))],
         ["Policy limit (retention.raw_seconds)", esc("not checked" if r.limit_s is None else f"{r.limit_s:g} s")],
         ["Retention violations", f"{len(r.violations)}"],
         ["Integrity problems", f"{len(r.problems)}"],

@@ -197,8 +197,8 @@ class VerifyResult:
         lines.append("")
         limit = f"{r.limit_s:g} s" if r.limit_s is not None else "not checked (no policy)"
         if e.get("n"):
-            lines.append(f"Raw exposure (complete to destroyed) over {e['n']} items: median {e['median']:.2f} s, "
-                         f"p95 {e['p95']:.2f} s, max {e['max']:.2f} s; limit {limit}")
+            lines.append(f"Raw exposure (complete to destroyed) over {e['n']} items: median {e['median_s']:.2f} s, "
+                         f"p95 {e['p95_s']:.2f} s, max {e['max_s']:.2f} s; limit {limit}")
         else:
             lines.append(f"Raw exposure: no destroyed items recorded; limit {limit}")
         if r.rejections:
@@ -315,8 +315,11 @@ def verify_home(home, policy=None, public_key=None, now: float | None = None, *,
         except PolicyError as e:
             findings.append({"check": "policy", "message": f"the home's policy does not load: {e}"})
             policy = None
-    report = verify_ledger(home, public_key=public_key, policy=policy if policy is not None else (
-        None if withdrawn is None else 0.0), now=now, workers=workers)
+    if policy is not None:
+        limit_s: float | None = float(policy.retention.raw_seconds)
+    else:
+        limit_s = None if withdrawn is None else 0.0
+    report = verify_ledger(home, public_key=public_key, retention_limit_s=limit_s, now=now, workers=workers)
     result = VerifyResult(report, str(home.root),
                           policy.policy.name if policy is not None else None,
                           policy.fingerprint if policy is not None else None, findings,

@@ -44,11 +44,11 @@ from jsonschema.exceptions import ValidationError
 
 from ..errors import DataError
 
-__all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "check_header", "iter_problems", "read_json", "schema",
-           "validate"]
+__all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "check_header", "is_valid", "iter_problems", "read_json",
+           "schema", "validate"]
 
 SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload", "scenario",
-                "bundle-header")
+                "bundle-header", "ledger-entry")
 
 
 class ContractError(DataError):
@@ -126,10 +126,20 @@ _FORMAT_WORDS = {"iana-time-zone": "an IANA time zone name such as 'Europe/Lisbo
 
 
 @cache
-def _validator(name: str) -> Draft202012Validator:
+def _validator(name: str, part: str | None = None) -> Draft202012Validator:
     doc = schema(name)
     Draft202012Validator.check_schema(doc)
-    return Draft202012Validator(doc, format_checker=_FORMATS)
+    whole = Draft202012Validator(doc, format_checker=_FORMATS)
+    if part is None:
+        return whole
+    if part not in doc.get("$defs", {}):
+        raise ValueError(f"contract {name!r} has no part {part!r} under $defs")
+    return whole.evolve(schema={"$ref": f"#/$defs/{part}"})
+
+
+def is_valid(name: str, obj: Any, *, part: str | None = None) -> bool:
+    """Whether ``obj`` meets schema ``name`` (or its ``$defs/<part>``), without building messages."""
+    return _validator(name, part).is_valid(obj)
 
 
 # -- messages ----------------------------------------------------------------------------
@@ -292,12 +302,17 @@ def _lookup(root, path):
     return root
 
 
-def iter_problems(name: str, obj: Any, *, syntax: str = "json") -> Iterator[tuple[str, str]]:
-    """Every ``(dotted key, message)`` problem of ``obj`` against schema ``name``, most relevant first."""
+def iter_problems(name: str, obj: Any, *, syntax: str = "json", part: str | None = None
+                  ) -> Iterator[tuple[str, str]]:
+    """Every ``(dotted key, message)`` problem of ``obj`` against schema ``name``, most relevant first.
+
+    ``part`` checks against the schema's ``$defs/<part>`` instead of the whole
+    document (the ledger checks an event's fields against its event's part).
+    """
     for path, v in _non_finite(obj):
         key = _dotted(path)
         yield key, _Say(syntax).bad_value(v, "a finite number")
-    errors = list(_validator(name).iter_errors(obj))
+    errors = list(_validator(name, part).iter_errors(obj))
     for e in errors:
         p = list(e.absolute_path)
         if p and isinstance(p[-1], int):

@@ -395,7 +395,7 @@ def build_payload_and_relabel(home, policy, vault, now: float | None = None):
     except (LetheError, KeyError, ValueError):  # no policy copy or an unknown zone: UTC dates
         tz = None
     created = coarse_date(now, policy.export.time_granularity, tz)
-    report = verify_ledger(home, policy=policy, keep_leaves=True)
+    report = verify_ledger(home, retention_limit_s=policy.retention.raw_seconds, keep_leaves=True)
     payload = payload_from_parts(policy, episodes=episodes, edges=edges, fit=fit, quiz_score=quiz_score,
                                  ledger_digest=digest(report), relabel=relabel, created=created,
                                  software_version=__version__, log=log_section(report))

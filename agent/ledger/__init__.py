@@ -8,9 +8,16 @@ chain
     Each entry names the hash of the one before it (``prev``); the first names
     64 zeros.  Removing, inserting or reordering entries breaks the chain or
     the sequence numbers.
+entry version
+    ``v``, checked first: 2 (written now) hashes the RFC 8785 canonical JSON
+    (:mod:`agent.canonical`); 1 (still verified) hashed sorted-key JSON.
 entry hash
-    SHA-256 (hex) of the canonical JSON (sorted keys, no whitespace, UTF-8) of
-    the entry without its ``hash`` and ``sig`` members.
+    SHA-256 (hex) of the entry without its ``hash`` and ``sig`` members, in
+    its version's canonical form.
+event contract
+    ``agent/contracts/schemas/ledger-entry.json`` (JSON Schema 2020-12): the
+    envelope and one part per event; the writer refuses an event that does
+    not meet it and the verifier checks every authenticated entry against it.
 signature
     Ed25519 (device key) over the 32 bytes of the entry hash, hex encoded.
 Merkle log
@@ -30,7 +37,7 @@ exposure
     Seconds from a raw file becoming complete (``complete_at``) to its
     destruction; the policy bounds it by ``retention.raw_seconds``.
 
-Modules: :mod:`.events` (the event schema), :mod:`.log` (the writer and its
+Modules: :mod:`.events` (the event contract, versions, hashes), :mod:`.log` (the writer and its
 running state), :mod:`.verify` (verification, bundle log sections, continuity).
 The full format, every check and what the ledger cannot prove are in
 ``docs/ledger.md``.  No entry carries content, a file name or an unkeyed hash.
@@ -40,26 +47,27 @@ from __future__ import annotations
 
 from .events import (
     ENTRY_VERSION,
+    ENTRY_VERSIONS,
     EVENT_FIELDS,
     KINDS,
     LEDGER_EVENTS,
     RESERVED,
     ZERO_HASH,
-    canonical,
+    EventError,
     check_fields,
     entry_hash,
+    validate_event,
 )
 from .log import CHECKPOINT_EVERY, Ledger, LedgerMissingError, LogState, home_holds_data
 from .verify import (
     LedgerReport,
     digest,
-    exposure_stats,
     log_section,
     verify_ledger,
     verify_log_continuity,
 )
 
-__all__ = ["CHECKPOINT_EVERY", "ENTRY_VERSION", "EVENT_FIELDS", "KINDS", "LEDGER_EVENTS", "RESERVED",
-           "ZERO_HASH", "Ledger", "LedgerMissingError", "LedgerReport", "LogState", "canonical", "check_fields",
-           "digest", "entry_hash", "exposure_stats", "home_holds_data", "log_section", "verify_ledger",
-           "verify_log_continuity"]
+__all__ = ["CHECKPOINT_EVERY", "ENTRY_VERSION", "ENTRY_VERSIONS", "EVENT_FIELDS", "KINDS", "LEDGER_EVENTS",
+           "RESERVED", "ZERO_HASH", "EventError", "Ledger", "LedgerMissingError", "LedgerReport", "LogState",
+           "check_fields", "digest", "entry_hash", "home_holds_data", "log_section", "validate_event",
+           "verify_ledger", "verify_log_continuity"]

@@ -28,19 +28,21 @@ from cryptography.exceptions import InvalidSignature
 from ..errors import IntegrityError, LetheError, StateError
 from ..fsutil import FILE_MODE, fsync_dir, lock_fd
 from ..home import Home
+from ..canonical import CanonicalJSONError
 from .events import (
     ENTRY_VERSION,
     HEX64,
     ZERO_HASH,
     anchor_body,
-    canonical,
-    check_fields,
     entry_hash,
     shape_problem,
+    signed_form,
+    validate_event,
 )
 
 CHECKPOINT_EVERY = 512      # entries between signed checkpoints of the running state
-CHECKPOINT_VERSION = 1
+CHECKPOINT_VERSION = 2      # written (RFC 8785 signed form); version 1 (sorted-key JSON) is still read
+CHECKPOINT_VERSIONS = (1, 2)
 CHECKPOINT_NAME = "ledger.checkpoint"
 _READ_BLOCK = 1 << 20
 _COUNTED = ("received", "featurised", "rejected", "destroyed")
@@ -189,18 +191,21 @@ def parse_line(line: bytes) -> dict | None:
     return entry
 
 
-def checkpoint_body(state: dict) -> bytes:
-    """The bytes a checkpoint's signature covers."""
-    return canonical({"v": CHECKPOINT_VERSION, "state": state})
+def checkpoint_body(state: dict, version: int = CHECKPOINT_VERSION) -> bytes:
+    """The bytes a checkpoint's signature covers (``version`` 1: sorted-key JSON; 2: RFC 8785)."""
+    if version not in CHECKPOINT_VERSIONS:
+        raise ValueError(f"checkpoint version {version!r} is not supported")
+    return signed_form({"v": version, "state": state}, version)
 
 
 def read_checkpoint(path: Path, public_key) -> dict | None:
     """The checkpoint's state when its signature verifies with ``public_key``, else None."""
     try:
         doc = json.loads(path.read_text("utf-8"))
-        if doc.get("v") != CHECKPOINT_VERSION:
+        v = doc.get("v")
+        if isinstance(v, bool) or v not in CHECKPOINT_VERSIONS:
             return None
-        public_key.verify(bytes.fromhex(doc["sig"]), checkpoint_body(doc["state"]))
+        public_key.verify(bytes.fromhex(doc["sig"]), checkpoint_body(doc["state"], v))
         return doc["state"]
     except _BAD:  # absent, damaged or not ours: the caller reads from the start
         return None
@@ -420,13 +425,13 @@ class Ledger:
         return self.append_many([(event, fields)])[-1]
 
     def append_many(self, events: Iterable[tuple[str, dict]]) -> list[dict]:
-        """Append several entries with one write and one fsync; returns them in order."""
-        checked = []
-        for event, fields in events:
-            norm, problems = check_fields(event, dict(fields))
-            if problems:
-                raise ValueError(f"ledger: {'; '.join(problems)}")
-            checked.append((event, norm))
+        """Append several entries with one write and one fsync; returns them in order.
+
+        Every event is checked against the ledger-entry contract first; one
+        invalid event refuses the whole group (:class:`~agent.ledger.events.EventError`,
+        a ``ValueError``) and nothing is written.
+        """
+        checked = [(event, validate_event(event, fields)) for event, fields in events]
         if not checked:
             return []
         if self._key is None:
@@ -513,11 +518,11 @@ class Ledger:
     def _whole_torn(torn: bytes, state: LogState) -> dict | None:
         try:
             cand = json.loads(torn)
-        except (ValueError, UnicodeDecodeError):
+            if (isinstance(cand, dict) and shape_problem(cand) is None and cand.get("seq") == state.seq + 1
+                    and cand.get("prev") == state.hash and cand.get("hash") == entry_hash(cand)):
+                return cand
+        except (ValueError, UnicodeDecodeError):  # not JSON, or not representable in its signed form
             return None
-        if (isinstance(cand, dict) and shape_problem(cand) is None and cand.get("seq") == state.seq + 1
-                and cand.get("prev") == state.hash and cand.get("hash") == entry_hash(cand)):
-            return cand
         return None
 
     def _continue_after_anchor(self, seq: int, prev: str) -> tuple[int, str]:
@@ -533,7 +538,7 @@ class Ledger:
             a_seq, a_hash = doc["seq"], doc["hash"]
             if not (isinstance(a_seq, int) and isinstance(a_hash, str) and HEX64.match(a_hash)):
                 return seq, prev
-            self._key.public_key().verify(bytes.fromhex(doc["sig"]), anchor_body(a_seq, a_hash))
+            self._key.public_key().verify(bytes.fromhex(doc["sig"]), anchor_body(a_seq, a_hash, doc.get("v")))
         except _BAD:
             return seq, prev  # no usable anchor of ours: verification reports it
         if a_seq > seq:
@@ -547,7 +552,7 @@ class Ledger:
         tmp = path.with_name(f".{path.name}.tmp{os.getpid()}.{threading.get_ident()}")
         fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, FILE_MODE)
         try:
-            _write_all(fd, canonical(doc) + b"\n")
+            _write_all(fd, signed_form(doc, ENTRY_VERSION) + b"\n")
             os.fsync(fd)
         finally:
             os.close(fd)
@@ -559,7 +564,11 @@ class Ledger:
 
     def _write_checkpoint(self, state: LogState) -> None:
         body = state.to_dict()
-        sig = self._key.sign(checkpoint_body(body)).hex()
+        try:
+            signed = checkpoint_body(body)
+        except CanonicalJSONError:
+            return  # a value RFC 8785 cannot hold (from an old entry): no checkpoint, the log is re-read
+        sig = self._key.sign(signed).hex()
         self._write_signed(self.checkpoint_path, {"v": CHECKPOINT_VERSION, "state": body, "sig": sig})
 
     # -- reading ---------------------------------------------------------------

@@ -19,9 +19,9 @@ from cryptography.exceptions import InvalidSignature
 
 from .. import merkle
 from ..errors import LetheError
-from ..stats import quantile_type7
-from .events import RESERVED, ZERO_HASH, anchor_body, check_fields, entry_hash, shape_problem
-from .log import CHECKPOINT_NAME, LogState, checkpoint_body, resolve_paths
+from ..stats import exposure_summary
+from .events import ZERO_HASH, anchor_body, content_problems, entry_hash, shape_problem
+from .log import CHECKPOINT_NAME, CHECKPOINT_VERSIONS, LogState, checkpoint_body, resolve_paths
 
 PROBLEMS_PER_CHECK = 20  # further problems of one check are summarised in one line
 
@@ -42,7 +42,7 @@ class LedgerReport:
     kinds: dict = field(default_factory=dict)         # kind -> {"received", "featurised", "rejected", "destroyed"}
     rejections: dict = field(default_factory=dict)    # reason -> count
     exposures: list = field(default_factory=list)     # seconds, in ledger order
-    exposure: dict = field(default_factory=dict)      # {"n", "median", "p95", "max"}
+    exposure: dict = field(default_factory=dict)      # {"n", "median_s", "p95_s", "max_s"} (stats.exposure_summary)
     limit_s: float | None = None
     violations: list = field(default_factory=list)    # {"seq", "item", "kind", "check", ...}
     pending: list = field(default_factory=list)       # {"item", "kind", "complete_at", "age_s"}
@@ -72,11 +72,6 @@ class LedgerReport:
         d.pop("leaves", None)
         return d
 
-    @property
-    def exposure_stats(self) -> dict:
-        """Alias of ``exposure``: ``{"n", "median", "p95", "max"}`` in seconds."""
-        return self.exposure
-
     def messages(self, check: str | None = None) -> list[str]:
         return [p["message"] for p in self.problems if check is None or p["check"] == check]
 
@@ -86,8 +81,8 @@ class LedgerReport:
         lines = [f"ledger {self.path}: {self.entries} entries, head {self.head['seq']} "
                  f"({self.head['hash'][:12]}), {'OK' if self.ok else 'FAILED'}"]
         if e.get("n"):
-            lines.append(f"raw exposure over {e['n']} items: median {e['median']:.2f} s, "
-                         f"p95 {e['p95']:.2f} s, max {e['max']:.2f} s"
+            lines.append(f"raw exposure over {e['n']} items: median {e['median_s']:.2f} s, "
+                         f"p95 {e['p95_s']:.2f} s, max {e['max_s']:.2f} s"
                          + (f" (limit {self.limit_s:g} s)" if self.limit_s is not None else ""))
         lines += [f"problem [{p['check']}]: {p['message']}" for p in self.problems]
         if self.violations:
@@ -95,14 +90,6 @@ class LedgerReport:
         if self.pending:
             lines.append(f"{len(self.pending)} item(s) pending destruction within the window")
         return "\n".join(lines)
-
-
-def exposure_stats(exposures) -> dict:
-    """``{"n", "median", "p95", "max"}`` in seconds (None when there are none)."""
-    xs = sorted(float(x) for x in exposures)
-    if not xs:
-        return {"n": 0, "median": None, "p95": None, "max": None}
-    return {"n": len(xs), "median": quantile_type7(xs, 0.5), "p95": quantile_type7(xs, 0.95), "max": xs[-1]}
 
 
 class _Problems:
@@ -124,18 +111,20 @@ class _Problems:
         return self.items
 
 
-def _limit_from(policy, root: Path, notes: list) -> float | None:
-    if policy is None:
+def _limit_from(retention_limit_s, root: Path, notes: list) -> float | None:
+    if retention_limit_s is None:
         path = root / "policy.toml"
         if not path.exists():
-            notes.append("no policy given and none in the home: retention limits not checked")
+            notes.append("no retention limit given and no policy in the home: retention limits not checked")
             return None
         from ..policy import load_policy
 
-        policy = load_policy(path)
-    if isinstance(policy, (int, float)) and not isinstance(policy, bool):
-        return float(policy)
-    return float(policy.retention.raw_seconds)
+        return float(load_policy(path).retention.raw_seconds)
+    if isinstance(retention_limit_s, bool) or not isinstance(retention_limit_s, (int, float)) \
+            or not retention_limit_s >= 0 or retention_limit_s == float("inf"):
+        raise ValueError(f"verify_ledger: retention_limit_s must be a finite number of seconds >= 0, "
+                         f"got {retention_limit_s!r} (pass policy.retention.raw_seconds for a policy)")
+    return float(retention_limit_s)
 
 
 SIG_CHUNK = 4096          # entries per signature-verification task
@@ -201,8 +190,8 @@ class _Signatures:
         return sorted(self.failed)
 
 
-def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | None = None, *,
-                  workers: int | None = None, keep_leaves: bool = False) -> LedgerReport:
+def verify_ledger(home_or_path=None, public_key=None, retention_limit_s: float | None = None,
+                  now: float | None = None, *, workers: int | None = None, keep_leaves: bool = False) -> LedgerReport:
     """Check a ledger's chain, signatures, anchor, checkpoint and retention record.
 
     Parameters
@@ -213,9 +202,10 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
     public_key : Ed25519PublicKey, bytes or str, optional
         The device public key; default ``HOME/keys/device.pub``.  No passphrase
         is ever needed.
-    policy : Policy or float, optional
-        The policy (or directly the raw-retention limit in seconds); default
-        the home's ``policy.toml``.
+    retention_limit_s : float, optional
+        The raw-retention limit in seconds (a policy's ``retention.raw_seconds``);
+        default the limit of the home's ``policy.toml``, and none (retention
+        not judged) when the home has no policy.
     now : float, optional
         Unix seconds at which pending items are judged; default now.
     workers : int, optional
@@ -228,6 +218,16 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
     -------
     LedgerReport
         Never raises for a damaged ledger: every finding is in ``problems``.
+
+    Notes
+    -----
+    Each line is checked in this order, and nothing in it is trusted before
+    it is authenticated: its version (first), the envelope's framing, the
+    entry hash over the version's signed form, the chain, the signature (in
+    batches, across processes for long ledgers; any failure fails the
+    report), and only then its content against the ledger-entry contract
+    (``agent/contracts/schemas/ledger-entry.json``) before it is counted.
+    An entry whose hash does not match is not counted.
     """
     from ..keystore import device_key_id, public_key_from, read_device_public
 
@@ -236,7 +236,7 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
     report = LedgerReport(path=str(path), verified_at=now)
     probs = _Problems()
     notes = report.notes
-    report.limit_s = limit = _limit_from(policy, root, notes)
+    report.limit_s = limit = _limit_from(retention_limit_s, root, notes)
 
     pub = None
     try:
@@ -252,7 +252,7 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
         probs.add(None, "missing", f"{path}: no ledger here")
         report.problems = probs.finish()
         report.ok = False
-        report.exposure = exposure_stats([])
+        report.exposure = exposure_summary([])
         return report
 
     counts, kinds, rejections = report.counts, report.kinds, report.rejections
@@ -282,6 +282,7 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
     leaves: list[bytes] | None = [] if keep_leaves else None
     n_entries = 0
     last_t = None
+    top_version = 0            # versions never go down along the log
 
     with f:
         for lineno, line in enumerate(f, 1):
@@ -324,8 +325,17 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
             max_seq = max(max_seq, seq)
             # hash, signature, chain
             stored = entry["hash"]
-            if entry_hash(entry) != stored:
-                probs.add(seq, "hash", f"entry {seq}: content does not match its hash")
+            try:
+                hash_ok = entry_hash(entry) == stored
+                if not hash_ok:
+                    probs.add(seq, "hash", f"entry {seq}: content does not match its hash")
+            except ValueError as e:  # a version-2 entry holding a value RFC 8785 cannot represent
+                hash_ok = False
+                probs.add(seq, "hash", f"entry {seq}: its content has no signed form ({e})")
+            if entry["v"] < top_version:
+                probs.add(seq, "schema", f"entry {seq}: version {entry['v']} after a version-{top_version} "
+                                         f"entry (versions never go down)")
+            top_version = max(top_version, entry["v"])
             sigs.add(seq, entry["sig"], stored)
             if seq == 0 and entry["prev"] != ZERO_HASH:
                 probs.add(seq, "chain", "entry 0: does not start a chain (prev is not 64 zeros)")
@@ -338,12 +348,12 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
                 _compare_checkpoint(cp, state, probs)
             prev_line = (seq, stored)
             report.head = {"seq": seq, "hash": stored}
-            # event schema and accounting
+            # content: checked against the contract once the entry is authenticated, then accounted
             event = entry["event"]
-            fields = {k: v for k, v in entry.items() if k not in RESERVED}
-            norm, bad = check_fields(event, fields)
-            for b in bad:
-                probs.add(seq, "schema", f"entry {seq}: {b}")
+            bad = content_problems(entry) if hash_ok else ["(not checked: the hash does not match)"]
+            if hash_ok:
+                for b in bad:
+                    probs.add(seq, "schema", f"entry {seq}: {b}")
             counts[event] = counts.get(event, 0) + 1
             t = entry["t"]
             if report.first_t is None:
@@ -352,7 +362,7 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
                 notes.append(f"entry {seq}: time goes back {last_t - t:.1f} s (clock change?)")
             last_t = t
             if not bad:
-                _account(report, event, norm, seq, t, open_items, limit, kinds, rejections)
+                _account(report, event, entry, seq, t, open_items, limit, kinds, rejections)
     report.entries = n_entries
     report.last_t = last_t
     report.size, report.root, report.origin = state.size, state.root(), state.origin
@@ -394,7 +404,7 @@ def verify_ledger(home_or_path=None, public_key=None, policy=None, now: float | 
         else:
             report.pending.append({"seq": rec["seq"], "item": item, "kind": rec["kind"],
                                    "complete_at": rec["complete_at"], "age_s": age})
-    report.exposure = exposure_stats(report.exposures)
+    report.exposure = exposure_summary(report.exposures)
     report.problems = probs.finish()
     report.ok = not report.problems and not report.violations
     return report
@@ -411,8 +421,13 @@ def _read_checkpoint_doc(path: Path, pub, probs) -> dict | None:
         return None
     try:
         state = doc["state"]
+        v = doc.get("v")
+        if isinstance(v, bool) or v not in CHECKPOINT_VERSIONS:
+            probs.add(None, "checkpoint", f"{path.name}: checkpoint version {v!r} is not supported (this lethe "
+                                          f"reads {' and '.join(map(str, CHECKPOINT_VERSIONS))})")
+            return None
         if pub is not None:
-            pub.verify(bytes.fromhex(doc["sig"]), checkpoint_body(state))
+            pub.verify(bytes.fromhex(doc["sig"]), checkpoint_body(state, v))
         if not isinstance(state.get("offset"), int):
             raise ValueError
     except _BAD:
@@ -505,7 +520,7 @@ def _check_anchor(report, probs, anchor_doc, anchor_path, pub, kid, max_seq, has
     if pub is not None:
         try:
             pub.verify(bytes.fromhex(str(anchor_doc.get("sig", ""))),
-                       anchor_body(anchor_doc["seq"], anchor_doc["hash"]))
+                       anchor_body(anchor_doc["seq"], anchor_doc["hash"], anchor_doc.get("v")))
         except _BAD:
             probs.add(None, "anchor", f"{anchor_path.name}: the anchor's signature does not verify with "
                                       f"device key {kid}")
@@ -520,12 +535,18 @@ def _check_anchor(report, probs, anchor_doc, anchor_path, pub, kid, max_seq, has
 
 
 def digest(report: LedgerReport) -> dict:
-    """The compact ledger summary that travels in each bundle."""
-    e = report.exposure or exposure_stats(report.exposures)
+    """The compact ledger summary that travels in each bundle.
+
+    Its exposure members are :func:`agent.stats.exposure_summary`'s
+    ``max_s``, ``median_s`` and ``p95_s`` under the payload's names
+    ``max_exposure_s``, ``median_exposure_s`` and ``p95_exposure_s``
+    (payload schema 2, unchanged).
+    """
+    e = report.exposure or exposure_summary(report.exposures)
     return {"counts": dict(sorted(report.counts.items())),
-            "max_exposure_s": e.get("max"),
-            "median_exposure_s": e.get("median"),
-            "p95_exposure_s": e.get("p95"),
+            "max_exposure_s": e.get("max_s"),
+            "median_exposure_s": e.get("median_s"),
+            "p95_exposure_s": e.get("p95_s"),
             "violations": len(report.violations),
             "head": {"seq": report.head["seq"], "hash": report.head["hash"]}}
 
