@@ -381,3 +381,18 @@ def test_v1_anchor_with_forged_signature_is_caught(tmp_path):
 
 def test_contract_name_is_listed():
     assert "ledger-entry" in contracts.SCHEMA_NAMES
+
+
+def test_docs_tables_in_step_with_the_contract():
+    from agent.ledger import schema_doc
+
+    doc = Path(__file__).resolve().parent.parent / "docs" / "ledger.md"
+    text = doc.read_text("utf-8")
+    assert schema_doc.splice(text) == text, (
+        "docs/ledger.md is stale; run: python -m agent.ledger.schema_doc --write docs/ledger.md")
+
+
+def test_docs_list_every_event():
+    text = (Path(__file__).resolve().parent.parent / "docs" / "ledger.md").read_text("utf-8")
+    for event in LEDGER_EVENTS:
+        assert f"| `{event}` |" in text

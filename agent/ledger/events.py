@@ -49,7 +49,8 @@ class EventError(LetheError, ValueError):
 
 # -- the contract ------------------------------------------------------------------------
 @cache
-def _doc() -> dict:
+def contract() -> dict:
+    """The parsed ledger-entry contract (the JSON Schema document)."""
     return contracts.schema(CONTRACT)
 
 
@@ -57,17 +58,17 @@ def _resolve(spec: dict) -> dict:
     """A field's schema with a top-level ``$ref`` into ``$defs`` followed (once)."""
     ref = spec.get("$ref")
     if isinstance(ref, str) and ref.startswith("#/$defs/"):
-        return {**_doc()["$defs"][ref[len("#/$defs/"):]], **{k: v for k, v in spec.items() if k != "$ref"}}
+        return {**contract()["$defs"][ref[len("#/$defs/"):]], **{k: v for k, v in spec.items() if k != "$ref"}}
     return spec
 
 
 def event_part(event: str) -> dict:
     """The schema part (``$defs/event-<event>``) of one event."""
-    return _doc()["$defs"][f"event-{event}"]
+    return contract()["$defs"][f"event-{event}"]
 
 
-LEDGER_EVENTS: tuple[str, ...] = tuple(_doc()["properties"]["event"]["enum"])
-KINDS: tuple[str, ...] = tuple(_doc()["$defs"]["kind"]["enum"])
+LEDGER_EVENTS: tuple[str, ...] = tuple(contract()["properties"]["event"]["enum"])
+KINDS: tuple[str, ...] = tuple(contract()["$defs"]["kind"]["enum"])
 
 
 def _fields_of(event: str) -> tuple[dict[str, dict], dict[str, dict]]:
