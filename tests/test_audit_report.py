@@ -43,6 +43,12 @@ def _entries(root):
     return [json.loads(line) for line in (Path(root) / "ledger.jsonl").read_text("utf-8").splitlines()]
 
 
+def test_figures_name_their_format_and_version(figures):
+    # report.json version 2: exposure statistics named with their unit (docs/audit.md)
+    assert (figures["format"], figures["version"]) == ("lethe-audit-figures", 2)
+    assert set(figures["exposure"]) == {"n", "median_s", "p95_s", "max_s"}
+
+
 def test_exposure_matches_independent_computation(home, figures):
     xs = ledger_exposures(home)
     e = figures["exposure"]

@@ -176,6 +176,13 @@ def test_cli_verify_json(clean, capsys):
     assert "exposures" not in out["ledger"]
 
 
+def test_cli_verify_json_names_exposure_with_units(clean, capsys):
+    # the same names as lethe status and the board's report.json (agent.stats.exposure_summary)
+    main(["audit", "verify", "--home", str(clean), "--json"])
+    out = json.loads(capsys.readouterr().out)
+    assert set(out["ledger"]["exposure"]) == {"n", "median_s", "p95_s", "max_s"}
+
+
 def test_cli_verify_exit_code_on_tamper(copy, capsys):
     lines = _lines(copy)
     del lines[5]

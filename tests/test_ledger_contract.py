@@ -396,3 +396,50 @@ def test_docs_list_every_event():
     text = (Path(__file__).resolve().parent.parent / "docs" / "ledger.md").read_text("utf-8")
     for event in LEDGER_EVENTS:
         assert f"| `{event}` |" in text
+
+
+def test_every_append_method_checks_the_contract(home, ledger):
+    # Whatever group-append API the writer offers (append, append_many, ...), an event that does not
+    # meet the contract is refused before anything is written.
+    before = home.ledger_path.read_bytes()
+    names = [n for n in dir(Ledger) if n.startswith("append") and callable(getattr(Ledger, n))]
+    assert {"append", "append_many"} <= set(names)
+    for name in names:
+        method = getattr(ledger, name)
+        with pytest.raises(EventError, match="unknown event 'bogus'"):
+            method("bogus") if name == "append" else method([("bogus", {})])
+    assert home.ledger_path.read_bytes() == before
+
+
+def test_v1_checkpoint_is_still_read_and_verified(home, keys, ledger):
+    # a checkpoint signed in version 1's form (sorted-key JSON) by the device key
+    from agent.ledger.log import LogState
+
+    ledger.append("agent_stop")
+    state = Ledger(home).state().to_dict()
+    body = json.dumps({"v": 1, "state": state}, sort_keys=True, separators=(",", ":"),
+                      ensure_ascii=False).encode()
+    doc = {"v": 1, "state": state, "sig": keys.device_key().sign(body).hex()}
+    (home.root / "ledger.checkpoint").write_text(json.dumps(doc))
+    r = verify_ledger(home, retention_limit_s=60, now=T0 + 100)
+    assert r.ok, r.problems
+    assert r.messages("checkpoint") == []
+    assert LogState.from_dict(state).seq == 1
+
+
+def test_checkpoint_of_an_unknown_version_is_a_problem(home, keys, ledger):
+    state = Ledger(home).state().to_dict()
+    (home.root / "ledger.checkpoint").write_text(json.dumps({"v": 9, "state": state, "sig": "00" * 64}))
+    r = verify_ledger(home, retention_limit_s=60, now=T0 + 100)
+    assert r.messages("checkpoint") == ["ledger.checkpoint: checkpoint version 9 is not supported (this lethe "
+                                        "reads 1 and 2)"]
+
+
+def test_v2_checkpoint_is_written_and_signs_rfc8785(home, keys):
+    from agent.ledger import CHECKPOINT_EVERY
+
+    lg = Ledger(home, keys.device_key(), clock=Clock())
+    lg.append_many([("agent_start", {})] * CHECKPOINT_EVERY)
+    doc = json.loads((home.root / "ledger.checkpoint").read_text())
+    assert doc["v"] == 2
+    keys.device_public().verify(bytes.fromhex(doc["sig"]), rfc8785.dumps({"v": 2, "state": doc["state"]}))

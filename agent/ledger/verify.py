@@ -350,10 +350,11 @@ def verify_ledger(home_or_path=None, public_key=None, retention_limit_s: float |
             report.head = {"seq": seq, "hash": stored}
             # content: checked against the contract once the entry is authenticated, then accounted
             event = entry["event"]
-            bad = content_problems(entry) if hash_ok else ["(not checked: the hash does not match)"]
+            trusted = hash_ok
             if hash_ok:
-                for b in bad:
+                for b in content_problems(entry):
                     probs.add(seq, "schema", f"entry {seq}: {b}")
+                    trusted = False
             counts[event] = counts.get(event, 0) + 1
             t = entry["t"]
             if report.first_t is None:
@@ -361,7 +362,7 @@ def verify_ledger(home_or_path=None, public_key=None, retention_limit_s: float |
             if last_t is not None and t < last_t - 1.0:
                 notes.append(f"entry {seq}: time goes back {last_t - t:.1f} s (clock change?)")
             last_t = t
-            if not bad:
+            if trusted:
                 _account(report, event, entry, seq, t, open_items, limit, kinds, rejections)
     report.entries = n_entries
     report.last_t = last_t
