@@ -140,3 +140,40 @@ def test_batched_windows_equal_window_by_window_computation():
         assert r[1] == pytest.approx(F.enmo_g(xyz[sel]).mean())
         assert r[2] == pytest.approx(mag[sel].std())
         assert r[3] == pytest.approx(F.dominant_hz(mag[sel][None, :], RATE)[0])
+
+
+def _windows_by_definition(t, xyz, rate, window_s):
+    """Window by window, as docs/features.md defines them (floor of the offset over window_s)."""
+    k = np.floor((t - t[0]) / window_s).astype(int)
+    mag = np.linalg.norm(xyz, axis=1)
+    rows = []
+    for w in range(k[-1] + 1):
+        sel = k == w
+        if sel.sum() >= 0.5 * rate * window_s:
+            rows.append([t[0] + w * window_s, F.enmo_g(xyz[sel]).mean(), mag[sel].std()])
+    return rows, k[-1] + 1 - len(rows)
+
+
+@pytest.mark.parametrize("gap_s", [25.0, 86400.0])
+def test_windows_across_a_gap_equal_the_definition(gap_s):
+    # Two 60 s runs of walking, a gap between them: a day's gap is 8,640 empty windows,
+    # counted as skipped without a per-window array over the day.
+    t1, xyz1 = gait(1.8, n=600)
+    t2, xyz2 = gait(2.2, n=600)
+    t = np.concatenate([t1, t2 + 60.0 + gap_s])
+    xyz = np.vstack([xyz1, xyz2])
+    rows, skipped = F.accel_windows(t, xyz, RATE, 10.0)
+    want, want_skipped = _windows_by_definition(t, xyz, RATE, 10.0)
+    assert skipped == want_skipped and len(rows) == len(want)
+    assert np.allclose(np.array(rows)[:, :3], np.array(want), rtol=1e-12, atol=1e-12)
+
+
+def test_full_windows_equal_the_definition():
+    # The reshape path (every window full, one length) against the window-by-window definition.
+    t, xyz = gait(1.3, n=900)
+    xyz[:, 0] += 0.2 * np.cos(2 * np.pi * 0.7 * (t - t[0]))
+    rows, skipped = F.accel_windows(t, xyz, RATE, 10.0)
+    want, _ = _windows_by_definition(t, xyz, RATE, 10.0)
+    assert skipped == 0 and np.allclose(np.array(rows)[:, :3], np.array(want), rtol=1e-12, atol=1e-12)
+    mag = np.linalg.norm(xyz, axis=1).reshape(9, 100)
+    assert [r[3] for r in rows] == pytest.approx(F.dominant_hz(mag, RATE).tolist())

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import io
+
 import numpy as np
 import pytest
 
@@ -223,3 +225,104 @@ def test_partition_median_equals_numpy_median(n):
 
     x = np.random.default_rng(n).standard_normal(n)
     assert _median(x) == float(np.median(x))
+
+
+# -- the whole reader against the csv module, edge cases of the text form ----------------
+# Reference: Python's csv module splits the rows (it accepts \n, \r\n and \r line ends) and
+# float() converts each field; blank lines carry no sample.  The reader must give the same
+# samples, whichever of its parsers read the body.
+def _csv_reference(data: bytes) -> np.ndarray:
+    import csv
+
+    text = data.decode("utf-8-sig")
+    rows = [r for r in csv.reader(io.StringIO(text, newline=""))][2:]
+    return np.array([[float(f) for f in r] for r in rows if r], dtype=np.float64)
+
+
+def _rows(n=40, start=T0):
+    rng = np.random.default_rng(n)
+    xyz = rng.normal(0.0, 0.05, (n, 3)) + [0.0, 0.0, 1.0]
+    return [f"{start + i / 10:.1f},{x:.4f},{y:.4f},{z:.4f}" for i, (x, y, z) in enumerate(xyz)]
+
+
+@pytest.mark.parametrize("n", [40, 3000])   # below and above PLAIN_MIN_BYTES
+@pytest.mark.parametrize("variant", ["lf", "crlf", "no_final_newline", "blank_lines", "exponents",
+                                     "header_case_and_spaces", "bom", "spaces_in_fields"])
+def test_reader_equals_the_csv_module(default_policy, n, variant):
+    lines = ["# unit=g rate_hz=10", "time,x,y,z"] + _rows(n)
+    end = "\n"
+    if variant == "crlf":
+        end = "\r\n"
+    if variant == "blank_lines":
+        lines[5:5] = ["", ""]
+        lines.append("")
+    if variant == "exponents":
+        lines[4] = ",".join(f"{float(f):.15e}" for f in lines[4].split(","))
+    if variant == "header_case_and_spaces":
+        lines[1] = " Time, X ,y,Z "
+    if variant == "spaces_in_fields":
+        lines[6] = lines[6].replace(",", " , ")
+    text = end.join(lines) + ("" if variant == "no_final_newline" else end)
+    data = ("\ufeff" if variant == "bom" else "").encode() + text.encode()
+    ref = _csv_reference(data)
+    rec = read_accel(NAME, data, default_policy, now=NOW)
+    assert np.array_equal(rec.t, ref[:, 0]) and np.array_equal(rec.xyz_g, ref[:, 1:])
+
+
+def _bad_value_detail(data, policy):
+    with pytest.raises(RejectedInput) as e:
+        read_accel(NAME, data, policy, now=NOW)
+    assert e.value.reason == "bad_value"
+    return str(e.value)
+
+
+def _file(rows):
+    return ("# unit=g rate_hz=10\ntime,x,y,z\n" + "\n".join(rows) + "\n").encode()
+
+
+@pytest.mark.parametrize("n", [40, 3000])
+def test_a_bad_value_names_its_line_and_column_not_its_content(default_policy, n):
+    rows = _rows(n)
+    rows[9] = rows[9].split(",", 1)[0] + ",secret,0,1"       # file line 12: unit, header, 9 rows before
+    msg = _bad_value_detail(_file(rows), default_policy)
+    assert "line 12" in msg and "x value" in msg and "secret" not in msg
+
+
+def test_a_bad_value_after_blank_lines_names_the_file_line(default_policy):
+    rows = _rows(40)
+    rows[3:3] = ["", ""]
+    rows[9] = rows[9].rsplit(",", 1)[0] + ",oops"          # file line 12 (blank lines counted)
+    assert "line 12" in _bad_value_detail(_file(rows), default_policy)
+
+
+def test_a_row_with_three_values_names_its_line(default_policy):
+    rows = _rows(40)
+    rows[20] = rows[20].rsplit(",", 1)[0]                   # file line 23
+    msg = _bad_value_detail(_file(rows), default_policy)
+    assert "line 23" in msg and "3 values" in msg
+
+
+def test_every_row_with_five_values_is_a_bad_value(default_policy):
+    rows = [r + ",0.5" for r in _rows(40)]
+    msg = _bad_value_detail(_file(rows), default_policy)
+    assert "line 3" in msg and "5 values" in msg
+
+
+@pytest.mark.parametrize("token", ["nan", "inf", "-inf", "NaN", "Infinity"])
+def test_nan_and_inf_name_their_line(default_policy, token):
+    rows = _rows(3000)
+    rows[2500] = rows[2500].rsplit(",", 1)[0] + "," + token   # file line 2503
+    msg = _bad_value_detail(_file(rows), default_policy)
+    assert "line 2503" in msg and "z value is NaN or infinite" in msg
+
+
+def test_a_trailing_comma_is_a_bad_value(default_policy):
+    rows = _rows(40)
+    rows[0] += ","
+    assert "line 3 has 5 values" in _bad_value_detail(_file(rows), default_policy)
+
+
+@pytest.mark.parametrize("header", ["time,x,y", "t,x,y,z", "time;x;y;z", "time,x,y,z,w"])
+def test_header_variants_that_are_not_time_x_y_z_are_bad_header(default_policy, header):
+    data = ("# unit=g rate_hz=10\n" + header + "\n" + "\n".join(_rows(40)) + "\n").encode()
+    assert reason(data, default_policy) == "bad_header"

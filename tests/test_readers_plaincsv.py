@@ -179,3 +179,38 @@ def test_declines_mantissa_of_2_pow_53():
     # 2**53 = 9007199254740992 (exact); 9007199254740993 is not a double.
     assert parse_plain(b"9007199254740993,2,3,4\n", 4) is None
     assert parse_plain(b"9007199254740991,2,3,4\n", 4)[0, 0] == 2.0 ** 53 - 1
+
+
+@st.composite
+def fixed_width_body(draw):
+    """Rows as recorders write them: each column at one width (digits before and after the
+    point), the sign free.  The reader's one-mask-per-column path, long columns included."""
+    n_cols = draw(st.integers(1, 5))
+    forms = [(draw(st.integers(1, 10)), draw(st.integers(0, 5))) for _ in range(n_cols)]
+    n_rows = draw(st.integers(1, 30))
+    rows = []
+    for _ in range(n_rows):
+        fields = []
+        for left, right in forms:
+            digits = draw(st.text(alphabet="0123456789", min_size=left + right, max_size=left + right))
+            sign = draw(st.sampled_from(["", "-"]))
+            fields.append(sign + digits[:left] + ("." + digits[left:] if right else ""))
+        rows.append(",".join(fields))
+    return "\n".join(rows).encode() + b"\n", n_cols
+
+
+@given(fixed_width_body())
+@settings(max_examples=300, deadline=None)
+def test_fixed_width_columns_equal_float_and_loadtxt(case):
+    body, n_cols = case
+    got = parse_plain(body, n_cols)
+    assert got is not None   # at most 15 characters and 5 decimals: always the plain form
+    assert _same(got, _floats(body, n_cols))
+    assert _same(got, np.loadtxt(io.BytesIO(body), delimiter=",", ndmin=2))
+
+
+def test_columns_of_one_width_but_a_wider_row():
+    # The first rows set each column's width; a wider field further down takes the
+    # per-field masks (float() reference).
+    body = b"1.5,-2.25,3\n1.5,-2.25,3\n12345678.5,-2.25,30\n"
+    assert _same(parse_plain(body, 3), _floats(body, 3))

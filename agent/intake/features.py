@@ -402,40 +402,59 @@ def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: fl
                   mag_g: np.ndarray | None = None):
     """Per-window features; returns ``(rows, n_skipped)``.
 
-    Windows start at ``t[0] + k * window_s``.  A window holding fewer than half
-    the samples the rate implies (the ragged end of a burst, or a gap) is
-    skipped and counted.  ``mag_g`` is the vector magnitude if the caller has it.
+    Windows start at ``t[0] + k * window_s``: sample ``i`` is in window
+    ``floor((t[i] - t[0]) / window_s)``.  A window holding fewer than half the
+    samples the rate implies (the ragged end of a burst, or a gap) is skipped
+    and counted.  ``mag_g`` is the vector magnitude if the caller has it.
+
+    ``t`` is strictly increasing (the readers check it), so each window is a
+    contiguous run of samples.  The usual burst, every window full and of one
+    length, is a reshape (its bounds found by one binary search); otherwise the
+    runs are found where the window number changes, so the work is linear in
+    the samples however long a gap is.
     """
-    mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g)) if mag_g is None else mag_g
-    enmo = np.maximum(mag - 1.0, 0.0)
-    k = np.floor((t - t[0]) / window_s).astype(np.int64)
-    n_win = int(k[-1]) + 1
-    counts = np.bincount(k, minlength=n_win)
-    expected = rate_hz * window_s
-    keep = np.flatnonzero(counts >= 0.5 * expected)
-    n_kept = counts[keep]   # at least one sample each: no division by zero below
-    enmo_mean = np.bincount(k, weights=enmo, minlength=n_win)[keep] / n_kept
-    mag_mean = np.bincount(k, weights=mag, minlength=n_win)[keep] / n_kept
-    sd = np.sqrt(np.maximum(np.bincount(k, weights=mag * mag, minlength=n_win)[keep] / n_kept - mag_mean**2, 0.0))
-    dom = np.zeros(keep.size)
-    if keep.size:
-        length = int(n_kept[0])
-        if keep.size == n_win and (n_kept == length).all():
+    mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g)) if mag_g is None else np.asarray(mag_g, dtype=np.float64)
+    n = mag.shape[0]
+    u = (t - t[0]) / window_s
+    n_win = int(u[-1]) + 1
+    half = 0.5 * rate_hz * window_s
+    if n_win <= n:
+        # edges[j]: the first sample with u >= j, i.e. with floor(u) >= j (j is a whole number).
+        edges = np.searchsorted(u, np.arange(n_win + 1, dtype=np.float64))
+        length = int(edges[1])
+        if length >= half and length * n_win == n and (np.diff(edges) == length).all():
             # The usual burst: every window full and back to back from the first sample.
-            dom[:] = dominant_hz(mag[:length * n_win].reshape(n_win, length), rate_hz, sd_g=sd)
-        else:
-            # Batch the windows of equal length through one Welch call each.
-            starts = np.concatenate([[0], np.cumsum(counts)])
-            by_len: dict[int, list[int]] = {}
-            for i, w in enumerate(keep):
-                by_len.setdefault(int(counts[w]), []).append(i)
-            for length, idx in by_len.items():
-                block = np.stack([mag[starts[keep[i]]:starts[keep[i]] + length] for i in idx])
-                dom[idx] = dominant_hz(block, rate_hz, sd_g=sd[idx])
-    table = np.column_stack([t[0] + keep * window_s, enmo_mean, sd, dom]).tolist()
-    active = (enmo_mean >= ACTIVE_ENMO_G).astype(int).tolist()
-    rows = [r + [a] for r, a in zip(table, active, strict=True)]
-    return rows, int(n_win - len(keep))
+            block = mag.reshape(n_win, length)
+            mag_mean = block.sum(axis=1) / length
+            enmo_mean = np.maximum(block - 1.0, 0.0).sum(axis=1) / length
+            sd = np.sqrt(np.maximum(np.einsum("ij,ij->i", block, block) / length - mag_mean * mag_mean, 0.0))
+            dom = dominant_hz(block, rate_hz, sd_g=sd)
+            return _window_rows(t[0] + np.arange(n_win) * window_s, enmo_mean, sd, dom), 0
+    # Runs of samples in one window: where the window number changes.
+    k = np.floor(u).astype(np.int64)
+    starts = np.concatenate([[0], np.flatnonzero(k[1:] != k[:-1]) + 1])
+    counts = np.diff(np.append(starts, n))
+    keep = np.flatnonzero(counts >= half)
+    n_kept = counts[keep]   # at least one sample each: no division by zero below
+    enmo_mean = np.add.reduceat(np.maximum(mag - 1.0, 0.0), starts)[keep] / n_kept
+    mag_mean = np.add.reduceat(mag, starts)[keep] / n_kept
+    sd = np.sqrt(np.maximum(np.add.reduceat(mag * mag, starts)[keep] / n_kept - mag_mean**2, 0.0))
+    dom = np.zeros(keep.size)
+    # Batch the windows of equal length through one Welch call each.
+    by_len: dict[int, list[int]] = {}
+    for i, c in enumerate(n_kept.tolist()):
+        by_len.setdefault(c, []).append(i)
+    for c, idx in by_len.items():
+        block = np.stack([mag[starts[keep[i]]:starts[keep[i]] + c] for i in idx])
+        dom[idx] = dominant_hz(block, rate_hz, sd_g=sd[idx])
+    return _window_rows(t[0] + k[starts[keep]] * window_s, enmo_mean, sd, dom), int(n_win - keep.size)
+
+
+def _window_rows(t_start, enmo_mean, sd, dom) -> list[list]:
+    """Rows ``[t, enmo_g, sd_g, dom_hz, active]`` (floats, and the flag as 0 or 1)."""
+    table = np.column_stack([t_start, enmo_mean, sd, dom]).tolist()
+    active = (enmo_mean >= ACTIVE_ENMO_G).tolist()
+    return [r + [int(a)] for r, a in zip(table, active, strict=True)]
 
 
 def accel_features(rec, policy) -> ItemResult:

@@ -17,7 +17,6 @@ are converted to g with standard gravity g_n = 9.80665 m/s² (3rd CGPM, 1901).
 from __future__ import annotations
 
 import io
-import re
 import struct
 import warnings as _warnings
 from dataclasses import dataclass, field
@@ -75,23 +74,55 @@ def parse_unit_line(path, line: bytes) -> tuple[float, float | None]:
     return UNITS[unit], rate
 
 
-def _loadtxt(path, body: bytes) -> np.ndarray:
-    """The general parser: any number form :func:`float` accepts; words the errors."""
+def _loadtxt(path, body: bytes, *, first_line: int = 3) -> np.ndarray:
+    """The general parser: any number form :func:`float` accepts; words the errors.
+
+    ``first_line`` is the file line number of the body's first line (after the
+    unit and header lines), so an error names the line a person would open.
+    """
     try:
         with _warnings.catch_warnings():
             _warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
             arr = np.loadtxt(io.BytesIO(body), delimiter=",", dtype=np.float64, ndmin=2,
                              comments=None)
-    except ValueError as e:
-        m = re.search(r"row (\d+)", str(e))
-        where = f" at data row {int(m.group(1))}" if m else ""
-        reject(path, "bad_value", f"a row is not four numbers{where}")
+    except ValueError:
+        reject(path, "bad_value", _first_bad_line(body, first_line) or "a row is not four numbers")
     if arr.shape[0] >= 2:  # fewer is too_short, checked first by the caller
         if arr.shape[1] != 4:
-            reject(path, "bad_value", f"rows have {arr.shape[1]} columns, expected 4")
+            reject(path, "bad_value",
+                   _first_bad_line(body, first_line) or f"rows have {arr.shape[1]} values, expected 4 (time,x,y,z)")
         if not np.isfinite(arr).all():
-            reject(path, "bad_value", "a value is NaN or infinite")
+            reject(path, "bad_value", _first_bad_line(body, first_line) or "a value is NaN or infinite")
     return arr
+
+
+_COLUMNS = ("time", "x", "y", "z")
+
+
+def _first_bad_line(body: bytes, first_line: int) -> str | None:
+    """Where and why the first line that is not four finite numbers fails, without its content.
+
+    Only on the error path: one :func:`float` per field, lines split as
+    :func:`numpy.loadtxt` splits them (``\n``, ``\r\n`` or ``\r``), blank lines
+    skipped as it skips them.
+    """
+    for i, line in enumerate(body.splitlines()):
+        if not line.strip():
+            continue
+        fields = line.split(b",")
+        where = f"line {first_line + i}"
+        if len(fields) != len(_COLUMNS):
+            return f"{where} has {len(fields)} values, expected 4 (time,x,y,z)"
+        for name, f in zip(_COLUMNS, fields, strict=True):
+            try:
+                v = float(f)
+            except ValueError:
+                return f"{where}: the {name} value is not a number"
+            if b"_" in f:
+                return f"{where}: the {name} value is not a plain number (underscore)"
+            if not np.isfinite(v):
+                return f"{where}: the {name} value is NaN or infinite"
+    return None
 
 
 def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelRecord:

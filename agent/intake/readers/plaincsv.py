@@ -72,15 +72,17 @@ def _eight_digits(x: np.ndarray) -> np.ndarray:
     return ((x * _U(10000 << 32 | 1)) >> _U(32)) & _U(0xFFFFFFFF)
 
 
-def _digit_word(buf: np.ndarray, ends: np.ndarray, n_chars: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Digit bytes and point flag of the ``n_chars`` (0-8) characters before each of ``ends``.
+def _digit_word(buf: np.ndarray, ends: np.ndarray, keep: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Digit bytes and point flag of the characters before each of ``ends``.
 
-    Returns ``(x, flag)``: ``x`` holds each character's digit value in its byte
-    (0 outside the field; ``0x1E`` at the point); ``flag`` has bit ``8 i + 7``
-    set where byte ``i`` is the point.
+    ``keep`` is :data:`_KEEP` of the number of characters (0-8) to take, one
+    word per field or one per column (broadcast).  Returns ``(x, flag)``: ``x``
+    holds each character's digit value in its byte (0 outside the field;
+    ``0x1E`` at the point); ``flag`` has bit ``8 i + 7`` set where byte ``i``
+    is the point.
     """
     x = _words_at(buf, ends - 8) ^ _ASCII_ZERO
-    x &= _KEEP[n_chars]
+    x &= keep
     return x, (x + _OVER_NINE) & _TOP_BITS
 
 
@@ -146,26 +148,35 @@ def _parse_piece(body: bytes, n_cols: int) -> np.ndarray | None:
     buf = np.frombuffer(_PAD_BYTES + body + (b"" if body.endswith(b"\n") else b"\n"), np.uint8)
     # Only digits, '.', '-', ',' and '\n' (the only two of them at or below ',' = 44).
     n_minus = int(np.count_nonzero(buf == 45))
-    seps: np.ndarray = np.flatnonzero(buf <= 44)
+    flat_seps: np.ndarray = np.flatnonzero(buf <= 44)
+    n_rows = int(np.count_nonzero(buf == 10))
     if (int(np.count_nonzero((buf - np.uint8(48)) < 10)) + int(np.count_nonzero(buf == 46))
-            + n_minus + seps.size != buf.size) or seps.size % n_cols:
+            + n_minus + flat_seps.size != buf.size) or flat_seps.size != n_rows * n_cols:
         return None
-    seps = seps.reshape(-1, n_cols)
-    kinds = buf[seps]
-    if (kinds[:, -1] != 10).any() or (kinds[:, :-1] != 44).any():
+    seps = flat_seps.reshape(n_rows, n_cols)
+    # Each row ends at a newline; there are as many newlines as rows, so every
+    # other separator is a comma.
+    if (buf[seps[:, -1]] != 10).any():
         return None
+    # A field starts one byte after the separator before it (the first after the pad).
     starts = np.empty_like(seps)
-    starts[:, 1:] = seps[:, :-1] + 1
-    starts[1:, 0] = seps[:-1, -1] + 1
-    starts[0, 0] = _PAD
+    flat_starts = starts.reshape(-1)
+    flat_starts[0] = _PAD - 1
+    flat_starts[1:] = flat_seps[:-1]
+    flat_starts += 1
     neg = buf[starts] == 45
     if int(np.count_nonzero(neg)) != n_minus:
         return None   # a '-' that does not lead its field
     n_chars = seps - starts - neg
     shortest = int(n_chars.min())
-    if shortest < 1 or n_chars.max() > MAX_CHARS:
+    longest = int(n_chars.max())
+    if shortest < 1 or longest > MAX_CHARS:
         return None
-    x, flag = _digit_word(buf, seps, np.minimum(n_chars, 8))
+    # Recorders usually write every column at one width (the sign apart): then the
+    # masks are one word per column.
+    width = n_chars[0]
+    same_width = bool((n_chars == width).all())
+    x, flag = _digit_word(buf, seps, _KEEP[np.minimum(width if same_width else n_chars, 8)])
     if (flag & (flag - _ONE)).any():
         return None   # two points among the last 8 characters
     if shortest == 1 and ((n_chars == 1) & (flag != 0)).any():
@@ -180,22 +191,21 @@ def _parse_piece(body: bytes, n_cols: int) -> np.ndarray | None:
     else:
         x &= ~((flag >> _U(7)) * _U(0xFF))
         below = _below(flag)
-    long_cols = np.flatnonzero(n_chars.max(axis=0) > 8)
+    long_cols: list[int] = []
+    if longest > 8:
+        long_cols = ([c for c in range(n_cols) if width[c] > 8] if same_width
+                     else [c for c in range(n_cols) if n_chars[:, c].max() > 8])
     hx = None
-    if long_cols.size:
-        hx, hflag = _digit_word(buf, seps[:, long_cols] - 8, np.clip(n_chars[:, long_cols] - 8, 0, 8))
+    if long_cols:
+        n_high = np.clip((width if same_width else n_chars)[..., long_cols] - 8, 0, 8)
+        hx, hflag = _digit_word(buf, seps[:, long_cols] - 8, _KEEP[n_high])
         if hflag.any():
             return None   # a point 9 or more characters from the end: left to the general parser
         # Where there is a point, the top byte of the earlier word moves into the lowest
         # byte of the later one as the characters before the point move up one byte.
-        if fixed:
-            lflag = first[long_cols]
-            hx_shift = np.where(lflag != 0, _BYTE, _U(0))
-            carry = np.where(lflag != 0, hx >> _U(56), _U(0))
-        else:
-            lflag = flag[:, long_cols]
-            hx_shift = np.where(lflag != 0, _BYTE, _U(0))
-            carry = np.where(lflag != 0, hx >> _U(56), _U(0))
+        lflag = first[long_cols] if fixed else flag[:, long_cols]
+        hx_shift = np.where(lflag != 0, _BYTE, _U(0))
+        carry = np.where(lflag != 0, hx >> _U(56), _U(0))
         hx = hx << hx_shift
     x += (x & below) * _U(255)
     if hx is not None:
@@ -205,7 +215,9 @@ def _parse_piece(body: bytes, n_cols: int) -> np.ndarray | None:
         m[:, long_cols] += _eight_digits(hx) * _U(100_000_000)
     if int(m.max()) >= _EXACT:
         return None
-    k = _exponents(first) if fixed else _exponents(flag)
-    val = m.astype(np.float64) / _POW10[k]
-    np.negative(val, out=val, where=neg)
+    val = m.astype(np.float64)
+    val /= _POW10[_exponents(first) if fixed else _exponents(flag)]
+    if n_minus:
+        # The sign of 0.5 - 1 on the negative fields; "-0" reads -0.0, as float("-0") does.
+        np.copysign(val, 0.5 - neg, out=val)
     return val
