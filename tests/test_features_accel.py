@@ -177,3 +177,13 @@ def test_full_windows_equal_the_definition():
     assert skipped == 0 and np.allclose(np.array(rows)[:, :3], np.array(want), rtol=1e-12, atol=1e-12)
     mag = np.linalg.norm(xyz, axis=1).reshape(9, 100)
     assert [r[3] for r in rows] == pytest.approx(F.dominant_hz(mag, RATE).tolist())
+
+
+@pytest.mark.parametrize("n, rate", [(100, 10.0), (97, 10.0), (250, 25.0), (64, 12.5)])
+def test_dominant_frequency_is_the_argmax_of_the_welch_estimate(n, rate):
+    # dominant_hz skips the density scale (a positive factor); it must pick the bin
+    # the scaled estimate (tested against scipy.signal.welch above) picks.
+    x = 1.0 + 0.05 * np.random.default_rng(n).standard_normal((20, n))
+    nperseg = min(n, max(4, int(round(F.WELCH_SEGMENT_S * rate))))
+    f, p = F.welch_psd(x, rate, nperseg)
+    assert F.dominant_hz(x, rate).tolist() == f[1:][np.argmax(p[:, 1:], axis=-1)].tolist()

@@ -385,17 +385,41 @@ def _rfft_hz(n: int, fs: float) -> np.ndarray:
 def dominant_hz(mag: np.ndarray, rate_hz: float, sd_g: np.ndarray | None = None) -> np.ndarray:
     """Dominant frequency of each row of ``mag`` (windows x samples) by Welch.
 
-    The DC bin is excluded; a window whose magnitude SD is below
-    :data:`STILL_SD_G` has no dominant frequency and gets 0.  ``sd_g`` is each
-    row's SD if the caller has it.
+    The frequency of the largest :func:`welch_psd` value, DC excluded; a window
+    whose magnitude SD is below :data:`STILL_SD_G` has no dominant frequency
+    and gets 0.  ``sd_g`` is each row's SD if the caller has it.
     """
     mag = np.atleast_2d(np.asarray(mag, dtype=np.float64))
     n = mag.shape[-1]
     nperseg = min(n, max(4, int(round(WELCH_SEGMENT_S * rate_hz))))
-    f, pxx = welch_psd(mag, rate_hz, nperseg)
-    dom = f[1:][np.argmax(pxx[:, 1:], axis=-1)] if len(f) > 1 else np.zeros(mag.shape[0])
+    f = _rfft_hz(nperseg, float(rate_hz))
+    dom = np.zeros(mag.shape[0])
+    if len(f) > 1:
+        dom = f[1:][np.argmax(_welch_unscaled(mag, nperseg)[:, 1:], axis=-1)]
     still = (mag.std(axis=-1) if sd_g is None else sd_g) < STILL_SD_G
     return np.where(still, 0.0, dom)
+
+
+def _welch_unscaled(x: np.ndarray, nperseg: int) -> np.ndarray:
+    """:func:`welch_psd` of the rows of ``x`` times a positive constant (enough for its argmax).
+
+    The density scale ``2 / (fs · Σ w²)`` and the mean over segments are one
+    factor common to every bin except DC and (for even ``nperseg``) Nyquist,
+    which carry half of it; so the Nyquist bin is halved here and the rest left
+    as summed periodograms (tested against :func:`welch_psd`).
+    """
+    x = np.ascontiguousarray(x)
+    step = nperseg - nperseg // 2
+    n_seg = (x.shape[-1] - nperseg) // step + 1
+    seg = np.ndarray(shape=x.shape[:-1] + (n_seg, nperseg), dtype=x.dtype, buffer=x,
+                     strides=x.strides[:-1] + (step * x.strides[-1], x.strides[-1]))
+    seg = seg - seg.mean(axis=-1, keepdims=True)
+    seg *= _welch_window(nperseg)[0]
+    spec = np.abs(np.fft.rfft(seg, axis=-1))
+    spec *= spec
+    if nperseg % 2 == 0:
+        spec[..., -1] *= 0.5
+    return spec.sum(axis=-2)
 
 
 def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: float,

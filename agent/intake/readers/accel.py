@@ -32,8 +32,8 @@ UNITS = {"g": 1.0, "m/s^2": 1.0 / STANDARD_GRAVITY}
 # from that means the declared unit is wrong (m/s² labelled g reads ~9.8).
 MAGNITUDE_RANGE_G = (0.3, 3.0)
 # Bodies at least this long go to the vectorised plain-decimal reader (measured
-# break-even with numpy.loadtxt between 20 and 100 KB; docs/features.md).
-PLAIN_MIN_BYTES = 64 * 1024
+# break-even with numpy.loadtxt, by CPU time, near 30 KB or 800 rows; docs/features.md).
+PLAIN_MIN_BYTES = 32 * 1024
 # An interval longer than this many nominal sample periods is a gap.
 GAP_FACTOR = 2.0
 

@@ -17,6 +17,7 @@ Validation, in order (first failure wins):
 from __future__ import annotations
 
 import io
+import math
 import struct
 from dataclasses import dataclass, field
 
@@ -103,10 +104,15 @@ def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioC
         reject(path, "wrong_length",
                f"{dur:.3f} s, expected {target:g} ± {tol:g} s "
                "(schedule.audio_snippet_seconds ± intake.audio_length_tolerance_seconds)")
-    if not np.isfinite(y).all():
+    # The extremes answer three checks in two passes: a NaN or an infinity is in
+    # them (numpy's min and max propagate NaN), the swing of a mono signal is
+    # their difference, and only a signal reaching CLIP_LEVEL needs a clip count.
+    lo, hi = float(y.min()), float(y.max())
+    if not (math.isfinite(lo) and math.isfinite(hi)):
         reject(path, "silent_corrupt", "samples are NaN or infinite")
     mono = _mix_down(y)
-    if float(np.ptp(mono)) < CONSTANT_PTP:
+    swing = hi - lo if channels == 1 else float(mono.max()) - float(mono.min())
+    if swing < CONSTANT_PTP:
         reject(path, "silent_corrupt", "the signal is constant (all zero or a stuck DC level)")
     t = stamp_from_name(path)
     if t is None:
@@ -115,7 +121,7 @@ def read_audio(path, data: bytes, policy, *, now: float | None = None) -> AudioC
     if why:
         reject(path, "bad_timestamp", f"start time in the file name is {why}")
     warnings = []
-    clipped = int(np.count_nonzero(np.abs(y) >= CLIP_LEVEL))
+    clipped = int(np.count_nonzero(np.abs(y) >= CLIP_LEVEL)) if max(hi, -lo) >= CLIP_LEVEL else 0
     if clipped > CLIP_FRACTION * y.size:
         warnings.append(f"{clipped} of {y.size} samples at full scale (clipped recording)")
     sr = int(policy.intake.audio_sr)
