@@ -30,7 +30,8 @@ def styled(plot: F) -> F:
     def wrapper(*args, **kwargs):
         import matplotlib
 
-        with matplotlib.rc_context(PLOT_STYLE):
+        # matplotlib's stubs type rc keys as a Literal of every rc name; a plain str-keyed dict is what it takes
+        with matplotlib.rc_context(PLOT_STYLE):  # type: ignore[arg-type]
             return plot(*args, **kwargs)
 
     return wrapper  # type: ignore[return-value]

@@ -46,6 +46,7 @@ import threading
 from contextlib import contextmanager
 from pathlib import Path
 from collections.abc import Iterable, Iterator
+from typing import Any
 
 from cryptography.exceptions import InvalidTag
 from cryptography.hazmat.primitives import hashes
@@ -84,8 +85,8 @@ def _json_default(obj):
     try:
         import numpy as np
     except ImportError:  # pragma: no cover
-        np = None
-    if np is not None:
+        pass
+    else:
         if isinstance(obj, np.ndarray):
             return obj.tolist()
         if isinstance(obj, np.generic):
@@ -450,7 +451,7 @@ class Vault:
             return self._conn().execute("SELECT 1 FROM records WHERE addr = ?",
                                         (self._addr(table, rid),)).fetchone() is not None
 
-    def items(self, table: str) -> Iterator[tuple[str, object]]:
+    def items(self, table: str) -> Iterator[tuple[str, Any]]:  # payloads are any JSON value
         """``(rid, obj)`` pairs in insertion order.
 
         Rows are fetched a page at a time, so the caller may write to the vault

@@ -59,6 +59,8 @@ def _run(args) -> int:
     def _stop(signum, frame):
         stop.set()
 
+    companion = None
+
     def _ready(seconds):
         nonlocal companion
         if args.once:
@@ -72,10 +74,10 @@ def _run(args) -> int:
             from ..participant.companion import Companion
 
             companion = Companion(home, policy, stop).start()
-            print(f"lethe: your page is served on 127.0.0.1:{companion.server.port}; 'lethe open' opens it",
-                  file=sys.stderr, flush=True)
+            if companion.server is not None:
+                print(f"lethe: your page is served on 127.0.0.1:{companion.server.port}; 'lethe open' opens it",
+                      file=sys.stderr, flush=True)
 
-    companion = None
     bar = None
     on_outcome = None
     if args.once:

@@ -40,6 +40,7 @@ import logging
 import os
 import stat
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 from ..errors import LetheError, RejectedInput
@@ -165,7 +166,7 @@ class Intake:
         if int(workers) < 1:
             raise ValueError(f"workers must be a positive number of threads, got {workers!r}")
         self.workers = int(workers)
-        self._executor = None
+        self._executor: ThreadPoolExecutor | None = None
         self.reader_timeout_s = max(READER_TIMEOUT_MIN_S, self.raw_seconds / 3.0)
         self.isolate = bool(isolate) and hasattr(os, "fork")
         self.pool: Any = None   # ForkedPool, made on the first group to parse
@@ -634,8 +635,6 @@ class Intake:
 
     def _pool(self):
         if self._executor is None:
-            from concurrent.futures import ThreadPoolExecutor
-
             self._executor = ThreadPoolExecutor(max_workers=self.workers, thread_name_prefix="lethe-intake")
         return self._executor
 

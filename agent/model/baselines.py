@@ -36,6 +36,8 @@ from collections import Counter
 import numpy as np
 from scipy.optimize import minimize, minimize_scalar
 
+from ..errors import StateError
+
 from .choice import log_probabilities, ratio_scores, uniform_log_probabilities
 from .design import PLACE, ModelGraph, TrialDesign
 from .likelihood import (LOG_TAU_BOUNDS, ActivationCache, ModelSpec, model_log_probabilities,
@@ -88,7 +90,7 @@ class ScoreBaseline:
     n_params = 1
 
     def __init__(self):
-        self.tau = None
+        self.tau: float | None = None
 
     def scores(self, design: TrialDesign) -> np.ndarray:  # pragma: no cover - abstract
         raise NotImplementedError
@@ -98,6 +100,8 @@ class ScoreBaseline:
         return self
 
     def log_probabilities(self, design: TrialDesign) -> np.ndarray:
+        if self.tau is None:
+            raise StateError(f"{type(self).__name__}: call fit() before log_probabilities()")
         return log_probabilities(self.scores(design), design.opt_mask, self.tau)
 
     def params(self) -> dict:

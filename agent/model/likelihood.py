@@ -127,7 +127,7 @@ class ModelSpec:
             of = list(range(len(keys)))
         else:
             cls = [pair_class(p) for p in self.graph.type_pairs]
-            order = CLASS_ORDER
+            order: tuple[str, ...] = CLASS_ORDER
             if self.weights == "grouped":
                 cls = [COARSE.get(c, c) for c in cls]
                 order = COARSE_ORDER

@@ -109,11 +109,11 @@ def _recover(graph, trials, n_sims, seed, restarts, model, spec, around, n_jobs)
         sim = design.with_choices(simulate_choices(lp, design.opt_mask, rng))
         true_p.append(p)
         jobs.append((EigenModel(spec, restarts=restarts, seed=seed + 1000 + i), sim, None, [seed, 1000 + i]))
-    fit_p = np.array([fit.p for fit, _ in run_fits(jobs, n_jobs)])
-    true_p = np.array(true_p)
+    fit_arr = np.array([fit.p for fit, _ in run_fits(jobs, n_jobs)])
+    true_arr = np.array(true_p)
     table = {}
     for j, name in enumerate(names):
-        t, f = true_p[:, j], fit_p[:, j]
+        t, f = true_arr[:, j], fit_arr[:, j]
         r = float(np.corrcoef(t, f)[0, 1]) if t.std() > 0 and f.std() > 0 else float("nan")
         table[name] = {"r": r, "bias": float(np.mean(f - t)), "rmse": float(np.sqrt(np.mean((f - t) ** 2))),
                        "identifiable": bool(np.isfinite(r) and r >= IDENTIFIABLE_R),

@@ -329,11 +329,11 @@ def build_app(home, port: int, *, in_agent: bool = False, stop_agent=None, on_wi
         book = PromptBook(home, policy)
         zone = home.timezone()
         op = book.open_prompt()
+        upcoming = book.next_prompt()
         s = policy.schedule
         return {"open": op, "open_at": views.local_text(op.t, zone) if op else None,
                 "open_until": views.local_text(op.expires, zone, with_date=False) if op else None,
-                "counts": book.counts(), "next": views.local_text(book.next_prompt().t, zone)
-                if book.next_prompt() else "-",
+                "counts": book.counts(), "next": views.local_text(upcoming.t, zone) if upcoming else "-",
                 "emotions": list(s.emotions), "scale": list(range(s.mood_scale_min, s.mood_scale_max + 1)),
                 "fate": views.answer_fate(home, book.last_answer()), "waking": book.waking()}
 
