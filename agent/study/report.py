@@ -3,17 +3,19 @@
 Sections: per-participant memory-test accuracy against chance and the
 baselines (95% Wilson intervals, :func:`agent.stats.wilson_interval`), the fitted
 parameter distributions per type pair, coverage, and each participant's
-compliance digest.  Uses each participant's latest bundle.  Plots are drawn
-with matplotlib's Agg backend and saved next to the page; the page loads no
-network resource.
+compliance digest, and the cautions every report carries.  Uses each
+participant's latest bundle.  Plots are drawn with matplotlib's Agg backend and
+saved next to the page; the page loads no network resource.  The page is the
+jinja2 template ``agent/templates/study_report.html`` (autoescape on).
 """
 
 from __future__ import annotations
 
-import html
 from pathlib import Path
 
+from .. import templates
 from ..fsutil import atomic_write
+from ..policy_summary import CAUTIONS
 from ..stats import wilson_interval
 from .merge import cohort_rows
 
@@ -122,14 +124,23 @@ def _plot_coverage(coverage, path: Path) -> bool:
     return True
 
 
-def _table(rows, cols, limit: int = 50) -> str:
-    more = len(rows) - limit
-    rows = rows[:limit]
-    head = "".join(f"<th>{html.escape(c)}</th>" for c in cols)
-    body = "".join("<tr>" + "".join(f"<td>{html.escape(_fmt(r.get(c)))}</td>" for c in cols) + "</tr>"
-                   for r in rows)
-    note = f"<p>… and {more} more rows: see the merged tables.</p>" if more > 0 else ""
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>{note}"
+ROW_LIMIT = 50
+"""Rows shown per table; the rest are in the merged tables (``lethe study merge``)."""
+
+
+def table_view(rows, cols, empty: str = "No rows yet.", limit: int = ROW_LIMIT) -> dict:
+    """One table for the page: ``{"cols", "heads", "rows" (cells as text), "more", "empty"}``.
+
+    Cells are plain text; the template escapes them (jinja2 autoescape).  ``heads``
+    are the column names with a zero-width space after each underscore, so that a
+    narrow column's header wraps between words.
+    """
+    if limit < 0:
+        raise ValueError(f"limit must be a non-negative number of rows, got {limit!r}")
+    cols = list(cols)
+    return {"cols": cols, "heads": [c.replace("_", "_\u200b") for c in cols],
+            "rows": [[_fmt(r.get(c)) for c in cols] for r in rows[:limit]],
+            "more": max(0, len(rows) - limit), "empty": empty}
 
 
 def _fmt(v) -> str:
@@ -138,6 +149,17 @@ def _fmt(v) -> str:
     if isinstance(v, float):
         return f"{v:.3g}"
     return str(v)
+
+
+def render_page(context: dict) -> str:
+    """The cohort page (``agent/templates/study_report.html``) from a context of plain values.
+
+    Keys: ``study_id``, ``version``, ``n_enrolled``, ``n_sending``, ``n_opened``,
+    ``plots`` (``{"accuracy", "parameters", "coverage"}`` -> bool), ``quiz``,
+    ``coverage``, ``compliance`` (each from :func:`table_view`), ``withdrawn``
+    (pseudonyms) and ``cautions``.  Every value is escaped by the template.
+    """
+    return templates.render("study_report.html", **context)
 
 
 def report(study_dir, out) -> Path:
@@ -149,54 +171,32 @@ def report(study_dir, out) -> Path:
     out.mkdir(parents=True, exist_ok=True)
     t = cohort_rows(study_dir)
     reg = Registry.load(study_dir)
-    parts = [f"<h1>Cohort report: {html.escape(reg.study_id)}</h1>",
-             f"<p>{len(reg.devices)} enrolled device(s); {len({r['pseudonym'] for r in t['coverage']})} "
-             f"sent at least one bundle; {sum(len(d.seen) for d in reg.devices.values())} bundle(s) opened. "
-             f"Each participant's latest "
-             f"bundle is shown. lethe {html.escape(__version__)}.</p>"]
 
-    parts.append("<h2>Memory test: the model against chance and baselines</h2>")
-    if _plot_accuracy(t["quiz"], t["metrics"], out / "accuracy.png"):
-        parts.append('<img src="accuracy.png" alt="accuracy per participant">')
-    rows = []
+    quiz = []
     for r in _latest(t["quiz"]):
         lo, hi = wilson_interval(r["correct"], r["answered"]) if r["answered"] else (None, None)
-        rows.append({**r, "ci_low": lo, "ci_high": hi})
-    parts.append(_table(rows, ["pseudonym", "trials", "answered", "correct", "accuracy", "ci_low", "ci_high",
-                               "chance", "p_value", "agreement"]) if rows else "<p>No quiz summaries yet.</p>")
-
-    parts.append("<h2>Fitted parameters per type pair</h2>")
-    if _plot_parameters(t["parameters"], out / "parameters.png"):
-        parts.append('<img src="parameters.png" alt="parameter distributions">')
-    else:
-        parts.append("<p>No fitted models yet.</p>")
-
-    parts.append("<h2>Coverage</h2>")
-    if _plot_coverage(t["coverage"], out / "coverage.png"):
-        parts.append('<img src="coverage.png" alt="coverage per participant">')
+        quiz.append({**r, "ci_low": lo, "ci_high": hi})
     cov = _latest(t["coverage"])
-    parts.append(_table(cov, [c for c in (cov[0] if cov else {}) if c not in ("latest", "policy_fingerprint")]))
-
-    parts.append("<h2>Compliance digest per participant</h2>")
     # Hashes shortened for the page; the full values are in the merged tables.
     comp = [{**r, "policy_fingerprint": r["policy_fingerprint"][:16] + "…",
              "ledger_head_hash": str(r["ledger_head_hash"])[:16] + "…"} for r in _latest(t["compliance"])]
-    parts.append("<p>From each bundle's ledger digest (signed on the device, verified here with the "
-                 "bundle's signature): retention violations, raw-file exposure, and the ledger head an "
-                 "ethics board can compare with the device's ledger.</p>")
-    parts.append(_table(comp, ["pseudonym", "seq", "created", "policy_fingerprint", "violations",
-                               "max_exposure_s", "median_exposure_s", "p95_exposure_s", "ledger_head_seq",
-                               "ledger_head_hash"]))
-    withdrawn = [d for d in reg.devices.values() if d.withdrawn]
-    if withdrawn:
-        parts.append("<p>Withdrawn: " + ", ".join(html.escape(d.pseudonym) for d in withdrawn) + "</p>")
-
-    page = ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-            f"<title>lethe cohort report: {html.escape(reg.study_id)}</title>"
-            "<style>body{font-family:sans-serif;max-width:60em;margin:2em auto;padding:0 1em}"
-            "table{border-collapse:collapse;font-size:90%;margin:1em 0}"
-            "td,th{border:1px solid #ccc;padding:2px 6px;text-align:right}"
-            "img{max-width:100%}</style></head><body>\n" + "\n".join(parts) + "\n</body></html>\n")
+    context = {
+        "study_id": reg.study_id, "version": __version__,
+        "n_enrolled": len(reg.devices), "n_sending": len({r["pseudonym"] for r in t["coverage"]}),
+        "n_opened": sum(len(d.seen) for d in reg.devices.values()),
+        "plots": {"accuracy": _plot_accuracy(t["quiz"], t["metrics"], out / "accuracy.png"),
+                  "parameters": _plot_parameters(t["parameters"], out / "parameters.png"),
+                  "coverage": _plot_coverage(t["coverage"], out / "coverage.png")},
+        "quiz": table_view(quiz, ["pseudonym", "trials", "answered", "correct", "accuracy", "ci_low", "ci_high",
+                                  "chance", "p_value", "agreement"], empty="No quiz summaries yet."),
+        "coverage": table_view(cov, [c for c in (cov[0] if cov else {}) if c not in ("latest", "policy_fingerprint")],
+                               empty="No coverage yet."),
+        "compliance": table_view(comp, ["pseudonym", "seq", "created", "policy_fingerprint", "violations",
+                                        "max_exposure_s", "median_exposure_s", "p95_exposure_s",
+                                        "ledger_head_seq", "ledger_head_hash"], empty="No bundles yet."),
+        "withdrawn": [d.pseudonym for d in reg.devices.values() if d.withdrawn],
+        "cautions": list(CAUTIONS),
+    }
     path = out / "report.html"
-    atomic_write(path, page.encode("utf-8"))
+    atomic_write(path, render_page(context).encode("utf-8"))
     return path

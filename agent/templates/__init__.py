@@ -12,7 +12,7 @@ from functools import cache
 
 from markupsafe import Markup, escape
 
-__all__ = ["Markup", "esc", "page", "table"]
+__all__ = ["Markup", "esc", "page", "render", "table"]
 
 
 @cache
@@ -32,6 +32,11 @@ def esc(x) -> Markup:
 def page(title: str, body: Markup | str, css: str = "") -> str:
     """A complete HTML document: ``title`` is escaped, ``body`` must be Markup (built from escaped parts)."""
     return _env().get_template("report.html").render(title=title, css=Markup(css), body=Markup(body))
+
+
+def render(name: str, **context) -> str:
+    """Render the package template ``name`` (autoescape on) with ``context``."""
+    return _env().get_template(name).render(**context)
 
 
 def table(header: Sequence, rows: Iterable[Sequence], num_cols: Iterable[int] = (), cls: str = "") -> Markup:
