@@ -68,7 +68,11 @@ import scipy.sparse as sp
 CAP_RULES = ("strongest", "arrival", "mutual", "bmatching", "quota", "routine")
 EDGE_WEIGHTS = ("binary", "log_count")
 DEFAULT_QUOTA = 2
-MILP_TIME_LIMIT_S = 3.0  # per MILP solve; see b_matching (a time-limited incumbent depends on machine speed)
+MILP_SAFETY_TIME_LIMIT_S = 60.0  # per MILP solve: a safety net only, never reached on the graphs measured
+MILP_NODE_LIMIT = 20_000  # per MILP solve: a deterministic stopping rule (see b_matching)
+MILP_REL_GAP = 0.0  # solve to proven optimality of the tie-broken weights
+POLISH_NODE_LIMIT = 500  # per polishing MILP (b_matching step 4): deterministic
+EXACT_MAX_PAIRS = 120  # b_matching step 2 (the MILP with the hour-place rows) up to this many pairs
 DIRECT_AFTER = 2  # routine rule: tuning of the path preference (see routine_greedy)
 DIRECT_COST = 3
 
@@ -159,10 +163,12 @@ def mutual_top_m(rows, cols, count, first, n_nodes: int, degree_cap: int) -> np.
     return top[:e] & top[e:]
 
 
-def _routine_rows(rows, cols, n_nodes: int, node_kind_name, hours=None):
+def _routine_rows(rows, cols, n_nodes: int, node_kind_name, hours=None, via=None):
     """The routine constraints of the b-matching MILP as sparse rows (see :func:`b_matching`).
 
-    Only the hours in ``hours`` (default: every hour) get rows.
+    Only the hours in ``hours`` (default: every hour) get rows, and with ``via``
+    (a set of pair indices) only the intermediates ``k`` whose pair ``(h, k)``
+    is in ``via`` get a ``y_hk``.
     Variables: ``x_e`` for the ``E`` pairs, then one ``y_(h,k)`` for every hour
     ``h`` and non-place neighbour ``k`` of ``h`` that co-occurs with a place
     visited at ``h`` ("h reaches such a place through k").
@@ -204,19 +210,19 @@ def _routine_rows(rows, cols, n_nodes: int, node_kind_name, hours=None):
             continue
         cover_cols = [eid[(h, p)] for p in sorted(visited)]
         for k in nbrs[h]:
-            if kind[k] == "place":
+            if kind[k] == "place" or (via is not None and eid[(h, k)] not in via):
                 continue
-            via = [eid[(k, p)] for p in nbrs[k] if p in visited]
-            if not via:
+            k_p = [eid[(k, p)] for p in nbrs[k] if p in visited]
+            if not k_p:
                 continue
             y = e + n_y
             r0 = 2 * n_y
             y_r += [r0, r0]
             y_c += [y, eid[(h, k)]]
             y_v += [1.0, -1.0]
-            y_r += [r0 + 1] * (1 + len(via))
-            y_c += [y] + via
-            y_v += [1.0] + [-1.0] * len(via)
+            y_r += [r0 + 1] * (1 + len(k_p))
+            y_c += [y] + k_p
+            y_v += [1.0] + [-1.0] * len(k_p)
             cover_cols.append(y)
             n_y += 1
         c_r += [n_cover] * len(cover_cols)
@@ -248,106 +254,297 @@ def _hours_missing_place(rows, cols, keep, n_nodes: int, kind) -> list[int]:
     return out
 
 
+def tie_broken_weights(weight, first, n_nodes: int, degree_cap: int) -> np.ndarray:
+    """Integer weights plus a tie-break below one unit: ``w_e + (E - r_e) / (E (K + 1))``.
+
+    ``r_e`` is the pair's rank in :func:`order_strongest` (0 = strongest, ties by
+    first co-occurrence) and ``K = min(E, n m / 2)`` bounds the number of kept
+    pairs, so the tie-breaks of any kept set sum to less than 1: a set of larger
+    integer weight always wins, and among sets of equal weight the one with the
+    stronger (earlier) pairs wins.  Without ties the optimum is unique, so it no
+    longer depends on how the solver walks through equal optima (its version,
+    threads or speed).  Non-integer weights are returned unchanged (the bound
+    above needs a unit gap between distinct totals).
+    """
+    w = np.asarray(weight, dtype=np.float64)
+    e = len(w)
+    if e == 0 or not np.all(w == np.round(w)):
+        return w.copy()
+    rank = np.empty(e, dtype=np.int64)
+    rank[order_strongest(np.asarray(first), w)] = np.arange(e)
+    k = min(e, int(n_nodes) * int(degree_cap) // 2)
+    return w + (e - rank) / (e * (k + 1.0))
+
+
+def _milp_options(time_limit_s: float) -> dict:
+    # deterministic stopping rules first (HiGHS runs its branch and bound serially and
+    # deterministically); the time limit is only a safety net, and reaching it is recorded
+    return {"time_limit": float(time_limit_s), "node_limit": MILP_NODE_LIMIT, "mip_rel_gap": MILP_REL_GAP}
+
+
 def b_matching(rows, cols, weight, n_nodes: int, degree_cap: int, *,
-               time_limit_s: float = MILP_TIME_LIMIT_S, first=None,
-               node_kind_name=None) -> tuple[np.ndarray, str, list[str]]:
+               time_limit_s: float = MILP_SAFETY_TIME_LIMIT_S, first=None,
+               node_kind_name=None, exact_max_pairs: int = EXACT_MAX_PAIRS) -> tuple[np.ndarray, str, list[str]]:
     """Maximum-weight subgraph with every degree at most ``degree_cap``, keeping the routine.
 
-    With ``node_kind_name`` the MILP also carries two hard routine constraints
-    (``docs/graph.md``): (a) ``"min_degree"``: every node that co-occurs with
-    anything keeps degree >= 1; (b) ``"hour_place"``: every hour node that
-    co-occurs with a place is within two kept links of a place visited at that
-    hour (a direct link, or a path hour - k - place; linearised with one
-    auxiliary 0/1 variable per (hour, k)).  No node ever exceeds
-    ``degree_cap``.  If the MILP is infeasible, (b) is dropped first, then (a),
-    and the dropped constraints are reported.
+    With ``node_kind_name`` the problem also carries two hard routine
+    constraints (``docs/graph.md``): (a) ``"min_degree"``: every node that
+    co-occurs with anything keeps degree >= 1; (b) ``"hour_place"``: every hour
+    node that co-occurs with a place is within two kept links of a place visited
+    at that hour (a direct link, or a path hour - k - place).  No node ever
+    exceeds ``degree_cap``.
+
+    Weights are tie-broken (:func:`tie_broken_weights`) so that the optimum is
+    unique, and every MILP stops by deterministic rules (proven optimum, or the
+    node limit ``MILP_NODE_LIMIT``), so the result does not depend on the
+    machine's speed.  Steps:
+
+    1. the b-matching with (a) only (every degree <= m, every linked node >= 1),
+       solved exactly.  If it meets (b) it is the optimum of the whole problem
+       (a relaxation's optimum that is feasible); if (a) is infeasible both
+       constraints are dropped and reported.
+    2. otherwise, on a small problem (at most ``exact_max_pairs`` pairs) the MILP
+       with (b) linearised (one auxiliary 0/1 ``y_hk <= x_hk``,
+       ``y_hk <= sum_p x_kp`` per hour and intermediate), added lazily for the
+       hours found wanting; if (b) is infeasible it is dropped and reported.
+    3. on a larger problem, where that MILP takes seconds to minutes (its root
+       alone took 9-25 s on the test fixtures), a repair: while some hour misses
+       its places, fix to 1 the cheapest link or pair of links hour - k - place
+       that reaches one (cheapest by the LP reduced costs of the links not yet
+       kept, so the price of displacing stronger links), and solve step 1's
+       b-matching again with the fixed links as lower bounds.  Each solve is
+       exact, so the result is the best b-matching containing the fixed links;
+       its weight is within a few percent of the optimum on the demo-like
+       graphs (``docs/graph.md``, measured against the exact solve and the LP
+       bound).  If no repair can be fixed, (b) is dropped and reported.
 
     Returns
     -------
     keep : (E,) bool array
     method : str
-        ``"milp"`` (exact optimum under the constraints kept);
-        ``"milp_time_limit"`` (the solver's best feasible solution at the time
-        limit: every kept constraint holds, the weight may fall short of the
-        optimum -- on the 14-day demo-like graph of the tests the solver
-        stops here, within 2-9 % of its bound after 3-10 s; on the 14-day demo
-        it proves the optimum in 0.5 s.  A time-limited incumbent depends on
-        the machine's speed, so the graph is then not reproducible bit for
-        bit); or, when the solver found nothing in time,
-        ``"routine_greedy"`` (with node kinds: the "routine" rule, which meets
-        the routine constraints where it can) or ``"greedy"`` (the "strongest"
-        pass, within a factor 2 of the optimum weight of the plain b-matching).
+        ``"milp"`` (exact optimum under the constraints kept, steps 1-2);
+        ``"milp_repair"`` (step 3); ``"milp_node_limit"`` /
+        ``"milp_time_limit"`` (step 2 stopped by the node limit / by the safety
+        time limit with a feasible solution: every kept constraint holds; the
+        time limit makes the result depend on the machine's speed and has not
+        been reached on any graph measured); or, when a solve found nothing,
+        ``"routine_greedy"`` (with node kinds: the "routine" rule) or
+        ``"greedy"`` (the "strongest" pass, within a factor 2 of the optimum
+        weight of the plain b-matching).
     relaxed : list of str
-        The routine constraints dropped (``"hour_place"``, ``"min_degree"``);
-        with a greedy fallback every one requested unless it met them all.  A constraint with nothing to
-        constrain (no hour with a place) is never reported.
+        The routine constraints the result does not carry (``"hour_place"``,
+        ``"min_degree"``): infeasible, or (step 3) not reached by the repair.
+        A constraint with nothing to constrain (no hour with a place) is never
+        reported.
     """
-    from scipy.optimize import Bounds, LinearConstraint, milp
-
     m = _check_cap(degree_cap)
+    if isinstance(exact_max_pairs, bool) or not isinstance(exact_max_pairs, (int, np.integer)) or exact_max_pairs < 0:
+        raise ValueError(f"exact_max_pairs {exact_max_pairs!r}: expected a non-negative integer")
     rows, cols = np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64)
-    w = np.asarray(weight, dtype=np.float64)
+    w_raw = np.asarray(weight, dtype=np.float64)
     e = len(rows)
     first = np.arange(e) if first is None else np.asarray(first)
     if e == 0:
         return np.zeros(0, dtype=bool), "milp", []
+    w = tie_broken_weights(w_raw, first, n_nodes, m)
+    n = int(n_nodes)
     inc = sp.csr_matrix((np.ones(2 * e), (np.concatenate([rows, cols]), np.tile(np.arange(e), 2))),
-                        shape=(int(n_nodes), e))
+                        shape=(n, e))
     wanted: list[str] = []
-    linked = np.zeros(int(n_nodes), dtype=bool)
-    all_hours: set[int] = set()
+    linked = np.zeros(n, dtype=bool)
+    kind: list[str] = []
     if node_kind_name is not None:
-        linked, _, _, cover_all = _routine_rows(rows, cols, n_nodes, node_kind_name, hours=set())
         kind = [str(k) for k in node_kind_name]
-        all_hours = {h for h in range(int(n_nodes)) if kind[h] == "hour"}
-        has_place = _hours_missing_place(rows, cols, np.zeros(e, dtype=bool), int(n_nodes), kind)
+        linked[rows] = True
+        linked[cols] = True
+        has_place = _hours_missing_place(rows, cols, np.zeros(e, dtype=bool), n, kind)
         wanted = [c for c, live in (("min_degree", linked.any()), ("hour_place", bool(has_place))) if live]
+    opts = _milp_options(time_limit_s)
 
-    def solve(kept_cons, hours):
-        n_y, y_rows, cover = 0, None, None
-        if "hour_place" in kept_cons and hours:
-            _, n_y, y_rows, cover = _routine_rows(rows, cols, n_nodes, node_kind_name, hours=hours)
-        n_var = e + n_y
-        inc_v = sp.hstack([inc, sp.csr_matrix((int(n_nodes), n_y))]).tocsr()
-        cons = [LinearConstraint(inc_v, -np.inf, m)]
-        if "min_degree" in kept_cons:
+    def fallback():
+        if node_kind_name is not None and wanted:
+            keep, info = routine_greedy(rows, cols, w_raw, first, n, m, node_kind_name)
+            return keep, "routine_greedy", list(wanted) if info["unmet"] else []
+        keep = greedy_degree_cap(rows, cols, order_strongest(first, w_raw), n, m)
+        return keep, "greedy", list(wanted)
+
+    # 1. the b-matching with (a) only
+    plain = _plain_b_matching(inc, w, m, linked if "min_degree" in wanted else None, None, opts)
+    if plain is None:
+        if "min_degree" not in wanted:
+            return fallback()
+        plain = _plain_b_matching(inc, w, m, None, None, opts)
+        if plain is None:
+            return fallback()
+        return plain[0], plain[1], list(wanted)
+    keep, method = plain
+    if "hour_place" not in wanted or not _hours_missing_place(rows, cols, keep, n, kind):
+        return keep, method, []
+    if e <= exact_max_pairs:
+        return _exact_routine(rows, cols, w, n, m, node_kind_name, inc, linked, kind, keep, method, opts)
+    return _repair_routine(rows, cols, w, n, m, inc, linked, kind, keep, method, opts)
+
+
+def _plain_b_matching(inc, w, m: int, linked, fixed, opts) -> tuple[np.ndarray, str] | None:
+    """The exact b-matching: degrees <= m, optionally >= 1 at ``linked``, ``x_e = 1`` on ``fixed``."""
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    e = inc.shape[1]
+    cons = [LinearConstraint(inc, -np.inf, m)]
+    if linked is not None and linked.any():
+        cons.append(LinearConstraint(inc[np.flatnonzero(linked)], 1, np.inf))
+    lb = np.zeros(e)
+    if fixed:
+        lb[sorted(fixed)] = 1.0
+    try:
+        res = milp(-w, constraints=cons, integrality=np.ones(e), bounds=Bounds(lb, 1), options=opts)
+    except (ValueError, RuntimeError):  # pragma: no cover - solver failure
+        return None
+    if res.x is None or res.status not in (0, 1):
+        return None
+    return np.asarray(res.x) > 0.5, _method_of(res)
+
+
+def _method_of(res) -> str:
+    if res.status == 0:
+        return "milp"
+    return "milp_time_limit" if "time" in str(res.message).lower() else "milp_node_limit"
+
+
+def _exact_routine(rows, cols, w, n, m, node_kind_name, inc, linked, kind, keep0, method0, opts):
+    """Step 2 of :func:`b_matching`: the MILP with (b), lazily generated."""
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    e = len(rows)
+    hours: set[int] = set(_hours_missing_place(rows, cols, keep0, n, kind))
+    use_min = linked.any()
+    for _round in range(n + 1):
+        _, n_y, y_rows, cover = _routine_rows(rows, cols, n, node_kind_name, hours=hours)
+        inc_v = sp.hstack([inc, sp.csr_matrix((n, n_y))]).tocsr()
+        cons = [LinearConstraint(inc_v, -np.inf, m), LinearConstraint(y_rows, -np.inf, 0),
+                LinearConstraint(cover, 1, np.inf)]
+        if use_min:
             cons.append(LinearConstraint(inc_v[np.flatnonzero(linked)], 1, np.inf))
-        if y_rows is not None and cover is not None:
-            cons.append(LinearConstraint(y_rows, -np.inf, 0))
-            cons.append(LinearConstraint(cover, 1, np.inf))
-        c = np.concatenate([-w, np.zeros(n_y)])
-        return milp(c, constraints=cons, integrality=np.ones(n_var),
-                    bounds=Bounds(0, 1), options={"time_limit": float(time_limit_s)})
-
-    # relax in this order: all constraints, without (b), without (a) and (b).  Constraint (b)
-    # is generated lazily: solve with the hours found wanting so far, add the hours the
-    # solution leaves without a place, repeat; the optimum of a relaxation that meets every
-    # constraint is the optimum of the whole problem.
-    for n_kept in range(len(wanted), -1, -1):
-        kept_cons = wanted[:n_kept]
-        relaxed = [c_ for c_ in wanted if c_ not in kept_cons]
-        hours: set[int] = set()
-        for _round in range(len(all_hours) + 1):
-            try:
-                res = solve(kept_cons, hours)
-            except (ValueError, RuntimeError):  # pragma: no cover - solver failure
-                res = None
-                break
-            if res.x is None or res.status not in (0, 1):
-                break
-            keep = np.asarray(res.x[:e]) > 0.5
-            missing = (set(_hours_missing_place(rows, cols, keep, int(n_nodes), kind))
-                       if "hour_place" in kept_cons else set())
-            if not missing:
-                return keep, ("milp" if res.status == 0 else "milp_time_limit"), relaxed
-            hours |= missing
-        if res is None or res.status != 2:  # not "infeasible": time limit or solver trouble
+        try:
+            res = milp(np.concatenate([-w, np.zeros(n_y)]), constraints=cons, integrality=np.ones(e + n_y),
+                       bounds=Bounds(0, 1), options=opts)
+        except (ValueError, RuntimeError):  # pragma: no cover - solver failure
             break
-    if node_kind_name is not None and wanted:
-        keep, info = routine_greedy(rows, cols, w, first, n_nodes, m, node_kind_name)
-        return keep, "routine_greedy", list(wanted) if info["unmet"] else []
-    keep = greedy_degree_cap(rows, cols, order_strongest(first, w), n_nodes, m)
-    return keep, "greedy", list(wanted)
+        if res.x is None or res.status not in (0, 1):
+            if res.status == 2:  # infeasible: drop (b), keep step 1's optimum
+                return keep0, method0, ["hour_place"]
+            break
+        keep = np.asarray(res.x[:e]) > 0.5
+        missing = set(_hours_missing_place(rows, cols, keep, n, kind))
+        if not missing:
+            return keep, _method_of(res), []
+        hours |= missing
+    keep, info = routine_greedy(rows, cols, w, None, n, m, node_kind_name)  # pragma: no cover
+    return keep, "routine_greedy", (["min_degree", "hour_place"] if info["unmet"] else [])  # pragma: no cover
+
+
+def _polish(rows, cols, w, n, m, kind, inc, linked, plain_keep, keep, opts, methods, rounds: int = 3):
+    """Step 4 of :func:`b_matching`: the MILP with (b) over the intermediates already in use.
+
+    The hour-place rows are generated for every hour, but an hour may reach a
+    place only directly or through an intermediate ``k`` whose link ``(h, k)``
+    is kept by step 1's optimum or by the current solution.  The current
+    solution is feasible there, so the exact optimum of this restricted MILP
+    is at least as heavy; repeat with the new solution's links while it gains.
+    """
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    e = len(rows)
+    best = keep
+    best_w = float(w[keep].sum())
+    for _ in range(rounds):
+        via = set(np.flatnonzero(plain_keep | best).tolist())
+        _, n_y, y_rows, cover = _routine_rows(rows, cols, n, kind, via=via)
+        inc_v = sp.hstack([inc, sp.csr_matrix((n, n_y))]).tocsr()
+        cons = [LinearConstraint(inc_v, -np.inf, m), LinearConstraint(y_rows, -np.inf, 0),
+                LinearConstraint(cover, 1, np.inf)]
+        if linked.any():
+            cons.append(LinearConstraint(inc_v[np.flatnonzero(linked)], 1, np.inf))
+        try:
+            res = milp(np.concatenate([-w, np.zeros(n_y)]), constraints=cons, integrality=np.ones(e + n_y),
+                       bounds=Bounds(0, 1), options={**opts, "node_limit": POLISH_NODE_LIMIT})
+        except (ValueError, RuntimeError):  # pragma: no cover - solver failure
+            break
+        if res.x is None or res.status not in (0, 1):
+            break
+        cand = np.asarray(res.x[:e]) > 0.5
+        if _hours_missing_place(rows, cols, cand, n, kind) or float(w[cand].sum()) <= best_w + 1e-9:
+            break
+        methods.add(_method_of(res))
+        best, best_w = cand, float(w[cand].sum())
+    return best
+
+
+def _repair_routine(rows, cols, w, n, m, inc, linked, kind, keep, method, opts):
+    """Step 3 of :func:`b_matching`: fix the cheapest hour-place repairs, re-solve exactly."""
+    from scipy.optimize import linprog
+
+    e = len(rows)
+    eid: dict[tuple[int, int], int] = {}
+    nbrs: list[list[int]] = [[] for _ in range(n)]
+    for k, (i, j) in enumerate(zip(rows.tolist(), cols.tolist(), strict=False)):
+        eid[(i, j)] = eid[(j, i)] = k
+        nbrs[i].append(j)
+        nbrs[j].append(i)
+    r_list, c_list = rows.tolist(), cols.tolist()
+    use_min = linked if linked.any() else None
+    a_ub = inc if use_min is None else sp.vstack([inc, -inc[np.flatnonzero(linked)]]).tocsr()
+    b_ub = np.full(n, float(m)) if use_min is None else np.concatenate([np.full(n, float(m)),
+                                                                         -np.ones(int(linked.sum()))])
+    fixed: set[int] = set()
+    banned: set[tuple[int, ...]] = set()
+    plain_keep, plain_method = keep, method
+    methods = {method}
+    for _round in range(4 * n + 4):
+        missing = _hours_missing_place(rows, cols, keep, n, kind)
+        if not missing:
+            keep = _polish(rows, cols, w, n, m, kind, inc, linked, plain_keep, keep, opts, methods)
+            return keep, ("milp_repair" if methods == {"milp"} else sorted(methods - {"milp"})[0]), []
+        lb = np.zeros(e)
+        if fixed:
+            lb[sorted(fixed)] = 1.0
+        lp = linprog(-w, A_ub=a_ub, b_ub=b_ub, bounds=np.column_stack([lb, np.ones(e)]), method="highs")
+        rc = (np.maximum(np.asarray(lp.lower.marginals), 0.0) if lp.status == 0 else np.zeros(e))
+        deg_f = [0] * n
+        for q in fixed:
+            deg_f[r_list[q]] += 1
+            deg_f[c_list[q]] += 1
+        best: tuple | None = None
+        for h in missing:
+            visited = sorted(p for p in nbrs[h] if kind[p] == "place")
+            vis = set(visited)
+            options = [(eid[(h, p)],) for p in visited]
+            options += [(eid[(h, k)], eid[(k, p)]) for k in sorted(nbrs[h]) if kind[k] != "place"
+                        for p in sorted(nbrs[k]) if p in vis]
+            for opt in options:
+                if opt in banned:
+                    continue
+                need: dict[int, int] = {}
+                for q in opt:
+                    if q not in fixed:
+                        for v in (r_list[q], c_list[q]):
+                            need[v] = need.get(v, 0) + 1
+                if any(deg_f[v] + c > m for v, c in need.items()):
+                    continue
+                score = (float(sum(rc[q] for q in opt if not keep[q])), len(opt), opt)
+                if best is None or score < best:
+                    best = score
+        if best is None:
+            return plain_keep, plain_method, ["hour_place"]
+        trial = fixed | set(best[2])
+        got = _plain_b_matching(inc, w, m, use_min, trial, opts)
+        if got is None:  # the fixed links leave some node without a link: try another repair
+            banned.add(best[2])
+            continue
+        fixed = trial
+        keep, meth = got
+        methods.add(meth)
+    return plain_keep, plain_method, ["hour_place"]  # pragma: no cover - the loop ends earlier
 
 
 def routine_greedy(rows, cols, count, first, n_nodes: int, degree_cap: int,

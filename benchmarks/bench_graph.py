@@ -16,7 +16,15 @@ counts and the same capped graph edge by edge and takes the spectra with
 ``numpy.linalg.eigvalsh`` on ``nx.to_numpy_array``.  Target: under 1 s for the
 year (construction + spectrum) on 2 cores.
 
-Run: ``python benchmarks/bench_graph.py [--repeat N]``.
+A third part times the ``bmatching`` cap rule on the graphs the tests build
+(``tests/_bundle_fixtures.py`` episodes, ``tests/test_graph.py``
+demo-like episodes), this file's 14-day demo shape and, with ``--demo-home``,
+the 14-day demo's own episodes, against a same-run reference: the rule as it
+was before (tie-free weights, hour-place rows added lazily, every MILP stopped
+by a 3 s time limit).  Goal: the same edges on every run (no time-limited
+solve), each graph in well under a second, weight within 10 % of the LP bound.
+
+Run: ``python benchmarks/bench_graph.py [--repeat N] [--demo-home HOME] [--bmatching-only]``.
 """
 
 from __future__ import annotations
@@ -147,10 +155,137 @@ def bench(name, episodes, cap, repeat):
             "mem_spectrum_mib": mem_spec}
 
 
+def lazy_time_limited_reference(rows, cols, weight, n_nodes, m, node_kind_name, time_limit_s=3.0):
+    """The ``bmatching`` rule before this benchmark's change (same-run reference).
+
+    Raw counts as weights, the hour-place rows added lazily round by round, and
+    every MILP stopped by ``time_limit_s``: where a solve hits the limit the edges
+    depend on the machine's speed.  Returns (keep, method, rounds).
+    """
+    import scipy.sparse as sp
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    from agent import caps
+
+    e = len(rows)
+    w = np.asarray(weight, dtype=float)
+    inc = sp.csr_matrix((np.ones(2 * e), (np.concatenate([rows, cols]), np.tile(np.arange(e), 2))),
+                        shape=(n_nodes, e))
+    kind = [str(k) for k in node_kind_name]
+    linked = np.zeros(n_nodes, dtype=bool)
+    linked[rows] = True
+    linked[cols] = True
+    hours: set[int] = set()
+    status = 0
+    for rnd in range(30):
+        _, n_y, y_rows, cover = caps._routine_rows(rows, cols, n_nodes, node_kind_name, hours=hours)
+        inc_v = sp.hstack([inc, sp.csr_matrix((n_nodes, n_y))]).tocsr()
+        cons = [LinearConstraint(inc_v, -np.inf, m), LinearConstraint(inc_v[np.flatnonzero(linked)], 1, np.inf)]
+        if n_y:
+            cons += [LinearConstraint(y_rows, -np.inf, 0), LinearConstraint(cover, 1, np.inf)]
+        res = milp(np.concatenate([-w, np.zeros(n_y)]), constraints=cons, integrality=np.ones(e + n_y),
+                   bounds=Bounds(0, 1), options={"time_limit": time_limit_s})
+        status = max(status, res.status)
+        keep = np.asarray(res.x[:e]) > 0.5
+        missing = set(caps._hours_missing_place(rows, cols, keep, n_nodes, kind))
+        if not missing:
+            return keep, ("milp" if status == 0 else "milp_time_limit"), rnd + 1
+        hours |= missing
+    return keep, "unfinished", 30
+
+
+def _lp_bound(rows, cols, w, n_nodes, m) -> float:
+    """LP relaxation of the plain b-matching: an upper bound with or without the routine rows."""
+    import scipy.sparse as sp
+    from scipy.optimize import linprog
+
+    e = len(rows)
+    inc = sp.csr_matrix((np.ones(2 * e), (np.concatenate([rows, cols]), np.tile(np.arange(e), 2))),
+                        shape=(n_nodes, e))
+    return float(-linprog(-w, A_ub=inc, b_ub=np.full(n_nodes, m), bounds=(0, 1), method="highs").fun)
+
+
+def bench_bmatching(name, episodes, policy=None, cap=5, runs=2) -> dict:
+    """Time the ``bmatching`` rule and its same-run reference on one graph."""
+    from agent import caps
+
+    seen = {}
+    real = caps.select_edges
+
+    def spy(*a, **k):
+        seen["args"] = (a, k)
+        return real(*a, **k)
+
+    caps.select_edges = spy
+    try:
+        CooccurrenceGraph.from_episodes(episodes, policy, degree_cap=cap, cap_rule="strongest")
+    finally:
+        caps.select_edges = real
+    (rows, cols, count, first, n, m, _rule), kw = seen["args"]
+    rows, cols, count = np.asarray(rows), np.asarray(cols), np.asarray(count, dtype=float)
+    kinds = kw["node_kind_name"]
+    new, t_new = [], []
+    for _ in range(runs):
+        t0 = time.perf_counter()
+        keep, method, relaxed = caps.b_matching(rows, cols, count, n, m, first=first, node_kind_name=kinds)
+        t_new.append(time.perf_counter() - t0)
+        new.append(keep)
+    old, t_old = [], []
+    for _ in range(runs):
+        t0 = time.perf_counter()
+        k_old, m_old, rounds = lazy_time_limited_reference(rows, cols, count, n, m, kinds)
+        t_old.append(time.perf_counter() - t0)
+        old.append(k_old)
+    bound = _lp_bound(rows, cols, count, n, m)
+    same_new = all(np.array_equal(new[0], k) for k in new)
+    same_old = all(np.array_equal(old[0], k) for k in old)
+    print(f"  {name}: {n} nodes, {len(rows)} pairs; LP bound {bound:.1f}")
+    print(f"    bmatching now   {min(t_new):6.2f} s (worst {max(t_new):.2f})  weight {count[new[0]].sum():.0f} "
+          f"({count[new[0]].sum() / bound:.3f} of the bound)  {method} relaxed={relaxed}  "
+          f"identical over {runs} runs: {same_new}")
+    print(f"    reference (3 s) {min(t_old):6.2f} s (worst {max(t_old):.2f})  weight {count[old[0]].sum():.0f} "
+          f"({count[old[0]].sum() / bound:.3f} of the bound)  {m_old} in {rounds} rounds  "
+          f"identical over {runs} runs: {same_old}")
+    return {"t_new": min(t_new), "t_old": min(t_old), "same": same_new}
+
+
+def bmatching_part(demo_home=None) -> None:
+    import pickle  # noqa: F401  (only the standard library besides the project)
+    import sys
+    from pathlib import Path
+
+    from agent.policy import bundled_policy_path, load_policy
+
+    root = Path(__file__).resolve().parents[1]
+    sys.path[:0] = [str(root), str(root / "tests")]
+    from _bundle_fixtures import episodes as fixture_episodes
+    from test_graph import demo_like_episodes
+
+    policy = load_policy(bundled_policy_path("default"))
+    print("bmatching (cap 5): goal identical edges on every run, each graph well under 1 s, "
+          "weight >= 0.9 of the LP bound")
+    res = [bench_bmatching("tests/_bundle_fixtures.py episodes (60)", fixture_episodes(), policy),
+           bench_bmatching("tests/test_graph.py demo_like_episodes (14 days)", demo_like_episodes(), policy),
+           bench_bmatching("this file's 14-day demo shape", synthetic_episodes(14, n_places=10, n_sounds=5), policy)]
+    if demo_home:
+        from agent.model.fit import load_home_inputs
+
+        _, eps = load_home_inputs(Path(demo_home))
+        res.append(bench_bmatching(f"14-day demo ({demo_home})", eps, policy))
+    ok = all(r["same"] for r in res) and max(r["t_new"] for r in res) < 1.0
+    print(f"goal: {'met' if ok else 'MISSED'} (slowest now {max(r['t_new'] for r in res):.2f} s, "
+          f"reference slowest {max(r['t_old'] for r in res):.2f} s)")
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeat", type=int, default=3, help="timing repeats (best of)")
+    ap.add_argument("--demo-home", default=None, help="a demo home (lethe demo's home/) for the b-matching part")
+    ap.add_argument("--bmatching-only", action="store_true", help="only the b-matching part")
     args = ap.parse_args(argv)
+    bmatching_part(args.demo_home)
+    if args.bmatching_only:
+        return 0
     year = synthetic_episodes(365, n_places=390, n_sounds=20)
     demo = synthetic_episodes(14, n_places=10, n_sounds=5)
     r = bench("year", year, 5, args.repeat)

@@ -65,13 +65,24 @@ QUIZ = {"issued": 20, "answered": 18, "skipped": 2, "pending": 0, "correct": 9, 
         "accuracy": 0.5, "p_value": 0.01}
 
 
-def make_payload(policy=None, *, edges=None):
-    policy = policy or load_policy(bundled_policy_path("default"))
+_EDGES: dict = {}  # the fixture graph's edge list per policy graph section, built once per session
+
+
+def fixture_edges(policy) -> list:
+    """The capped graph of :func:`episodes` under ``policy`` (cached: the episodes never change)."""
     from agent.graph import CooccurrenceGraph
 
+    key = repr(policy.graph)
+    if key not in _EDGES:
+        _EDGES[key] = CooccurrenceGraph.from_episodes(episodes(), policy).edge_list()
+    return list(_EDGES[key])
+
+
+def make_payload(policy=None, *, edges=None):
+    policy = policy or load_policy(bundled_policy_path("default"))
     eps = episodes()
     if edges is None:
-        edges = CooccurrenceGraph.from_episodes(eps, policy).edge_list()
+        edges = fixture_edges(policy)
     return payload_from_parts(policy, episodes=eps, edges=edges, fit=FIT, quiz_score=QUIZ,
                               ledger_digest=LEDGER, relabel=Relabeller(),
                               created=coarse_date(NOW, policy.export.time_granularity),
