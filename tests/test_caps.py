@@ -279,10 +279,15 @@ def test_infeasible_min_degree_is_relaxed_and_reported():
     assert keep.tolist() == [False, False, True]
 
 
-def test_bmatching_keeps_the_routine_on_the_demo_like_graph():
-    # the shipped rule at the shipped cap (5) on the 14-day demo-like episodes: step 3 of
-    # b_matching (the repair), whose every solve is exact
-    g = CooccurrenceGraph.from_episodes(_routine_episodes(), degree_cap=5, cap_rule="bmatching")
+@pytest.fixture(scope="module")
+def bmatching5():
+    """The shipped rule at the shipped cap (5) on the 14-day demo-like episodes, built once."""
+    return CooccurrenceGraph.from_episodes(_routine_episodes(), degree_cap=5, cap_rule="bmatching")
+
+
+def test_bmatching_keeps_the_routine_on_the_demo_like_graph(bmatching5):
+    # step 3 of b_matching (the repair), whose every solve is exact
+    g = bmatching5
     d = routine_diagnostics(g)
     assert g.cap_info["method"] == "milp_repair" and g.cap_info["relaxed"] == []
     assert g.degrees("capped").max() <= 5
@@ -323,34 +328,43 @@ def test_tie_break_leaves_non_integer_weights_alone():
     assert caps.tie_broken_weights(w, np.arange(3), 4, 1).tolist() == w.tolist()
 
 
-def test_bmatching_gives_identical_edges_on_repeated_runs():
+def test_bmatching_gives_identical_edges_on_repeated_runs(bmatching5):
     eps = _routine_episodes()
-    a = CooccurrenceGraph.from_episodes(eps, degree_cap=5, cap_rule="bmatching").edge_list()
+    a = bmatching5.edge_list()
     b = CooccurrenceGraph.from_episodes(list(reversed(eps)), degree_cap=5, cap_rule="bmatching").edge_list()
     assert a == b
 
 
-def test_bmatching_is_the_same_in_a_fresh_process_under_load():
+def test_bmatching_is_the_same_in_a_fresh_process_under_load(bmatching5):
     # the solver stops by deterministic rules (proven optimum, node limit), never by the clock:
-    # a second interpreter builds the same graph while this one keeps the cores busy
+    # a second interpreter solves the same problem while this one keeps a core busy solving it
     import json
     import subprocess
     import sys
 
-    code = ("import json, sys; sys.path[:0] = ['.', 'tests']\n"
-            "from tests.test_graph import demo_like_episodes\n"
-            "from agent.graph import CooccurrenceGraph\n"
-            "g = CooccurrenceGraph.from_episodes(demo_like_episodes(), degree_cap=5, cap_rule='bmatching')\n"
-            "print(json.dumps([list(map(list, e[:2])) for e in g.edge_list()]))\n")
-    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
-    mine = None
-    while proc.poll() is None:  # keep this core busy while the child solves
-        mine = CooccurrenceGraph.from_episodes(_routine_episodes(), degree_cap=5, cap_rule="bmatching")
-    out, _ = proc.communicate()
-    assert proc.returncode == 0
-    if mine is None:
-        mine = CooccurrenceGraph.from_episodes(_routine_episodes(), degree_cap=5, cap_rule="bmatching")
-    assert json.loads(out) == [list(map(list, e[:2])) for e in mine.edge_list()]
+    g = bmatching5
+    up = sp_triu(g.counts)
+    args = {"rows": up.row.tolist(), "cols": up.col.tolist(), "w": up.data.tolist(), "n": g.n_nodes,
+            "kinds": [str(k) for k in g.kinds]}
+    code = ("import json, sys\n"
+            "from agent.caps import b_matching\n"
+            "a = json.load(sys.stdin)\n"
+            "keep, method, _ = b_matching(a['rows'], a['cols'], a['w'], a['n'], 5, node_kind_name=a['kinds'])\n"
+            "print(json.dumps([keep.tolist(), method]))\n")
+    proc = subprocess.Popen([sys.executable, "-c", code], stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+    assert proc.stdin is not None
+    proc.stdin.write(json.dumps(args))
+    proc.stdin.close()
+    mine = []
+    while proc.poll() is None or not mine:  # keep this core busy while the child solves
+        mine.append(caps.b_matching(np.array(args["rows"]), np.array(args["cols"]), np.array(args["w"]),
+                                    g.n_nodes, 5, node_kind_name=args["kinds"]))
+    assert proc.stdout is not None
+    theirs = json.loads(proc.stdout.read())
+    assert proc.wait() == 0
+    assert theirs[1] == "milp_repair"
+    for keep, method, _ in mine:
+        assert (keep.tolist(), method) == (theirs[0], theirs[1])
 
 
 def _lp_bound_plain(rows, cols, w, n, b):
@@ -366,8 +380,8 @@ def _lp_bound_plain(rows, cols, w, n, b):
     return -res.fun
 
 
-def test_repair_is_within_ten_percent_of_the_lp_bound_on_the_demo_like_graph():
-    g = CooccurrenceGraph.from_episodes(_routine_episodes(), degree_cap=5, cap_rule="bmatching")
+def test_repair_is_within_ten_percent_of_the_lp_bound_on_the_demo_like_graph(bmatching5):
+    g = bmatching5
     up = sp_triu(g.counts)
     rows, cols, w = up.row.astype(np.int64), up.col.astype(np.int64), up.data
     kept = np.asarray(g.capped[rows, cols]).ravel() > 0

@@ -58,6 +58,12 @@ def episodes():
     return demo_like_episodes()
 
 
+@pytest.fixture(scope="module")
+def graph5(episodes):
+    """The graph under the default cap rule at cap 5, for the tests that only read it."""
+    return CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+
+
 def _nx_reference(episodes, kinds=NODE_KINDS):
     """Co-occurrence graph built independently with networkx (weights = counts)."""
     G = nx.Graph()
@@ -95,9 +101,9 @@ def _to_nx(g, mat):
 
 # -- structure against networkx ------------------------------------------------------
 
-def test_counts_match_networkx_weights(episodes):
+def test_counts_match_networkx_weights(episodes, graph5):
     # reference: networkx graph built from the same episodes
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     G = _nx_reference(episodes)
     assert set(g.nodes) == set(G.nodes)
     assert g.counts.nnz // 2 == G.number_of_edges()
@@ -107,9 +113,9 @@ def test_counts_match_networkx_weights(episodes):
     assert g.counts.diagonal().sum() == 0
 
 
-def test_uncapped_degrees_match_networkx(episodes):
+def test_uncapped_degrees_match_networkx(episodes, graph5):
     # reference: networkx degree of the co-occurrence graph
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     G = _nx_reference(episodes)
     deg = g.degrees("binary")
     for n, d in G.degree():
@@ -242,8 +248,8 @@ def test_empty_episode_list_gives_an_empty_graph():
 
 # -- W(theta), cue vector, summary --------------------------------------------------------
 
-def test_weighted_puts_theta_on_capped_edges(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+def test_weighted_puts_theta_on_capped_edges(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     theta = {p: float(k + 1) for k, p in enumerate(g.type_pairs)}
     w = g.weighted(theta)
     assert (w != w.T).nnz == 0
@@ -253,8 +259,8 @@ def test_weighted_puts_theta_on_capped_edges(episodes):
         assert v == theta[tuple(sorted((g.kinds[i], g.kinds[j])))]
 
 
-def test_weighted_accepts_string_keys_in_either_order(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+def test_weighted_accepts_string_keys_in_either_order(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     a, b = g.type_pairs[0]
     w1 = g.weighted({(a, b): 2.0})
     w2 = g.weighted({f"{b}|{a}": 2.0})
@@ -262,41 +268,41 @@ def test_weighted_accepts_string_keys_in_either_order(episodes):
     assert w1.nnz > 0
 
 
-def test_weighted_missing_pairs_weigh_zero(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+def test_weighted_missing_pairs_weigh_zero(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     assert g.weighted({}).sum() == 0
 
 
-def test_weighted_refuses_unknown_kind(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+def test_weighted_refuses_unknown_kind(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     with pytest.raises(ValueError, match="unknown node kind"):
         g.weighted({("hour", "colour"): 1.0})
 
 
-def test_type_pairs_are_sorted_and_present(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+def test_type_pairs_are_sorted_and_present(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     assert g.type_pairs == sorted(g.type_pairs)
     assert all(tuple(sorted(p)) == p for p in g.type_pairs)
     assert ("hour", "place") in g.type_pairs
 
 
-def test_cue_vector_is_unit_norm_on_time_nodes(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes)
+def test_cue_vector_is_unit_norm_on_time_nodes(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     v = g.cue_vector(14, 2, 1)
     assert math.isclose(np.linalg.norm(v), 1.0)
     on = {g.nodes[i] for i in np.flatnonzero(v)}
     assert on == {("hour", "14"), ("weekday", "2"), ("week", "1")}
 
 
-def test_cue_vector_skips_absent_nodes(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes)
+def test_cue_vector_skips_absent_nodes(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     v = g.cue_vector(14, 2, 99)
     assert np.count_nonzero(v) == 2 and math.isclose(np.linalg.norm(v), 1.0)
     assert np.count_nonzero(g.cue_vector(None, None, 99)) == 0
 
 
-def test_summary_is_consistent(episodes):
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+def test_summary_is_consistent(episodes, graph5):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     s = graph_summary(g)
     assert sum(s["nodes_per_kind"].values()) == s["n_nodes"] == g.n_nodes
     assert sum(s["degree_histogram"].values()) == g.n_nodes
@@ -307,9 +313,9 @@ def test_summary_is_consistent(episodes):
 
 # -- spectrum ------------------------------------------------------------------------------
 
-def test_eigenvalues_match_scipy_eigh(episodes):
+def test_eigenvalues_match_scipy_eigh(episodes, graph5):
     # reference: scipy.linalg.eigh on the dense matrix, and numpy's eigvalsh
-    g = CooccurrenceGraph.from_episodes(episodes)
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     for mat in (g.counts, g.binary(), g.capped):
         ours = eigenvalues(mat)
         ref = np.sort(scipy.linalg.eigh(mat.toarray(), eigvals_only=True))[::-1]
@@ -317,27 +323,27 @@ def test_eigenvalues_match_scipy_eigh(episodes):
         assert np.allclose(ours, np.sort(np.linalg.eigvalsh(mat.toarray()))[::-1])
 
 
-def test_eigenvalue_sums_match_trace_identities(episodes):
+def test_eigenvalue_sums_match_trace_identities(episodes, graph5):
     # spectral graph theory: sum of eigenvalues = trace = 0; sum of squares = 2|E| for 0/1 adjacency
-    g = CooccurrenceGraph.from_episodes(episodes)
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     w = eigenvalues(g.capped)
     assert abs(w.sum()) < 1e-8
     assert math.isclose((w ** 2).sum(), 2 * g.n_edges, rel_tol=1e-9)
 
 
-def test_capped_lambda1_is_bounded_by_the_cap(episodes):
+def test_capped_lambda1_is_bounded_by_the_cap(episodes, graph5):
     # lambda1 of an adjacency matrix lies between the mean and the maximum degree
-    g = CooccurrenceGraph.from_episodes(episodes, degree_cap=5)
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     w = eigenvalues(g.capped)
     deg = g.degrees("capped")
     assert deg.mean() - 1e-9 <= w[0] <= deg.max() + 1e-9 <= 5 + 1e-9
 
 
-def test_leading_eigenvector_has_one_sign(episodes):
+def test_leading_eigenvector_has_one_sign(episodes, graph5):
     # Perron-Frobenius: a connected nonnegative symmetric matrix has a positive leading eigenvector
     from scipy.sparse.csgraph import connected_components
 
-    g = CooccurrenceGraph.from_episodes(episodes)
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     for mat in (g.counts, g.capped):
         _, labels = connected_components(mat, directed=False)
         big = np.bincount(labels).argmax()
@@ -372,8 +378,8 @@ def test_capped_spectrum_is_flatter_on_demo_like_episodes(episodes, default_poli
     assert flat["capped"] - flat["counts"] > 0.2, flat
 
 
-def test_plot_writes_a_png(episodes, tmp_path):
-    g = CooccurrenceGraph.from_episodes(episodes)
+def test_plot_writes_a_png(episodes, graph5, tmp_path):
+    g = graph5  # the default rule (bmatching) at cap 5, built once per module
     out = tmp_path / "spectra.png"
     plot_spectra(spectrum_report(g), out)
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature, ISO/IEC 15948 section 5.2
