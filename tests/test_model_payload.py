@@ -85,3 +85,55 @@ def test_default_grouping_holds_back_every_pair_of_an_unidentifiable_non_place_c
     out = project_fit(fit, KINDS)
     assert set(out["params"]["theta"]) == {"hour|place", "place|sound"}
     assert out["params"]["recovery"]["theta[non-place]"]["value"] == 5.0
+
+
+# -- the per-participant grouping choice (docs/model.md, "Choosing the grouping per participant") ----
+def _fit_with_grouping():
+    fit = _fit_with_recovery()
+    fit["params"]["theta_groups"] = {"time-place": 1.0, "other": 3.0}
+    fit["params"]["weights"] = "classes2"
+    fit["recovery"]["params"] = {
+        "theta[other]": {"r": 0.3, "bias": 0.2, "rmse": 0.9, "identifiable": False},
+        "beta": {"r": 0.9, "bias": 0.0, "rmse": 0.2, "identifiable": True},
+        "tau": {"r": 0.9, "bias": 0.0, "rmse": 0.2, "identifiable": True}}
+    fit["grouping"] = {"chosen": "classes2", "forced": False, "reason": "free text stays on the device",
+                       "rule": "...", "candidates": [
+                           {"weights": "grouped", "loglik": -1.1, "aic": 500.0, "n_params": 4,
+                            "unidentifiable": ["theta[non-place]"], "min_r": 0.3, "screen_sims": 15},
+                           {"weights": "classes2", "loglik": -1.2, "aic": 510.0, "n_params": 3,
+                            "unidentifiable": [], "min_r": 0.8, "screen_sims": 15}]}
+    return fit
+
+
+def test_grouping_choice_travels_as_numbers_and_known_names():
+    out = project_fit(_fit_with_grouping(), KINDS)
+    g = out["params"]["grouping"]
+    assert g == {"chosen": "classes2", "forced": False, "candidates": {
+        "grouped": {"loglik": -1.1, "aic": 500.0, "n_params": 4.0, "min_r": 0.3, "n_unidentifiable": 1.0},
+        "classes2": {"loglik": -1.2, "aic": 510.0, "n_params": 3.0, "min_r": 0.8, "n_unidentifiable": 0.0}}}
+    p = make_payload()
+    p["model"] = out
+    validate_payload(p)
+
+
+def test_classes2_holds_back_every_pair_of_its_unidentifiable_other_class():
+    out = project_fit(_fit_with_grouping(), KINDS)
+    # place|sound and mood|sound are "other" (not identifiable); the time-place pairs stay
+    assert set(out["params"]["theta"]) == {"hour|place", "place|weekday"}
+
+
+def test_a_fit_without_grouping_exports_none():
+    # fit records from before the per-participant choice still project and validate
+    out = project_fit(_fit_with_recovery(), KINDS)
+    assert "grouping" not in out["params"]
+    p = make_payload()
+    p["model"] = out
+    validate_payload(p)
+
+
+def test_unknown_chosen_grouping_is_refused_by_the_schema():
+    p = make_payload()
+    p["model"] = project_fit(_fit_with_grouping(), KINDS)
+    p["model"]["params"]["grouping"]["chosen"] = "seven"
+    with pytest.raises(DataError, match="grouping"):
+        validate_payload(p)

@@ -11,9 +11,11 @@ def register(sub) -> None:
     p = sub.add_parser("fit", help="fit the memory model to your quiz answers (model vs baselines table)")
     p.add_argument("--seed", type=int, default=0, help="seed for restarts, folds and bootstrap (default 0)")
     p.add_argument("--no-store", action="store_true", help="do not store the result in the vault")
-    p.add_argument("--weights", choices=("grouped", "classes5", "full"), default="grouped",
-                   help="type-pair weights: three classes (time-place, place-context, non-place; default), "
-                        "five classes of kind families, or one per kind pair")
+    p.add_argument("--weights", choices=("auto", "grouped", "classes5", "classes2", "full"), default="auto",
+                   help="type-pair weight grouping: auto (default) chooses among grouped, classes5 and "
+                        "classes2 by recovery and held-out fit and says why; a name forces it: three "
+                        "classes (time-place, place-context, non-place), five classes of kind families, "
+                        "two (time-place, other), or one per kind pair")
     add_json(p)
     p.set_defaults(func=_fit)
 

@@ -171,6 +171,7 @@ def project_fit(fit: Mapping | None, kinds: Sequence[str]) -> dict | None:
     ref = params.get("reference_pair")
     out_params["reference_pair"] = ref if isinstance(ref, str) and ref in theta else None
     _project_recovery(fit, params, out_params)
+    _project_grouping(fit, out_params)
     cv = fit.get("cv") or {}
     folds = [_numeric_map(f) for f in (cv.get("folds") or []) if isinstance(f, Mapping)]
     baselines = {}
@@ -215,6 +216,8 @@ def _pair_group(pair: str, groups) -> str | None:
             return name  # five family classes
         if COARSE.get(name) in groups:
             return COARSE[name]  # three classes: time-time, time-context, context-context share "non-place"
+    if "other" in groups and {fa, fb} != {"time", "place"}:
+        return "other"  # two classes (classes2): everything but time-place shares "other"
     return None
 
 
@@ -251,6 +254,30 @@ def _project_recovery(fit: Mapping, params: Mapping, out_params: dict) -> None:
         row = table.get(f"theta[{g}]") if g is not None else None
         if row is not None and not row["identifiable"]:
             del out_params["theta"][pair]
+
+
+_GROUPINGS = ("grouped", "classes5", "classes2", "full")  # likelihood.WEIGHTS (docs/model.md)
+
+
+def _project_grouping(fit: Mapping, out_params: dict) -> None:
+    """Which weight grouping the fit reports and each candidate's figures (numbers and known names only).
+
+    ``params.grouping = {"chosen", "forced", "candidates": {name: {"loglik", "aic",
+    "n_params", "min_r", "n_unidentifiable"}}}``; a fit record without a
+    grouping (before the per-participant choice) exports none.
+    """
+    g = fit.get("grouping")
+    if not isinstance(g, Mapping) or g.get("chosen") not in _GROUPINGS:
+        return
+    cands: dict[str, Any] = {}
+    for row in g.get("candidates") or []:
+        if not isinstance(row, Mapping) or row.get("weights") not in _GROUPINGS:
+            continue
+        bad = row.get("unidentifiable")
+        cands[row["weights"]] = {"loglik": _num(row.get("loglik")), "aic": _num(row.get("aic")),
+                                 "n_params": _num(row.get("n_params")), "min_r": _num(row.get("min_r")),
+                                 "n_unidentifiable": float(len(bad)) if isinstance(bad, list) else None}
+    out_params["grouping"] = {"chosen": g["chosen"], "forced": g.get("forced") is True, "candidates": cands}
 
 
 def project_quiz(score: Mapping | None, fit_pooled: Mapping | None = None) -> dict | None:

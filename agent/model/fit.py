@@ -19,12 +19,68 @@ from .compare import information_criteria, paired_differences
 from .crossval import chance_metrics, cross_validate
 from .rivals import LABELS as RIVAL_LABELS
 from .recovery import recover, recovery_summary
-from .rivals import model_and_rivals
+from .rivals import centrality_spec, model_and_rivals
+from .baselines import EigenModel
+from .likelihood import GROUPING_CANDIDATES, WEIGHTS, ModelSpec
 from .design import TrialDesign, as_model_graph, cue_kind_weights
 
 DEFAULT_FOLDS = 5
 DEFAULT_RESTARTS = 1
 DEFAULT_RECOVERY_SIMS = 30
+# Screening recovery per candidate grouping: half the simulations (at least
+# SCREEN_MIN_SIMS); the chosen grouping's is then extended to the full count,
+# reusing the screening refits (docs/model.md, "Choosing the grouping").
+SCREEN_MIN_SIMS = 10
+GROUPING_RULE = ("candidates whose parameters all reach recovery r >= 0.7 around their own fit "
+                 "(screening); among them the best pooled held-out log-likelihood on the same day "
+                 "folds; if none qualifies, the fewest unidentifiable parameters, then held-out "
+                 "log-likelihood")
+
+
+def choose_grouping(table: list[dict], *, forced: bool = False) -> tuple[str, str]:
+    """The weight grouping to report, and why (:data:`GROUPING_RULE`).
+
+    Parameters
+    ----------
+    table : list of dict
+        One row per candidate: ``weights`` (name), ``loglik`` (pooled held-out
+        log-likelihood per trial), ``unidentifiable`` (list of parameter names
+        with recovery r < 0.7, or None when recovery was not run).
+    forced : bool
+        A single grouping asked for by the caller (``--weights``).
+
+    Returns
+    -------
+    (str, str)
+        The chosen grouping and a one-line reason.
+    """
+    if not table:
+        raise ValueError("choose_grouping: expected at least one candidate grouping")
+    if forced or len(table) == 1:
+        return table[0]["weights"], "asked for (--weights)" if forced else "the only candidate"
+
+    def ll(row):
+        v = row["loglik"]
+        return v if v is not None and np.isfinite(v) else -np.inf
+
+    if any(row["unidentifiable"] is None for row in table):
+        best = max(table, key=ll)
+        return best["weights"], "best held-out log-likelihood (no recovery was run)"
+    ok = [row for row in table if not row["unidentifiable"]]
+    if ok:
+        best = max(ok, key=ll)
+        others = [row["weights"] for row in table if row["unidentifiable"]]
+        why = (f"every parameter identifiable (recovery r >= 0.7); best held-out log-likelihood "
+               f"{ll(best):.3f} among {', '.join(row['weights'] for row in ok)}")
+        if others:
+            why += f" (left out, not identifiable: {', '.join(others)})"
+        return best["weights"], why
+    fewest = min(len(row["unidentifiable"]) for row in table)
+    tied = [row for row in table if len(row["unidentifiable"]) == fewest]
+    best = max(tied, key=ll)
+    return best["weights"], (f"no grouping has every parameter identifiable; fewest not identifiable "
+                             f"({fewest}: {', '.join(best['unidentifiable'])}), then best held-out "
+                             f"log-likelihood {ll(best):.3f}")
 LABELS = {"model": "cue-biased eigenvector", **RIVAL_LABELS}
 
 
@@ -45,6 +101,7 @@ class FitResult:
     paired: dict = field(default_factory=dict)
     in_sample: dict = field(default_factory=dict)
     recovery: dict | None = None
+    grouping: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         """JSON-ready record (``docs/architecture.md``, Model; stored as vault ``fits/latest``)."""
@@ -54,6 +111,7 @@ class FitResult:
             "fit": self.fit, "chance_level": self.chance_level,
             "participant_accuracy": self.participant_accuracy, "notes": self.notes,
             "paired": self.paired, "in_sample": self.in_sample, "recovery": self.recovery,
+            "grouping": self.grouping,
         })
 
     def table(self) -> str:
@@ -95,7 +153,7 @@ def _policy_int(policy, section, key, default):
 
 def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episodes=None,
               folds: int | None = None, restarts: int | None = None,
-              weights: str = "grouped", n_jobs: int | None = None,
+              weights: str = "auto", n_jobs: int | None = None,
               recovery_sims: int | None = None) -> FitResult:
     """Fit the model on the participant's choices; cross-validate it and the baselines.
 
@@ -113,8 +171,12 @@ def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episode
         For the rivals that count visits (most-visited, frequency, ACT-R);
         without them the frequency rival uses the graph's counts and the others
         are left out.
-    weights : {"grouped", "classes5", "full"}
-        Type-pair weight classes (default) or one weight per kind pair.
+    weights : {"auto", "grouped", "classes5", "classes2", "full"}
+        ``"auto"`` (default): every grouping of
+        :data:`~agent.model.likelihood.GROUPING_CANDIDATES` is fitted on the same
+        folds, each gets a screening recovery around its own fit, and
+        :func:`choose_grouping` picks one (``FitResult.grouping`` says which and
+        why).  A name forces that grouping.
     n_jobs : int, optional
         Worker processes for the fits (default: every usable core).
     recovery_sims : int, optional
@@ -146,39 +208,95 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
     r = restarts if restarts is not None else _policy_int(policy, "model", "restarts", DEFAULT_RESTARTS)
     notes = []
 
-    preds = model_and_rivals(mg, episodes=episodes, restarts=r, seed=seed, weights=weights)
+    sims = (recovery_sims if recovery_sims is not None
+            else _policy_int(policy, "model", "recovery_sims", DEFAULT_RECOVERY_SIMS))
+    sims = max(int(sims), 3) if sims else 0
+    if weights == "auto":
+        candidates = list(GROUPING_CANDIDATES)
+    elif weights in WEIGHTS:
+        candidates = [weights]
+    else:
+        raise ValueError(f"weights {weights!r}: expected 'auto' or one of {list(WEIGHTS)}")
+    # Phase 1: every candidate grouping of the model and the rivals that do not
+    # depend on the grouping, on the same day folds; phase 2 (after the choice):
+    # the centrality rival under the chosen grouping.
+    rivals = model_and_rivals(mg, episodes=episodes, restarts=r, seed=seed, weights=candidates[0])
+    preds = {f"model:{w}": EigenModel(ModelSpec.full(mg, weights=w), restarts=r, seed=seed)
+             for w in candidates}
+    preds.update({k: v for k, v in rivals.items() if k not in ("model", "centrality")})
     cv_all = cross_validate(preds, design, k, seed, n_jobs=n_jobs, in_sample=True)
     full = cv_all.pop("_fitted")
     answered = design.subset(np.flatnonzero(design.answered))
+    t_full = time.perf_counter() - t0
+
+    screen = sims if len(candidates) == 1 else max(SCREEN_MIN_SIMS, sims // 2) if sims else 0
+    screened: dict = {}
+    for w in candidates:
+        fit_w = full[f"model:{w}"]
+        screened[w] = (recover(mg, answered.trials, n_sims=min(screen, sims), seed=seed, around=fit_w.p,
+                               spec=fit_w.spec, n_jobs=n_jobs) if sims else None)
+    table = []
+    for w in candidates:
+        fit_w = full[f"model:{w}"]
+        lp = fit_w.log_probabilities(answered)
+        nll = float(-lp[np.arange(n_ans), answered.choice_pos].sum())
+        rec_w = screened[w]
+        bad = ([n for n, row in rec_w["params"].items() if not row["identifiable"]]
+               if rec_w is not None else None)
+        table.append({"weights": w, "loglik": cv_all[f"model:{w}"]["pooled"]["loglik"]["value"],
+                      "aic": information_criteria(nll, fit_w.n_params, n_ans)["aic"],
+                      "n_params": fit_w.n_params, "unidentifiable": bad,
+                      "min_r": (min(row["r"] if np.isfinite(row["r"]) else -1.0
+                                    for row in rec_w["params"].values()) if rec_w is not None else None),
+                      "screen_sims": rec_w["n_sims"] if rec_w is not None else 0})
+    chosen, reason = choose_grouping(table, forced=weights != "auto")
+    grouping = {"chosen": chosen, "forced": weights != "auto", "reason": reason,
+                "rule": GROUPING_RULE, "candidates": table}
+
+    model = full[f"model:{chosen}"]
+    cen = cross_validate({"centrality": EigenModel(centrality_spec(mg, chosen), restarts=r, seed=seed + 2)},
+                         design, k, seed, n_jobs=n_jobs, in_sample=True)
+    full["centrality"] = cen.pop("_fitted")["centrality"]
+    cv_all["_lp"]["centrality"] = cen["_lp"]["centrality"]
+    cv_all["centrality"] = cen["centrality"]
+    order = ["model", *[n for n in rivals if n != "model"]]
+    cv_all["model"] = cv_all[f"model:{chosen}"]
+    cv_all["_lp"]["model"] = cv_all["_lp"][f"model:{chosen}"]
+    for w in candidates:
+        cv_all.pop(f"model:{w}")
+        cv_all["_lp"].pop(f"model:{w}")
+    full["model"] = model
     in_sample = {}
-    for name, pred in full.items():
+    for name in order:
+        pred = full[name]
         lp = pred.log_probabilities(answered)
         nll = float(-lp[np.arange(n_ans), answered.choice_pos].sum())
         in_sample[name] = information_criteria(nll, pred.n_params, n_ans)
-    model = full["model"]
     theta, beta, tau = model.unpacked()
     params = {"theta": model.spec.theta_dict(theta), "beta": beta, "tau": tau,
               "theta_groups": model.spec.group_dict(model.p), "weights": model.spec.weights,
               "reference_pair": _ref_name(model.spec), "beta_relative_to_lambda1": model.spec.beta_relative,
               "activation": "unit-norm eigenvector; scores ln(a_k + eps mean a) over the options",
               "cue_weights": dict(cue_kind_weights(mg)),
-              "rivals": {k: v.params() for k, v in full.items() if k != "model"}}
-    t_full = time.perf_counter() - t0
-    sims = (recovery_sims if recovery_sims is not None
-            else _policy_int(policy, "model", "recovery_sims", DEFAULT_RECOVERY_SIMS))
+              "rivals": {n: full[n].params() for n in order if n != "model"}}
     recovery = None
     if sims:
-        rec = recover(mg, answered.trials, n_sims=max(int(sims), 3), seed=seed, around=model.p,
-                      spec=model.spec, n_jobs=n_jobs)
+        rec = screened[chosen]
+        if rec["n_sims"] < sims:  # the chosen grouping's screening recovery, extended to the full count
+            rec = recover(mg, answered.trials, n_sims=sims, seed=seed, around=model.p, spec=model.spec,
+                          n_jobs=n_jobs, reuse=rec)
         recovery = recovery_summary(rec)
         params["identifiable"] = {n: row["identifiable"] for n, row in recovery["params"].items()}
         bad = [n for n, ok in params["identifiable"].items() if not ok]
         if bad:
             notes.append("not identifiable at this participant's design (recovery r < "
                          f"{recovery['threshold']}): {', '.join(bad)}")
+    if not grouping["forced"]:
+        notes.append(f"weight grouping {chosen!r} chosen: {reason}")
     t_rec = time.perf_counter() - t0 - t_full
     fold_sizes = cv_all.pop("_folds")
     lps, held = cv_all.pop("_lp"), cv_all.pop("_rows")
+    lps = {n: lps[n] for n in order}
     paired = paired_differences(lps, design, held, seed=seed)
     if len(fold_sizes) < k:
         notes.append(f"only {len(fold_sizes)} days with answers: {len(fold_sizes)} folds instead of {k}")
@@ -204,9 +322,9 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
     return FitResult(
         params=params,
         cv=cv_all["model"],
-        baselines={name: cv_all[name] for name in preds if name != "model"},
+        baselines={name: cv_all[name] for name in order if name != "model"},
         n_trials=len(design), n_answered=n_ans, n_skipped=len(design) - n_ans,
-        paired=paired, in_sample=in_sample, recovery=recovery,
+        paired=paired, in_sample=in_sample, recovery=recovery, grouping=grouping,
         fit={"nll": model.nll, "n_params": model.n_params, "restarts": r, "runs": model.runs,
              "converged": model.converged, "folds": len(fold_sizes), "fold_sizes": fold_sizes,
              "seconds_fits": round(t_full, 3), "seconds_recovery": round(t_rec, 3),
@@ -253,6 +371,31 @@ def _fmt_rec(r) -> str:
             if r.get("r") is not None else f"   (recovery: {mark})")
 
 
+def _grouping_lines(g: dict) -> list[str]:
+    """The weight-grouping choice: every candidate's held-out fit and screening recovery."""
+    if not g:
+        return []
+    head = (f"weight grouping: {g['chosen']} ({'asked for' if g.get('forced') else 'chosen'}: "
+            f"{g.get('reason', '')})")
+    rows = g.get("candidates") or []
+    if len(rows) < 2:
+        return ["", head]
+    sims = max((r.get("screen_sims") or 0) for r in rows)
+    lines = ["", head,
+             f"{'grouping':<12} {'free':>4} {'held-out loglik':>16} {'AIC':>8} {'min recovery r':>15}  "
+             f"not identifiable (screening, {sims} simulations around each fit)"]
+    for r in rows:
+        ll = r.get("loglik")
+        mr = r.get("min_r")
+        bad = r.get("unidentifiable")
+        mark = " <- chosen" if r["weights"] == g["chosen"] else ""
+        lines.append(f"{r['weights']:<12} {r['n_params']:>4} "
+                     f"{(f'{ll:.3f}' if ll is not None else '-'):>16} {r['aic']:8.1f} "
+                     f"{(f'{mr:.2f}' if mr is not None else '-'):>15}  "
+                     f"{'-' if bad is None else (', '.join(bad) or 'none')}{mark}")
+    return lines
+
+
 def render_table(d: dict) -> str:
     """Plain-text table: model vs each baseline, held-out, with 95 % intervals."""
     p = d["params"]
@@ -289,6 +432,7 @@ def render_table(d: dict) -> str:
         if crit:
             lines.append(f"{LABELS['model']:<33} {'':<24} {'':<24} {'':<24} "
                          f"{crit['aic']:8.1f} {crit['bic']:8.1f}")
+    lines += _grouping_lines(d.get("grouping") or {})
     lines += ["", "parameters (fitted on all answered trials; "
                   f"{p.get('reference_pair')} fixed to 1; beta relative to lambda_1 of W):"]
     groups = p.get("theta_groups") or {k: v for k, v in p["theta"].items()}
@@ -320,7 +464,7 @@ def load_home_inputs(home):
 
 
 def fit_from_home(home, policy=None, seed: int = 0, *, store: bool = True,
-                  weights: str = "grouped") -> FitResult:
+                  weights: str = "auto") -> FitResult:
     """Fit from the home's vault (trials, answers, episodes) and store ``fits/latest``."""
     from ..graph import CooccurrenceGraph
     from ..home import Home

@@ -67,7 +67,16 @@ REFERENCE_CLASS = "time-place"
 COARSE = {"time-place": "time-place", "place-context": "place-context", "place-place": "place-place",
           "time-time": "non-place", "time-context": "non-place", "context-context": "non-place"}
 COARSE_ORDER = ("time-place", "place-context", "non-place", "place-place")
-WEIGHTS = ("grouped", "classes5", "full")
+# "classes2": the cue's direct route to the options (time-place, the reference)
+# against everything else ("other"): one free weight, the fewest a graph
+# weighting can have and still be more than eigenvector centrality of the raw counts.
+CLASSES2 = {c: ("time-place" if c == "time-place" else "other") for c in CLASS_ORDER}
+CLASSES2_ORDER = ("time-place", "other")
+WEIGHTS = ("grouped", "classes5", "classes2", "full")
+# The groupings every fit considers by default (``weights="auto"``, docs/model.md,
+# "Choosing the grouping per participant"): recovery around each fit, then the
+# best held-out log-likelihood among those whose parameters are all identifiable.
+GROUPING_CANDIDATES = ("grouped", "classes5", "classes2")
 
 
 def pair_class(pair) -> str:
@@ -92,7 +101,7 @@ class ModelSpec:
     Attributes
     ----------
     graph : ModelGraph
-    weights : {"grouped", "classes5", "full"}
+    weights : {"grouped", "classes5", "classes2", "full"}
     reference : str or None
         Name of the group fixed to 1.
     zero : tuple of str
@@ -131,6 +140,9 @@ class ModelSpec:
             if self.weights == "grouped":
                 cls = [COARSE.get(c, c) for c in cls]
                 order = COARSE_ORDER
+            elif self.weights == "classes2":
+                cls = [CLASSES2.get(c, "other") for c in cls]
+                order = CLASSES2_ORDER
             names = [c for c in order if c in cls] + sorted({c for c in cls if c not in order})
             of = [names.index(c) for c in cls]
         self.group_names: list[str] = names

@@ -41,7 +41,7 @@ AROUND_FACTOR = 3.0
 
 def recover(graph, trials, n_sims: int = 30, seed: int = 0, *, restarts: int = 1,
             model: str = "full", spec: ModelSpec | None = None, around=None,
-            n_jobs: int | None = None) -> dict:
+            n_jobs: int | None = None, reuse: dict | None = None) -> dict:
     """Simulate-and-refit recovery table.
 
     Parameters
@@ -62,6 +62,13 @@ def recover(graph, trials, n_sims: int = 30, seed: int = 0, *, restarts: int = 1
         Packed parameters to draw the true values around (see the module docstring).
     n_jobs : int, optional
         Worker processes (default: every usable core).
+    reuse : dict, optional
+        An earlier result of this function with the same graph, trials, seed,
+        spec and ``around`` but fewer simulations: its refits are kept and only
+        the further simulations are run.  Simulation ``i`` draws its parameters
+        and choices from one seeded stream in order and is refitted with seed
+        ``seed + 1000 + i``, so the result equals a fresh run with ``n_sims``
+        (tested).  The fit uses it to extend a screening recovery.
 
     Returns
     -------
@@ -74,10 +81,10 @@ def recover(graph, trials, n_sims: int = 30, seed: int = 0, *, restarts: int = 1
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):  # small eighs: threads only cost
-        return _recover(graph, trials, n_sims, seed, restarts, model, spec, around, n_jobs)
+        return _recover(graph, trials, n_sims, seed, restarts, model, spec, around, n_jobs, reuse)
 
 
-def _recover(graph, trials, n_sims, seed, restarts, model, spec, around, n_jobs):
+def _recover(graph, trials, n_sims, seed, restarts, model, spec, around, n_jobs, reuse=None):
     mg = as_model_graph(graph)
     if spec is None:
         specs = {"full": lambda: ModelSpec.full(mg),
@@ -102,15 +109,22 @@ def _recover(graph, trials, n_sims, seed, restarts, model, spec, around, n_jobs)
         lo = np.array([RANGES[k][0] for k in keys])
         hi = np.array([RANGES[k][1] for k in keys])
     cache = ActivationCache(mg, design)
+    done = _reusable(reuse, names, n_sims)
     true_p, jobs = [], []
     for i in range(n_sims):
         p = rng.uniform(lo, hi)
         lp = model_log_probabilities(spec, cache, p)
         sim = design.with_choices(simulate_choices(lp, design.opt_mask, rng))
         true_p.append(p)
-        jobs.append((EigenModel(spec, restarts=restarts, seed=seed + 1000 + i), sim, None, [seed, 1000 + i]))
-    fit_arr = np.array([fit.p for fit, _ in run_fits(jobs, n_jobs)])
+        if i >= len(done):
+            jobs.append((EigenModel(spec, restarts=restarts, seed=seed + 1000 + i), sim, None,
+                         [seed, 1000 + i]))
     true_arr = np.array(true_p)
+    if len(done) and not np.allclose(true_arr[: len(done)], done[:, 0, :], rtol=0, atol=1e-12):
+        raise ValueError("reuse: the earlier recovery drew other parameters (another graph, trials, "
+                         "seed, spec or around); expected the same set-up with fewer simulations")
+    fresh = [fit.p for fit, _ in run_fits(jobs, n_jobs)]
+    fit_arr = np.array(([*done[:, 1, :]] if len(done) else []) + fresh)
     table = {}
     for j, name in enumerate(names):
         t, f = true_arr[:, j], fit_arr[:, j]
@@ -121,6 +135,20 @@ def _recover(graph, trials, n_sims, seed, restarts, model, spec, around, n_jobs)
     return {"params": table, "model": spec.name, "n_sims": int(n_sims), "n_trials": len(design),
             "threshold": IDENTIFIABLE_R, "scale": "log",
             "draws": "around the fit" if around is not None else "ranges"}
+
+
+def _reusable(reuse, names, n_sims) -> np.ndarray:
+    """``(k, 2, n_params)``: true and fitted values of an earlier run's first k <= n_sims simulations."""
+    if reuse is None:
+        return np.zeros((0, 2, len(names)))
+    rows = reuse.get("params") or {}
+    if list(rows) != list(names) or any("true" not in rows[n] for n in names):
+        raise ValueError(f"reuse: expected a full recovery result (with per-simulation values) for "
+                         f"parameters {names}, got {list(rows)}")
+    k = min(int(reuse["n_sims"]), int(n_sims))
+    t = np.array([rows[n]["true"][:k] for n in names]).T
+    f = np.array([rows[n]["fitted"][:k] for n in names]).T
+    return np.stack([t, f], axis=1)
 
 
 def recovery_summary(rec: dict) -> dict:
