@@ -165,11 +165,16 @@ class RankOneSolver:
         z = self.cue_coefficients(cue_idx, cue_w)
         x2 = np.einsum("tc,tc->t", cue_w, cue_w)
         w = z * z
-        gw = np.add.reduceat(w, self.group_start, axis=1)  # (T, G)
-        touched = gw > ZERO_RTOL * x2[:, None]
-        elem = touched[:, self.group_of]  # (T, n)
-        z = np.where(elem, z, 0.0)
-        w = z * z
+        simple = self.n_groups == n  # no tied eigenvalues: every group one element (the usual case)
+        if simple:
+            touched = w > ZERO_RTOL * x2[:, None]
+            elem = touched
+        else:
+            gw = np.add.reduceat(w, self.group_start, axis=1)  # (T, G)
+            touched = gw > ZERO_RTOL * x2[:, None]
+            elem = touched[:, self.group_of]  # (T, n)
+        np.multiply(z, elem, out=z)
+        np.multiply(w, elem, out=w)
         any_touch = touched.any(axis=1)
         top_touched = touched[:, -1]
 
@@ -192,28 +197,41 @@ class RankOneSolver:
 
         sec = ~plain
         if sec.any():
-            zs, ws_, es = z[sec], w[sec], elem[sec]
+            every = bool(sec.all())
+            zs, ws_, es = (z, w, elem) if every else (z[sec], w[sec], elem[sec])
+            rr = np.arange(len(zs))
             # the largest touched eigenvalue per trial (elements sorted ascending)
             last = n - 1 - np.argmax(es[:, ::-1], axis=1)
             lam_star = self.lam[last]
             a = lam_star[:, None] - self.lam[None, :]
             # lower bound of the root from the top touched group (weight W_g, spread a_g)
-            g_star = self.group_of[last]
-            in_g = self.group_of[None, :] == g_star[:, None]
-            w_g = np.where(in_g, ws_, 0.0).sum(axis=1)
-            a_g = np.where(in_g, a, 0.0).max(axis=1)
-            lo = np.maximum(beta * w_g - a_g, beta * ws_[np.arange(len(last)), last])
+            if simple:
+                w_g = ws_[rr, last]
+                lo = w_g * beta
+            else:
+                g_star = self.group_of[last]
+                in_g = self.group_of[None, :] == g_star[:, None]
+                w_g = np.where(in_g, ws_, 0.0).sum(axis=1)
+                a_g = np.where(in_g, a, 0.0).max(axis=1)
+                lo = np.maximum(beta * w_g - a_g, beta * ws_[rr, last])
             lo = np.maximum(lo, np.finfo(float).tiny)
-            s = _secular_root(a, ws_, es, lo, beta)
-            mu_s = lam_star + s
-            denom = np.where(es, s[:, None] + a, 1.0)
-            c = np.where(es, zs / denom, 0.0)
-            c /= np.sqrt((c * c).sum(axis=1))[:, None]
+            # untouched terms have w = 0; the eigenvalues above lam* (a < 0) are
+            # clamped to a = 0 so that s + a > 0 and their terms stay exactly 0
+            np.maximum(a, 0.0, out=a)
+            s_ = _secular_root(a, ws_, lo, beta)
+            mu_s = lam_star + s_
+            c = a
+            c += s_[:, None]
+            np.divide(zs, c, out=c)  # zs is 0 on untouched terms
+            c /= np.sqrt(np.einsum("tn,tn->t", c, c))[:, None]
             # deflation: an untouched leading eigenspace above the secular root wins
             tol = self.tie_rtol * np.maximum(self.scale, np.abs(mu_s))
             loses = (~top_touched[sec]) & (mu_s < self.lam_max - tol)
             c[loses] = ones_coef
-            coef[sec] = c
+            if every:
+                coef = c
+            else:
+                coef[sec] = c
             mu[sec] = np.where(loses, self.lam_max, mu_s)
             sec_rows = np.flatnonzero(sec)
             secular[sec_rows[~loses]] = True
@@ -241,30 +259,35 @@ class RankOneSolver:
         return float(mu[0])
 
 
-def _secular_root(a, w, mask, lo_s, beta):
+def _secular_root(a, w, lo_s, beta):
     """Root ``s > 0`` of ``beta * sum w / (s + a) = 1`` per row, given a lower bound ``lo_s``.
 
-    Newton on ``F(u) = log phi(e^u) + log beta`` safeguarded by bisection of the
-    bracket ``[log lo_s, log(beta sum w)]``; only unconverged rows are iterated.
+    ``a >= 0`` everywhere (terms that must not count carry ``w = 0``).  Newton on
+    ``F(u) = log phi(e^u) + log beta`` safeguarded by bisection of the bracket
+    ``[log lo_s, log(beta sum w)]``; only unconverged rows are iterated, and
+    while every row is unconverged the arrays are used in place (no copies).
     """
     eps4 = 4 * np.finfo(float).eps
-    # untouched terms get a huge offset so that they vanish without masking in the loop
-    a = np.where(mask, a, 1e300)
-    w = np.where(mask, w, 0.0)
     lo = np.log(lo_s)
     hi = np.maximum(np.log(beta * w.sum(axis=1)), lo)
     u = lo.copy()
     log_beta = np.log(beta)
+    t_all = len(u)
     act = np.flatnonzero(hi - lo > eps4 * np.maximum(1.0, np.abs(hi)))
+    buf = np.empty_like(a)
     for _ in range(MAX_ITER):
         if len(act) == 0:
             break
+        full = len(act) == t_all
+        aa, wa = (a, w) if full else (a[act], w[act])
+        inv = buf[: len(act)]
         ua, la, ha = u[act], lo[act], hi[act]
         s = np.exp(ua)
-        d = s[:, None] + a[act]
-        r = w[act] / d
+        np.add(aa, s[:, None], out=inv)
+        np.reciprocal(inv, out=inv)
+        r = wa * inv
         phi = r.sum(axis=1)
-        dphi = (r / d).sum(axis=1)
+        dphi = np.einsum("tn,tn->t", r, inv)
         f = np.log(phi) + log_beta
         fp = -s * dphi / phi
         la = np.where(f > 0, ua, la)
