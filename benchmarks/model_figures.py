@@ -191,15 +191,14 @@ def paired_sentence(d: dict) -> str:
         v, (lo, hi) = diff["loglik"]["value"], diff["loglik"]["ci"]
         key = "better" if lo > 0 else "worse" if hi < 0 else "tie"
         parts[key].append(f"{LABELS.get(name, name)} ({v:+.3f} [{lo:+.2f}, {hi:+.2f}])")
-    out = []
+    out = ["Model minus rival in held-out log-likelihood per trial, 95 % day-bootstrap interval."]
     if parts["better"]:
-        out.append("predicts the answers better than " + "; ".join(parts["better"]))
+        out.append("The model predicts the answers **better** than: " + "; ".join(parts["better"]) + ".")
     if parts["tie"]:
-        out.append("cannot be told apart from " + "; ".join(parts["tie"]))
+        out.append("It cannot be told apart from: " + "; ".join(parts["tie"]) + ".")
     if parts["worse"]:
-        out.append("predicts them **worse** than " + "; ".join(parts["worse"]))
-    return ("In held-out log-likelihood per trial (model minus rival, 95 % day-bootstrap interval) the "
-            "model " + ", ".join(out) + ".")
+        out.append("It predicts them **worse** than: " + "; ".join(parts["worse"]) + ".")
+    return " ".join(out)
 
 
 def demo_fit(home, policy) -> tuple[str, object]:
