@@ -214,3 +214,17 @@ def test_columns_of_one_width_but_a_wider_row():
     # per-field masks (float() reference).
     body = b"1.5,-2.25,3\n1.5,-2.25,3\n12345678.5,-2.25,30\n"
     assert _same(parse_plain(body, 3), _floats(body, 3))
+
+
+def test_start_skips_the_bytes_before_the_body():
+    head = b"# unit=g\ntime,x,y,z\n"
+    body = b"".join(b"%d.5,-0.25,0.125,1\n" % i for i in range(20_000))
+    assert len(body) > CHUNK_BYTES   # read in pieces from the offset
+    assert _same(parse_plain(head + body, 4, start=len(head)), parse_plain(body, 4))
+    assert _same(parse_plain(head + b"1,2,3,4\n", 4, start=len(head)), _floats(b"1,2,3,4\n", 4))
+
+
+@pytest.mark.parametrize("start", [-1, 10**6, 1.5])
+def test_start_must_be_an_offset_into_the_body(start):
+    with pytest.raises(ValueError, match="start"):
+        parse_plain(b"1,2,3,4\n", 4, start=start)

@@ -130,18 +130,22 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
     now = now_or(now)
     if data.startswith(b"\xef\xbb\xbf"):
         data = data[3:]  # a UTF-8 byte-order mark some editors add
-    parts = data.split(b"\n", 2)
-    if len(parts) < 3:
+    # The two first lines are found, not split off: the body is read in place.
+    unit_end = data.find(b"\n")
+    header_end = data.find(b"\n", unit_end + 1) if unit_end >= 0 else -1
+    if header_end < 0:
         reject(path, "too_short", "expected a unit line, a header line and samples")
-    scale, declared = parse_unit_line(path, parts[0])
-    header = tuple(h.strip().lower() for h in parts[1].decode("utf-8", "replace").strip().split(","))
+    scale, declared = parse_unit_line(path, data[:unit_end])
+    header_line = data[unit_end + 1:header_end].decode("utf-8", "replace")
+    header = tuple(h.strip().lower() for h in header_line.strip().split(","))
     if header != ("time", "x", "y", "z"):
         reject(path, "bad_header", "expected the header 'time,x,y,z'")
     # Plain decimals are always finite and four to a row; anything else goes to loadtxt,
     # as do short bodies, where loadtxt's single C call is the faster (docs/features.md).
-    arr = parse_plain(parts[2], 4) if len(parts[2]) >= PLAIN_MIN_BYTES else None
+    body_start = header_end + 1
+    arr = parse_plain(data, 4, start=body_start) if len(data) - body_start >= PLAIN_MIN_BYTES else None
     if arr is None:
-        arr = _loadtxt(path, parts[2])
+        arr = _loadtxt(path, data[body_start:])
     if arr.shape[0] < 2:
         reject(path, "too_short", f"{arr.shape[0]} sample(s); at least two are needed")
     t = arr[:, 0]
@@ -154,7 +158,7 @@ def read_accel(path, data: bytes, policy, *, now: float | None = None) -> AccelR
             reject(path, "bad_timestamp", f"a sample time is {why}")
     rate = 1.0 / _median(dt)
     _check_rate(path, policy, declared=declared, measured=rate)
-    xyz = arr[:, 1:4] * scale if scale != 1.0 else np.ascontiguousarray(arr[:, 1:4])
+    xyz = arr[:, 1:4] * scale if scale != 1.0 else arr[:, 1:4]   # a view: no copy of the samples
     mag = _checked_magnitude(path, xyz)
     warnings, dropped = [], {}
     want = float(policy.schedule.accel_rate_hz)

@@ -101,7 +101,7 @@ def _exponents(flag: np.ndarray) -> np.ndarray:
     return np.where(flag != 0, 8 - e // 8, 0)
 
 
-def parse_plain(body: bytes, n_cols: int) -> np.ndarray | None:
+def parse_plain(body: bytes, n_cols: int, *, start: int = 0) -> np.ndarray | None:
     """Rows of ``n_cols`` plain decimals as an ``(n, n_cols)`` float64 array, or ``None``.
 
     Long bodies are read in pieces of about :data:`CHUNK_BYTES` whole lines, so the
@@ -114,6 +114,9 @@ def parse_plain(body: bytes, n_cols: int) -> np.ndarray | None:
         Lines separated by ``\\n`` (a final newline is optional), fields by ``,``.
     n_cols : int
         Fields expected on every line.
+    start : int, optional
+        Offset of the first line in ``body`` (the bytes before it are ignored), so a
+        caller need not copy the body out of a file's bytes.
 
     Returns
     -------
@@ -124,10 +127,12 @@ def parse_plain(body: bytes, n_cols: int) -> np.ndarray | None:
     """
     if not isinstance(n_cols, int) or n_cols < 1:
         raise ValueError(f"n_cols must be a positive integer, got {n_cols!r}")
-    if len(body) <= CHUNK_BYTES:
-        return _parse_piece(body, n_cols)
+    if not isinstance(start, int) or not 0 <= start <= len(body):
+        raise ValueError(f"start must be an offset into body, got {start!r}")
+    if len(body) - start <= CHUNK_BYTES:
+        return _parse_piece(body[start:] if start else body, n_cols)
     pieces = []
-    pos, n = 0, len(body)
+    pos, n = start, len(body)
     while pos < n:
         end = body.find(b"\n", min(pos + CHUNK_BYTES, n - 1))
         end = n if end < 0 else end + 1
