@@ -105,6 +105,29 @@ def test_nan_samples_are_silent_corrupt(default_policy):
     assert rejected(NAME, encode(y, 16000, subtype="FLOAT"), default_policy).reason == "silent_corrupt"
 
 
+# The checks read the extremes of the decoded samples (numpy's min and max propagate NaN);
+# each case on stereo too, where the swing is the mono mix's.
+@pytest.mark.parametrize("bad", [np.inf, -np.inf, np.nan])
+def test_an_infinite_or_nan_sample_in_one_stereo_channel_is_silent_corrupt(default_policy, bad):
+    y = tone(channels=2)
+    y[4000, 1] = bad
+    assert rejected(NAME, encode(y, 16000, subtype="FLOAT"), default_policy).reason == "silent_corrupt"
+
+
+def test_stereo_channels_in_opposite_phase_mix_to_silence(default_policy):
+    # Each channel swings +-0.3; their mean is zero: a constant signal after mixing.
+    y = tone()
+    data = encode(np.column_stack([y, -y]), 16000, subtype="FLOAT")
+    assert rejected(NAME, data, default_policy).reason == "silent_corrupt"
+
+
+def test_a_clipped_stereo_channel_is_counted(default_policy):
+    y = tone(channels=2)
+    y[:, 0] = np.clip(y[:, 0] * 10.0, -1.0, 1.0)
+    r = featurise(NAME, encode(y, 16000), default_policy, now=NOW)
+    assert any("clipped" in w for w in r.warnings)
+
+
 def test_name_without_start_time_is_a_bad_timestamp(default_policy):
     assert rejected("snd.wav", encode(tone(), 16000), default_policy).reason == "bad_timestamp"
 
