@@ -415,3 +415,15 @@ def test_repair_path_meets_the_constraints_and_never_beats_brute_force(seed, b):
 def test_negative_exact_max_pairs_is_refused():
     with pytest.raises(ValueError, match="exact_max_pairs"):
         caps.b_matching(np.array([0]), np.array([1]), np.array([1.0]), 2, 1, exact_max_pairs=-1)
+
+
+def test_repair_path_reports_an_infeasible_hour_place_constraint():
+    # the infeasible example above through the repair (step 3): no repair fits the degrees, so
+    # (b) is reported as not met and step 1's optimum (the perfect matching) is kept
+    rows = np.array([0, 0, 0, 0, 1, 2, 3])
+    cols = np.array([1, 2, 3, 7, 4, 5, 6])
+    w = np.array([5.0, 5.0, 5.0, 1.0, 1.0, 1.0, 1.0])
+    kind = ["place", "hour", "hour", "hour", "mood", "mood", "mood", "mood"]
+    keep, method, relaxed = caps.b_matching(rows, cols, w, 8, 1, node_kind_name=kind, exact_max_pairs=0)
+    assert method == "milp" and relaxed == ["hour_place"]
+    assert keep.tolist() == [False, False, False, True, True, True, True]
