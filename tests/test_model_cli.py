@@ -9,7 +9,7 @@ from agent.cli import main
 from agent.errors import EXIT_DATA, EXIT_STATE, EXIT_USAGE
 
 
-def _fill(home, repo, n_trials=60):
+def _fill(home, repo, n_trials=60, days=10):
     from agent.graph import CooccurrenceGraph
     from agent.model.design import ModelGraph
     from agent.model.synthetic import quiz_trials, routine_episodes, simulate_answers
@@ -23,7 +23,7 @@ def _fill(home, repo, n_trials=60):
     home.write_config({"pseudonym": "test"})
     policy = load_policy(home.policy_path)
     assert policy.model.folds == 2
-    eps = routine_episodes(10, seed=1)
+    eps = routine_episodes(days, seed=1)
     mg = ModelGraph.from_graph(CooccurrenceGraph.from_episodes(eps, policy))
     trials = quiz_trials(eps, n_trials, seed=2)
     rows = simulate_answers(mg, trials, mg.theta_dict(np.ones(len(mg.type_pairs))), 2.0, 0.2, seed=3)
@@ -70,6 +70,25 @@ def test_fit_without_trials_exits_with_data_error(home, repo, capsys):
     assert "no quiz trials" in capsys.readouterr().err
 
 
+def test_fit_refuses_too_few_answers(home, repo, capsys):
+    # 8 answers: below MIN_FIT_ANSWERS, so the fit is refused rather than printing noise
+    from agent.model.fit import MIN_FIT_ANSWERS
+
+    _fill(home, repo, n_trials=8)
+    assert main(["--home", str(home.root), "fit"]) == EXIT_STATE
+    err = capsys.readouterr().err
+    assert "8 answered" in err and f"at least {MIN_FIT_ANSWERS} answers" in err
+
+
+def test_fit_refuses_answers_from_too_few_days(home, repo, capsys):
+    # plenty of answers, but all from two days: day folds cannot hold anything out
+    from agent.model.fit import MIN_FIT_DAYS
+
+    _fill(home, repo, n_trials=40, days=2)
+    assert main(["--home", str(home.root), "fit"]) == EXIT_STATE
+    assert f"on {MIN_FIT_DAYS} different days" in capsys.readouterr().err
+
+
 def test_fit_outside_a_home_exits_with_state_error(tmp_path, capsys):
     assert main(["--home", str(tmp_path / "none"), "fit"]) == EXIT_STATE
 
@@ -100,3 +119,15 @@ def test_graph_refuses_an_unknown_cap_rule(home, repo, capsys):
     _fill(home, repo)
     assert main(["--home", str(home.root), "graph", "--cap-rule", "widest"]) == EXIT_USAGE
     assert "cap_rule 'widest'" in capsys.readouterr().err
+
+
+def test_fit_help_states_the_thresholds_in_force(capsys):
+    # the help text is written out (importing the model at start-up would slow every command)
+    import pytest
+
+    from agent.model.fit import MIN_FIT_ANSWERS, MIN_FIT_DAYS
+
+    with pytest.raises(SystemExit):
+        main(["fit", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert f"at least {MIN_FIT_ANSWERS} answers on {MIN_FIT_DAYS} different" in text

@@ -311,6 +311,7 @@ def participant_quiz(ctx: DemoContext) -> None:
 
 def fit_model(ctx: DemoContext) -> None:
     from ..home import Home
+    from ..errors import StateError
     from ..model import fit_from_home
 
     home = Home(ctx.home_dir)
@@ -319,7 +320,11 @@ def fit_model(ctx: DemoContext) -> None:
     if not (ctx.facts.get("quiz") or {}).get("answered"):
         ctx.say("Skipped: there are no memory-test answers to fit yet.")
         return
-    fit = fit_from_home(home, policy, seed=ctx.seed)
+    try:
+        fit = fit_from_home(home, policy, seed=ctx.seed)
+    except StateError as err:  # too few answers on a short demo: say so and go on
+        ctx.say(f"Skipped: {err}")
+        return
     ctx.facts["fit"] = fit.summary() if hasattr(fit, "summary") else None
     ctx.say(fit.table())
 

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.sparse.csgraph import connected_components
 
-from ..errors import DataError
+from ..errors import DataError, StateError
 from .compare import information_criteria, paired_differences
 from .crossval import chance_metrics, cross_validate
 from .rivals import LABELS as RIVAL_LABELS
@@ -463,6 +463,33 @@ def load_home_inputs(home):
     return join_answers(trials, answers), episodes
 
 
+MIN_FIT_ANSWERS = 20
+"""Answered trials a participant's fit needs (see :func:`check_enough_answers`)."""
+MIN_FIT_DAYS = 3
+"""Distinct trial days a participant's fit needs: cross-validation folds are whole days."""
+
+
+def check_enough_answers(rows, *, source: str = "fit") -> None:
+    """Refuse a participant's fit on too few answers (:class:`StateError`, exit 5).
+
+    Below ``MIN_FIT_ANSWERS`` answered trials on ``MIN_FIT_DAYS`` distinct days
+    a fit only shows noise: with a handful of four-option choices the fitted
+    temperatures run to their bounds (a rival scored -107 nats per held-out
+    trial on 4 answers), the day folds hold one or two trials, and the
+    recovery check has nothing to recover.  The thresholds are a practical
+    floor (common practice, no source), not a power analysis; ``lethe study
+    plan`` sizes a study.  :func:`fit_model` itself does not refuse (tests and
+    simulations call it on small designs on purpose).
+    """
+    answered = [r for r in rows if r.get("choice") is not None]
+    days = {str(r.get("date", "")) for r in answered}
+    if len(answered) < MIN_FIT_ANSWERS or len(days) < MIN_FIT_DAYS:
+        raise StateError(
+            f"{source}: {len(answered)} answered memory-test question(s) on {len(days)} day(s) so far; "
+            f"the model is fitted once there are at least {MIN_FIT_ANSWERS} answers on "
+            f"{MIN_FIT_DAYS} different days (answer more with 'lethe quiz' or on your page)")
+
+
 def fit_from_home(home, policy=None, seed: int = 0, *, store: bool = True,
                   weights: str = "auto") -> FitResult:
     """Fit from the home's vault (trials, answers, episodes) and store ``fits/latest``."""
@@ -477,6 +504,7 @@ def fit_from_home(home, policy=None, seed: int = 0, *, store: bool = True,
         raise DataError(f"{home.vault_path}: no quiz trials stored yet; run the quiz first")
     if not episodes:
         raise DataError(f"{home.vault_path}: no episodes stored; the graph cannot be built")
+    check_enough_answers(rows, source=str(home.vault_path))
     graph = CooccurrenceGraph.from_episodes(episodes, policy)
     result = fit_model(graph, rows, policy, seed=seed, episodes=episodes, weights=weights)
     if store:
