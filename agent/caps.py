@@ -518,7 +518,7 @@ def _repair_routine(rows, cols, w, n, m, inc, linked, kind, keep, method, opts):
         for h in missing:
             visited = sorted(p for p in nbrs[h] if kind[p] == "place")
             vis = set(visited)
-            options = [(eid[(h, p)],) for p in visited]
+            options: list[tuple[int, ...]] = [(eid[(h, p)],) for p in visited]
             options += [(eid[(h, k)], eid[(k, p)]) for k in sorted(nbrs[h]) if kind[k] != "place"
                         for p in sorted(nbrs[k]) if p in vis]
             for opt in options:
