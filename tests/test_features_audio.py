@@ -242,3 +242,41 @@ def test_a_weighted_level_of_50hz_sine_is_attenuated_as_the_table_says():
     # IEC 61672-1 table: A(50 Hz) = -30.2 dB (from memory).  Spectrogram bins of
     # 31 Hz would read this tone 2.4 dB too loud; the snippet's own spectrum does not.
     assert F.level_dba(tone(50.0), SR) == pytest.approx(-30.2, abs=0.1)
+
+
+def test_work_arrays_carry_nothing_from_one_snippet_to_the_next():
+    # audio_vector and level_dba reuse per-thread work arrays; a snippet's values must
+    # not depend on what was computed before it (same length or not).
+    rng = np.random.default_rng(7)
+    a = (0.3 * rng.standard_normal(48000)).astype(np.float32)
+    b = tone(3000.0, amp=0.5)
+    c = (0.1 * rng.standard_normal(40000)).astype(np.float32)
+    first = F.audio_vector(a, SR), F.level_dba(a, SR)
+    for other in (b, c):
+        F.audio_vector(other, SR)
+        F.level_dba(other, SR)
+        again = F.audio_vector(a, SR), F.level_dba(a, SR)
+        assert np.array_equal(again[0], first[0]) and again[1] == first[1]
+
+
+def test_work_arrays_are_per_thread():
+    # Two threads featurising different snippets at once give each its serial result.
+    from concurrent.futures import ThreadPoolExecutor
+
+    rng = np.random.default_rng(8)
+    sigs = [(0.2 * rng.standard_normal(48000)).astype(np.float32) for _ in range(8)]
+    serial = [F.audio_vector(s, SR) for s in sigs]
+    with ThreadPoolExecutor(max_workers=2) as ex:
+        for _ in range(5):
+            for got, want in zip(ex.map(lambda s: F.audio_vector(s, SR), sigs), serial, strict=True):
+                assert np.array_equal(got, want)
+
+
+def test_stft_magnitude_is_not_a_work_array():
+    # The public spectrogram is the caller's to keep: a later call must not overwrite it.
+    y = tone(440.0)
+    s1 = F.stft_magnitude(y, 512, 256)
+    kept = s1.copy()
+    F.stft_magnitude(tone(2000.0), 512, 256)
+    F.audio_vector(tone(2000.0), SR)
+    assert np.array_equal(s1, kept)
