@@ -93,3 +93,37 @@ def test_unsupported_type_is_refused():
 def test_sha256_hex_is_the_hash_of_the_canonical_bytes():
     # FIPS 180-4 SHA-256 through hashlib; the canonical text from RFC 8785 section 3.2.2 rules.
     assert sha256_hex({"b": 1.0, "a": [True]}) == hashlib.sha256(b'{"a":[true],"b":1}').hexdigest()
+
+
+# -- the fast path (agent.canonical._fast) writes exactly what the rfc8785 package writes ----------
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+import rfc8785  # noqa: E402
+
+_KEYS = st.one_of(st.text(max_size=4), st.sampled_from(["a", "b", "A", "_", "\u20ac", "\U0001f600", "\ufb33"]))
+_LEAVES = st.one_of(
+    st.none(), st.booleans(), st.integers(-(2 ** 53) - 2, 2 ** 53 + 2), st.integers(-5, 5),
+    st.floats(allow_nan=False, allow_infinity=False), st.floats(-1e7, 1e7),
+    st.sampled_from([0.0, -0.0, 1.0, 2.0 ** 53, 2.0 ** 53 - 1, 1e-4, 1e-5, 1e-7, 1e16, 1e21, 0.1, 1790000000.25]),
+    st.text(max_size=6), st.sampled_from(["\x00", "\x1f", "\x7f", "\u2028", '"', "\\", "\b\f\n\r\t", "\ud800"]),
+)
+_DOCS = st.recursive(_LEAVES, lambda inner: st.one_of(st.lists(inner, max_size=4),
+                                                      st.dictionaries(_KEYS, inner, max_size=4)), max_leaves=12)
+
+
+@settings(max_examples=600, deadline=None)
+@given(doc=_DOCS)
+def test_dumps_is_byte_identical_to_the_rfc8785_package(doc):
+    # the rfc8785 package is the reference implementation of RFC 8785
+    try:
+        want = rfc8785.dumps(doc)
+    except (rfc8785.CanonicalizationError, TypeError, ValueError, UnicodeEncodeError):
+        with pytest.raises(CanonicalJSONError):
+            dumps(doc)
+        return
+    assert dumps(doc) == want
+
+
+@pytest.mark.parametrize("value", [2.0 ** 53, 1e16, 1e-5, 1e21, 5e-324, {"\u20ac": 1, "z": 2}, (1, 2.5)])
+def test_values_outside_the_fast_subset_are_still_rfc8785(value):
+    assert dumps(value) == rfc8785.dumps(value)
