@@ -180,6 +180,13 @@ def test_group_append_refuses_the_whole_group_on_one_bad_event(home, ledger):
     assert home.ledger_path.read_bytes() == before
 
 
+def test_numpy_counts_inside_a_mapping_are_accepted(ledger):
+    import numpy as np
+
+    e = ledger.append("coded", counts={"place": np.int64(3)})
+    assert e["counts"] == {"place": 3} and type(e["counts"]["place"]) is int
+
+
 def test_writer_normalises_types_as_the_schema_names_them(ledger):
     e = ledger.append("received", item=IT, kind="gps", bytes=10, complete_at=1_790_000_000)
     assert type(e["complete_at"]) is float and type(e["bytes"]) is int

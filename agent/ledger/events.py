@@ -84,9 +84,11 @@ EVENT_FIELDS: dict[str, tuple[dict[str, dict], dict[str, dict]]] = {e: _fields_o
 
 
 def _plain(v: Any) -> Any:
-    """numpy scalars (from the feature code) as the Python numbers they hold; everything else unchanged."""
+    """numpy scalars (from the feature code), also inside a mapping, as the Python numbers they hold."""
     if type(v) in (int, float, str, bool) or v is None:
         return v
+    if isinstance(v, dict):
+        return {k: _plain(x) for k, x in v.items()}
     item = getattr(v, "item", None)
     if item is not None and type(v).__module__ == "numpy":
         return item()
