@@ -280,3 +280,14 @@ def test_stft_magnitude_is_not_a_work_array():
     F.stft_magnitude(tone(2000.0), 512, 256)
     F.audio_vector(tone(2000.0), SR)
     assert np.array_equal(s1, kept)
+
+
+def test_no_signal_or_spectrum_stays_in_the_work_arrays():
+    # docs/features.md, "Discarded": the decoded signal and the spectrogram are dropped
+    # once the features exist; the reused work arrays are zeroed.
+    y = tone(440.0, amp=0.5)
+    F.audio_vector(y, SR)
+    F.level_dba(y, SR)
+    arrays = F._WORK.arrays
+    assert {"stft_padded", "stft_windowed", "stft_magnitude", "power"} <= set(arrays)
+    assert all(not a.any() for a in arrays.values())

@@ -108,12 +108,10 @@ def level_dba(y: np.ndarray, sr: int) -> float:
 
     y = np.asarray(y, dtype=np.float32)
     n = len(y)
-    spec = scipy.fft.rfft(y)
-    p = np.abs(spec, out=_scratch("dba_power", spec.shape, np.float32))
+    p = np.abs(scipy.fft.rfft(y))
     p *= p
     # An elementwise product and a sum rather than np.dot: no multi-threaded BLAS call.
-    w = _a_weight_power(n, sr)
-    ms = float(np.sum(np.multiply(p, w, out=_scratch("dba_weighted", w.shape, np.float64)))) / (n * n)
+    ms = float(np.sum(p * _a_weight_power(n, sr))) / (n * n)
     return 10.0 * float(np.log10(max(2.0 * ms, 1e-20)))
 
 
@@ -213,6 +211,17 @@ def _scratch(name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
     if arr is None or arr.shape != shape or arr.dtype != np.dtype(dtype):
         arr = arrays[name] = np.empty(shape, dtype=dtype)
     return arr
+
+
+def _wipe_scratch() -> None:
+    """Zero this thread's work arrays once a snippet's features exist.
+
+    They held the padded signal, its frames and its spectra; nothing of a
+    snippet is kept after its features (``docs/features.md``, "Discarded").
+    Writing zeros into pages already mapped is cheap; mapping new ones was not.
+    """
+    for arr in getattr(_WORK, "arrays", {}).values():
+        arr.fill(0)   # 0.7 MB for a 3 s 16 kHz snippet
 
 
 def _stft_frames(y: np.ndarray, n_fft: int, hop_length: int, *, scratch: bool = False) -> np.ndarray:
@@ -329,8 +338,8 @@ def audio_vector(y: np.ndarray, sr: int) -> np.ndarray:
     y = np.asarray(y, dtype=np.float32)
     n_fft, hop = frame_params(sr)
     mag = _stft_frames(y, n_fft, hop, scratch=True)          # (frames, bins), float32
+    # One more work array, for the power and then, in turn, the products below.
     power = np.multiply(mag, mag, out=_scratch("power", mag.shape, np.float32))
-    tmp = _scratch("tmp", mag.shape, np.float32)
     freqs = np.fft.rfftfreq(n_fft, 1.0 / sr)
 
     mel = _mel_basis(sr, n_fft) @ power.T      # (mels, frames)
@@ -340,22 +349,24 @@ def audio_vector(y: np.ndarray, sr: int) -> np.ndarray:
     mfcc = _mfcc(log_mel)
     bands = log_mel.reshape(N_MEL_BANDS, -1).mean(axis=1)
 
-    mag_sum = mag.sum(axis=1, dtype=np.float64)
-    centroid = (np.multiply(mag, freqs.astype(np.float32), out=tmp).sum(axis=1, dtype=np.float64)
-                / np.maximum(mag_sum, 1e-10))
     # Flatness on the power spectrum with amin = 1e-10 (librosa's definition).
-    pw = np.maximum(power, np.float32(1e-10), out=tmp)
+    pw = np.maximum(power, np.float32(1e-10), out=power)   # the power is not needed after this
     arith = pw.mean(axis=1, dtype=np.float64)
     flatness = np.exp(np.log(pw, out=pw).mean(axis=1, dtype=np.float64)) / arith
-    cum = np.cumsum(mag, axis=1, out=tmp)   # single precision, as librosa's spectral_rolloff sums
+    mag_sum = mag.sum(axis=1, dtype=np.float64)
+    centroid = (np.multiply(mag, freqs.astype(np.float32), out=power).sum(axis=1, dtype=np.float64)
+                / np.maximum(mag_sum, 1e-10))
+    cum = np.cumsum(mag, axis=1, out=power)   # single precision, as librosa's spectral_rolloff sums
     idx = np.argmax(cum >= ROLL_PERCENT * cum[:, -1:], axis=1)
     rolloff = freqs[idx]
     zcr = zero_crossing_rate_mean(y, n_fft, hop)
 
-    return np.concatenate([
+    vec = np.concatenate([
         mfcc.mean(axis=1), mfcc.std(axis=1), bands,
         [centroid.mean(), flatness.mean(), rolloff.mean(), zcr],
     ])
+    _wipe_scratch()
+    return vec
 
 
 def audio_features(clip, policy) -> ItemResult:
