@@ -498,7 +498,7 @@ def accel_windows(t: np.ndarray, xyz_g: np.ndarray, rate_hz: float, window_s: fl
         # edges[j]: the first sample with u >= j, i.e. with floor(u) >= j (j is a whole number).
         edges = np.searchsorted(u, np.arange(n_win + 1, dtype=np.float64))
         length = int(edges[1])
-        if length >= half and length * n_win == n and (np.diff(edges) == length).all():
+        if length >= half and length * n_win == n and (edges[1:] - edges[:-1] == length).all():
             # The usual burst: every window full and back to back from the first sample.
             block = mag.reshape(n_win, length)
             mag_mean = block.sum(axis=1) / length
