@@ -113,3 +113,8 @@ def test_recursive_schema_is_left_to_jsonschema():
 def test_is_valid_uses_jsonschema_for_a_schema_it_cannot_compile():
     # the policy schema uses "format" (IANA time zones), so it is not compiled; is_valid still answers
     assert contracts.is_valid("policy", {}) is Draft202012Validator(contracts.schema("policy")).is_valid({})
+
+
+def test_is_valid_refuses_an_unknown_part():
+    with pytest.raises(ValueError, match="has no part 'event-nope'"):
+        contracts.is_valid("ledger-entry", {}, part="event-nope")

@@ -502,9 +502,15 @@ def test_sigkill_during_appends_leaves_a_verifiable_ledger(home, keys):
 
     ctx = multiprocessing.get_context("fork")
     for round_ in range(4):
+        lines_before = home.ledger_path.read_bytes().count(b"\n") if home.ledger_path.exists() else 0
         p = ctx.Process(target=_append_forever, args=(str(home.root),))
         p.start()
-        time.sleep(0.15 + 0.05 * round_)
+        # kill while it appends: wait (on a loaded machine) until its first group is written
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline and (not home.ledger_path.exists()
+                                               or home.ledger_path.read_bytes().count(b"\n") <= lines_before):
+            time.sleep(0.01)
+        time.sleep(0.05 + 0.05 * round_)
         os.kill(p.pid, signal.SIGKILL)
         p.join(10)
         r = verify_ledger(home, retention_limit_s=1e9, now=T0)

@@ -142,7 +142,11 @@ def _fast(name: str, part: str | None = None) -> Callable[[Any], bool]:
     from .compiled import compile_schema
 
     doc = schema(name)
-    _validator(name, part)  # the schema (and the part) exist and are valid 2020-12
+    if part is not None and part not in doc.get("$defs", {}):
+        raise ValueError(f"contract {name!r} has no part {part!r} under $defs")
+    # Not checked against the meta-schema here (that costs about 90 ms on first use, in every
+    # process): tests/test_contracts.py checks every schema, and _validator checks it before
+    # any message is worded.
     check = compile_schema(doc, doc if part is None else doc["$defs"][part])
     return check if check is not None else _validator(name, part).is_valid
 
