@@ -277,8 +277,8 @@ def tie_broken_weights(weight, first, n_nodes: int, degree_cap: int) -> np.ndarr
 
 
 def _milp_options(time_limit_s: float) -> dict:
-    # deterministic stopping rules first (HiGHS runs its branch and bound serially and
-    # deterministically); the time limit is only a safety net, and reaching it is recorded
+    # deterministic stopping rules first (a proven optimum, the node limit); the time
+    # limit is only a safety net, and reaching it is recorded ("milp_time_limit")
     return {"time_limit": float(time_limit_s), "node_limit": MILP_NODE_LIMIT, "mip_rel_gap": MILP_REL_GAP}
 
 
