@@ -41,6 +41,44 @@ def login_url(home, port: int, next_path: str = "/") -> str:
     return url + (f"&next={next_path}" if next_path != "/" else "")
 
 
+def _quiet_server(config):
+    """A ``uvicorn.Server`` that sleeps until asked to stop instead of ticking ten times a second.
+
+    uvicorn's own main loop wakes every 0.1 s to check ``should_exit`` and to
+    refresh the ``Date`` header; the page sends no ``Date`` header
+    (``date_header=False``), so its loop only has to wake for the stop, which
+    :meth:`request_exit` delivers from any thread.  A running agent with an
+    idle page then costs no CPU (measured in ``benchmarks/bench_intake.py``).
+    """
+    import asyncio
+    import contextlib
+
+    import uvicorn
+
+    class QuietServer(uvicorn.Server):
+        _loop: asyncio.AbstractEventLoop | None = None
+        _wake: asyncio.Event | None = None
+
+        async def main_loop(self) -> None:
+            self._wake = asyncio.Event()
+            self._loop = asyncio.get_running_loop()
+            if await self.on_tick(0):
+                return
+            while not self.should_exit:
+                with contextlib.suppress(asyncio.TimeoutError):
+                    # The timeout is only a safety net for a stop set without request_exit().
+                    await asyncio.wait_for(self._wake.wait(), timeout=30.0)
+
+        def request_exit(self) -> None:
+            self.should_exit = True
+            loop, wake = self._loop, self._wake
+            if loop is not None and wake is not None:
+                with contextlib.suppress(RuntimeError):   # the loop has already closed
+                    loop.call_soon_threadsafe(wake.set)
+
+    return QuietServer(config)
+
+
 class PageServer:
     """The page on a loopback socket, served by uvicorn in a background thread.
 
@@ -67,7 +105,7 @@ class PageServer:
                         on_withdrawn=self._after_withdrawal)
         config = uvicorn.Config(app, log_level="warning", access_log=False, lifespan="off",
                                 server_header=False, date_header=False, timeout_graceful_shutdown=5)
-        self.server = uvicorn.Server(config)
+        self.server = _quiet_server(config)
         self.thread: threading.Thread | None = None
 
     def start(self) -> PageServer:
@@ -87,7 +125,7 @@ class PageServer:
         self.withdrawn.set()
 
     def stop(self) -> None:
-        self.server.should_exit = True
+        self.server.request_exit()
         if self.thread is not None:
             self.thread.join(10)
         try:
