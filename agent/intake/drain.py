@@ -6,7 +6,7 @@ import logging
 import time
 
 from .pipeline import Intake
-from .report import DrainReport
+from .report import DrainReport, ReportBuilder
 
 log = logging.getLogger("lethe.intake")
 
@@ -38,15 +38,22 @@ def drain(home, policy, now: float | None = None, *, settle_s: float | None = No
     own = intake is None
     if intake is None:
         intake = Intake(home, policy, now=now)
-    outcomes: list = []
+    acc = ReportBuilder(float(policy.retention.raw_seconds))
     skipped: dict = {}
     stuck = 0
+
+    def take(o) -> None:
+        acc.add(o)
+        if on_outcome is not None:
+            on_outcome(o)
+
     try:
         intake.finish_leftovers()
         while True:
-            ready, settling, _waiting = intake.scan(settle_s=settle_s)
-            got = intake.process_groups(adaptive_batches(ready, intake), on_outcome=on_outcome)
-            outcomes += got
+            # The SCAN_CHUNK closest deadlines only: the next pass rescans (files that arrived meanwhile
+            # take their place by deadline), so memory does not grow with the size of the backlog.
+            ready, settling, _waiting = intake.scan(settle_s=settle_s, limit=SCAN_CHUNK)
+            got = intake.process_groups(adaptive_batches(ready, intake), on_outcome=take)
             if not ready and not settling:
                 break
             stuck = stuck + 1 if ready and not got else 0
@@ -69,11 +76,10 @@ def drain(home, policy, now: float | None = None, *, settle_s: float | None = No
     finally:
         if own:
             intake.close()
-    return DrainReport.from_outcomes(outcomes, float(policy.retention.raw_seconds),
-                                     skipped=sorted(skipped.values()), recovered=recovered,
-                                     seconds=round(time.time() - t0, 3))
+    return acc.report(skipped=sorted(skipped.values()), recovered=recovered, seconds=round(time.time() - t0, 3))
 
 
+SCAN_CHUNK = 4096           # ready entries taken from one scan of the inbox (closest deadlines first)
 BATCH_FILES = 32            # files taken together in a backfill, at most
 GROUP_SECONDS = 0.5         # a group that takes longer halves the next one; a quicker one doubles it
 STUCK_PASSES = 3            # drain passes without progress before it gives up and reports
@@ -111,7 +117,7 @@ def adaptive_batches(candidates, intake: Intake, max_bytes: int = BATCH_BYTES):
         yield [x.name for x in group]
 
 
-def process_safely(intake: Intake, names, outcomes: list) -> list:
+def process_safely(intake: Intake, names, outcomes) -> list:
     """:meth:`Intake.process_many`; a group that fails is retried file by file, a failing file logged."""
     try:
         outs = intake.process_many(names)

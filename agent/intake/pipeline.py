@@ -60,6 +60,7 @@ UNFINISHED_REASONS = {
     "partial": "a .part file not completed within retention.raw_seconds; destroyed unread",
     "hidden": "a hidden file (or one in a hidden folder) older than retention.raw_seconds; destroyed unread",
 }
+DEADLINE_MARGIN_MIN_S = 2.0   # files this close to their deadline (or raw_seconds/10; <= raw_seconds/2): unread
 TAKEN_LIMIT = 2          # the agent died this often while parsing it: destroyed unparsed ("taken_twice")
 DESTROY_SECONDS = 2.0    # bound on the overwrites of one group (the unlinks follow regardless)
 READER_TIMEOUT_MIN_S = 5.0   # a child parsing one file longer than max(this, raw_seconds / 3) is stopped
@@ -160,7 +161,16 @@ class Intake:
         self.vault = vault
         self.ledger = ledger
         self.inbox = InboxDir(self.home.inbox, policy.intake.max_file_bytes)
+        # Items a previous run left open (received, never destroyed): the only ones reconcile may close,
+        # and the only ones whose sighting is remembered (nothing per file is kept for a whole drain).
+        self.open_at_start: set[str] | None
+        try:
+            self.open_at_start = set(open_items(self.ledger))
+        except (OSError, LetheError, ValueError):
+            self.open_at_start = None   # reconcile then remembers every item seen
         self.seen_items: set[str] = set()
+        # Read, parse and commit must fit before the deadline: closer than this, a file is destroyed unread.
+        self.deadline_margin_s = min(max(DEADLINE_MARGIN_MIN_S, self.raw_seconds / 10.0), self.raw_seconds / 2.0)
         if workers is None:
             workers = min(2, os.cpu_count() or 1)
         if int(workers) < 1:
@@ -213,16 +223,17 @@ class Intake:
         return self.mac(b"lethe/unread\0" + ident + os.fsencode(name))[:32]
 
     # -- scanning ------------------------------------------------------------
-    def scan(self, judged_at: float | None = None, settle_s: float | None = None):
+    def scan(self, judged_at: float | None = None, settle_s: float | None = None, limit: int | None = None):
         """Entries under the inbox (subfolders walked safely): ``(ready, settling, waiting)``.
 
         See :func:`agent.intake.scan.scan`: ``ready`` is sorted oldest deadline
         first and includes unfinished names (``.part``, hidden) past the window,
         to be destroyed unread; ``waiting`` are unfinished names still inside it.
+        ``limit`` keeps only that many ready entries, the closest deadlines.
         """
         judged_at = time.time() if judged_at is None else judged_at
         settle_s = float(self.policy.retention.settle_seconds if settle_s is None else settle_s)
-        ready, settling, waiting = scan_inbox(self.inbox, judged_at, settle_s, self.raw_seconds)
+        ready, settling, waiting = scan_inbox(self.inbox, judged_at, settle_s, self.raw_seconds, limit=limit)
         if self.parsing.suspect_tags:
             # Files a dead agent was parsing go last (and alone: see drain), so a kill that hit
             # them by chance does not hit them again first thing in the next life.
@@ -267,9 +278,13 @@ class Intake:
         else:
             self.group_files = min(_drain_mod.BATCH_FILES, self.group_files * 2)
 
-    def process_groups(self, groups, on_outcome=None) -> list[Outcome]:
+    def process_groups(self, groups, on_outcome=None) -> int:
         """:meth:`process_many` over several groups, the next group's reading and featurising
         overlapping the previous group's durable half (commit, ledger, destruction).
+
+        Returns how many entries were taken; each outcome goes to ``on_outcome``
+        as its group finishes (none is kept here, so memory does not grow with
+        the backlog).
 
         Per file the order of steps is unchanged; only different files' steps
         overlap.  A group whose processing fails is left in the inbox for the
@@ -277,15 +292,16 @@ class Intake:
         """
         from concurrent.futures import ThreadPoolExecutor
 
-        outs: list[Outcome] = []
+        done = 0
 
         def collect(fut):
+            nonlocal done
             try:
                 got = fut.result()
             except (OSError, ValueError) as e:
                 log.error("intake_error group error=%s", type(e).__name__)
                 return
-            outs.extend(got)
+            done += len(got)
             if on_outcome is not None:
                 for o in got:
                     on_outcome(o)
@@ -306,7 +322,7 @@ class Intake:
             if fut is not None:
                 collect(fut)
                 self._grew(time.monotonic() - started)
-        return outs
+        return done
 
     def _front(self, names, judged_at: float | None = None) -> list:
         """Steps 1-5 for a group: look, open, read, MAC, ``received``, featurise."""
@@ -385,6 +401,13 @@ class Intake:
             kind = "unknown"
         elif refusal is not None and refusal.reason in _REFUSED_UNREAD:
             err = refusal
+        elif judged_at >= complete_at + self.raw_seconds - self.deadline_margin_s:
+            # The retention rule wins over featurising: too close to its deadline to be read, parsed
+            # and committed in time (a backlog larger than the machine can featurise in the window).
+            err = UnsafeEntry(self.inbox.display(name), "retention_deadline",
+                              f"not featurised within retention.raw_seconds = {self.raw_seconds:g} s "
+                              f"(intake was behind); destroyed unread")
+            unfinished = "deadline"
         if err is None or (unfinished is not None and stat.S_ISREG(lst.st_mode) and lst.st_nlink == 1):
             try:
                 # Oversize and unfinished files are opened too, but only so they can be overwritten.
@@ -425,7 +448,8 @@ class Intake:
                 out.detail = (f"the agent died {self.suspects[out.item]} times while parsing it; "
                               f"destroyed unparsed")
                 log.error("taken_twice item=%s kind=%s", out.item[:12], kind)
-        self.seen_items.add(out.item)
+        if self.open_at_start is None or out.item in self.open_at_start:
+            self.seen_items.add(out.item)
         return w
 
     def _featurise_all(self, works) -> None:
@@ -655,8 +679,8 @@ class Intake:
             self.log.alarm("ledger_unreadable", e)
             return 0
         for item, entry in opened.items():
-            if item in self.seen_items:
-                continue
+            if item in self.seen_items or (self.open_at_start is not None and item not in self.open_at_start):
+                continue   # swept in this run, or received in this run and still waiting in the inbox
             complete_at = float(entry.get("complete_at") or started_at)
             self.log.write([("destroyed", {"item": item, "kind": entry.get("kind", "unknown"),
                                            "complete_at": complete_at,

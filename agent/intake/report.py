@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import time
+from array import array
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 
@@ -49,29 +50,9 @@ class DrainReport:
 
     @classmethod
     def from_outcomes(cls, outcomes, raw_seconds: float, **kw) -> DrainReport:
-        rec: Counter = Counter()
-        fea: Counter = Counter()
-        dup: Counter = Counter()
-        rej: Counter = Counter()
-        des: Counter = Counter()
-        why: Counter = Counter()
-        samples: Counter = Counter()
-        rows = 0
-        for o in outcomes:
-            rec[o.kind] += 1
-            {"featurised": fea, "duplicate": dup, "rejected": rej}[o.status][o.kind] += 1
-            if o.status == "rejected":
-                why[o.reason] += 1
-            if o.destroyed_at is not None:
-                des[o.kind] += 1
-            rows += o.rows
-            samples[o.kind] += o.n_samples
-        exp = [o.exposure_s for o in outcomes]
-        return cls(received=dict(rec), featurised=dict(fea), duplicate=dict(dup), rejected=dict(rej),
-                   destroyed=dict(des), reasons=dict(why), rows=rows, n_samples=dict(samples),
-                   exposure=exposure_stats(exp),
-                   over_limit=sum(1 for x in exp if x is not None and x > raw_seconds),
-                   errors=[o.error for o in outcomes if o.error], raw_seconds=raw_seconds, **kw)
+        """The report of a finished list of outcomes (see :class:`ReportBuilder` to aggregate as files go)."""
+        acc = outcomes if isinstance(outcomes, ReportBuilder) else ReportBuilder(raw_seconds).extend(outcomes)
+        return acc.report(**kw)
 
     def redacted(self) -> DrainReport:
         """A copy without file names (for the service's log): rejections and skips as counts only."""
@@ -112,6 +93,78 @@ class DrainReport:
             lines.append(err)
         lines.append(f"took {self.seconds:.2f} s")
         return "\n".join(lines)
+
+
+MAX_SHOWN_ERRORS = 200   # rejected files named in one report; the rest are counted
+
+
+class ReportBuilder:
+    """A drain report aggregated as files go: counts by kind and reason, exposures as 8-byte floats.
+
+    Nothing per file is kept but its exposure (for the exact median and p95,
+    type 7 like the ledger verifier) and, for at most :data:`MAX_SHOWN_ERRORS`
+    rejected files, the line that names it (shown, never persisted), so a
+    drain's memory does not grow with the backlog by the outcomes it held.
+
+    Parameters
+    ----------
+    raw_seconds : float
+        ``retention.raw_seconds``: exposures above it are counted ``over_limit``.
+    """
+
+    def __init__(self, raw_seconds: float):
+        self.raw_seconds = float(raw_seconds)
+        self.counts: dict[str, Counter] = {k: Counter() for k in
+                                           ("received", "featurised", "duplicate", "rejected", "destroyed")}
+        self.reasons: Counter = Counter()
+        self.samples: Counter = Counter()
+        self.rows = 0
+        self.n = 0
+        self.exposures = array("d")
+        self.over_limit = 0
+        self.errors: list[str] = []
+        self.more_errors = 0
+
+    def add(self, o) -> None:
+        """Count one :class:`~agent.intake.pipeline.Outcome`."""
+        self.n += 1
+        self.counts["received"][o.kind] += 1
+        self.counts[o.status][o.kind] += 1
+        if o.status == "rejected":
+            self.reasons[o.reason] += 1
+        if o.destroyed_at is not None:
+            self.counts["destroyed"][o.kind] += 1
+        self.rows += o.rows
+        self.samples[o.kind] += o.n_samples
+        if o.exposure_s is not None:
+            self.exposures.append(float(o.exposure_s))
+            if o.exposure_s > self.raw_seconds:
+                self.over_limit += 1
+        err = o.error
+        if err:
+            if len(self.errors) < MAX_SHOWN_ERRORS:
+                self.errors.append(err)
+            else:
+                self.more_errors += 1
+
+    def extend(self, outcomes) -> ReportBuilder:
+        for o in outcomes:
+            self.add(o)
+        return self
+
+    def __len__(self) -> int:
+        return self.n
+
+    def report(self, **kw) -> DrainReport:
+        c = self.counts
+        errors = list(self.errors)
+        if self.more_errors:
+            errors.append(f"... and {self.more_errors} more rejected file(s)")
+        return DrainReport(received=dict(c["received"]), featurised=dict(c["featurised"]),
+                           duplicate=dict(c["duplicate"]), rejected=dict(c["rejected"]),
+                           destroyed=dict(c["destroyed"]), reasons=dict(self.reasons), rows=self.rows,
+                           n_samples=dict(self.samples), exposure=exposure_stats(self.exposures),
+                           over_limit=self.over_limit, errors=errors, raw_seconds=self.raw_seconds, **kw)
 
 
 def intake_counts(home, policy=None, now: float | None = None) -> dict:

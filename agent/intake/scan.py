@@ -20,6 +20,7 @@ leftover
 from __future__ import annotations
 
 import errno
+import heapq
 import os
 import stat
 from dataclasses import dataclass
@@ -73,33 +74,35 @@ def walk(inbox, max_depth: int = MAX_DEPTH):
 
 def _walk(dfd: int, prefix: str, dev: int, depth: int, max_depth: int):
     try:
-        names = os.listdir(dfd)
+        it = os.scandir(dfd)   # streamed: a folder of 10,000 names is never held as one list
     except OSError:
         return
-    for base in names:
-        try:
-            lst = os.stat(base, dir_fd=dfd, follow_symlinks=False)
-        except FileNotFoundError:
-            continue
-        name = prefix + base
-        if not stat.S_ISDIR(lst.st_mode):
-            yield name, lst
-            continue
-        if lst.st_dev != dev or depth + 1 > max_depth:
-            continue
-        try:
-            sub = open_subdir(dfd, base, expect=lst)
-        except OSError as e:
-            if e.errno in (errno.ENOENT, errno.ELOOP, errno.ENOTDIR, errno.ESTALE):
-                continue    # swapped or gone: the next scan looks again
-            raise
-        try:
-            yield from _walk(sub, name + "/", dev, depth + 1, max_depth)
-        finally:
-            os.close(sub)
+    with it:
+        for entry in it:
+            base = entry.name
+            try:
+                lst = os.stat(base, dir_fd=dfd, follow_symlinks=False)
+            except FileNotFoundError:
+                continue
+            name = prefix + base
+            if not stat.S_ISDIR(lst.st_mode):
+                yield name, lst
+                continue
+            if lst.st_dev != dev or depth + 1 > max_depth:
+                continue
+            try:
+                sub = open_subdir(dfd, base, expect=lst)
+            except OSError as e:
+                if e.errno in (errno.ENOENT, errno.ELOOP, errno.ENOTDIR, errno.ESTALE):
+                    continue    # swapped or gone: the next scan looks again
+                raise
+            try:
+                yield from _walk(sub, name + "/", dev, depth + 1, max_depth)
+            finally:
+                os.close(sub)
 
 
-def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float):
+def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float, limit: int | None = None):
     """Entries under the inbox, split into ``(ready, settling, waiting)``.
 
     ``ready`` is sorted oldest deadline first and holds files complete (not
@@ -107,21 +110,34 @@ def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float):
     pipes, sockets and devices, leftovers, and unfinished names older than
     ``raw_seconds`` (to be destroyed unread).  ``settling`` are files still
     being written; ``waiting`` are unfinished names still inside the window.
+
+    ``limit`` keeps only the ``limit`` ready entries with the closest deadlines
+    (a bounded heap while walking: a chunk of a large backlog, in order).
     """
-    ready: list = []
+    if limit is not None and int(limit) < 1:
+        raise ValueError(f"limit must be a positive number of entries, got {limit!r}")
     settling: list = []
     waiting: list = []
-    for name, lst in walk(inbox):
-        why = unfinished_reason(name)
-        c = Candidate(name, lst, complete_time(lst, judged_at), unread=why)
-        age = judged_at - max(lst.st_mtime, lst.st_ctime)
-        if why == "leftover":
-            ready.append(c)
-        elif why is not None:
-            (ready if age >= raw_seconds else waiting).append(c)
-        elif stat.S_ISREG(lst.st_mode) and age < settle_s and judged_at - c.complete_at < raw_seconds / 2:
-            settling.append(c)
-        else:
-            ready.append(c)
-    ready.sort(key=lambda c: c.deadline_key)
+
+    def ready_ones():
+        for name, lst in walk(inbox):
+            why = unfinished_reason(name)
+            c = Candidate(name, lst, complete_time(lst, judged_at), unread=why)
+            age = judged_at - max(lst.st_mtime, lst.st_ctime)
+            if why == "leftover":
+                yield c
+            elif why is not None:
+                if age >= raw_seconds:
+                    yield c
+                else:
+                    waiting.append(c)
+            elif stat.S_ISREG(lst.st_mode) and age < settle_s and judged_at - c.complete_at < raw_seconds / 2:
+                settling.append(c)
+            else:
+                yield c
+
+    if limit is None:
+        ready = sorted(ready_ones(), key=lambda c: c.deadline_key)
+    else:
+        ready = heapq.nsmallest(int(limit), ready_ones(), key=lambda c: c.deadline_key)
     return ready, settling, waiting

@@ -40,6 +40,7 @@ from dataclasses import dataclass, field
 from .drain import process_safely
 from .item import classify
 from .pipeline import DrainReport, Intake
+from .report import ReportBuilder
 from .scan import unfinished_reason, walk
 
 log = logging.getLogger("lethe.intake")
@@ -143,7 +144,7 @@ class InboxWatcher:
         self.pending: dict[str, Pending] = {}
         self.own_closes: dict[str, int] = {}
         self.dirs_reported: set[str] = set()
-        self.outcomes: list = []
+        self.outcomes = ReportBuilder(intake.raw_seconds)   # aggregated as files go; nothing per file kept
         self.skipped: list[str] = []
         self.on_outcome = on_outcome
         self.observer: Any = None
@@ -237,9 +238,8 @@ class InboxWatcher:
             log.warning("periodic coding failed: %s", type(e).__name__)
 
     def report(self, t0: float) -> DrainReport:
-        return DrainReport.from_outcomes(self.outcomes, self.intake.raw_seconds, skipped=list(self.skipped),
-                                         recovered=getattr(self, "recovered", 0),
-                                         seconds=round(time.time() - t0, 3))
+        return self.outcomes.report(skipped=list(self.skipped), recovered=getattr(self, "recovered", 0),
+                                    seconds=round(time.time() - t0, 3))
 
     def _next_timeout(self) -> float | None:
         now = time.time()
