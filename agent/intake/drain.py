@@ -80,8 +80,8 @@ def drain(home, policy, now: float | None = None, *, settle_s: float | None = No
 
 
 SCAN_CHUNK = 4096           # ready entries taken from one scan of the inbox (closest deadlines first)
-BATCH_FILES = 32            # files taken together in a backfill, at most
-GROUP_SECONDS = 0.5         # a group that takes longer halves the next one; a quicker one doubles it
+BATCH_FILES = 64            # files taken together in a backfill, at most
+GROUP_SECONDS = 1.0         # a group that takes longer halves the next one; a quicker one doubles it
 STUCK_PASSES = 3            # drain passes without progress before it gives up and reports
 BATCH_BYTES = 32 << 20      # and at most this many raw bytes in memory at once
 

@@ -63,6 +63,7 @@ class LedgerWriter:
         self.failures = 0
         self.alarmed: str | None = None
         self._lock = threading.RLock()   # the front and the commit thread both write
+        self._known: tuple | None = None   # ((inode, size) of the ledger after our last append, its last seq)
 
     # -- writing ---------------------------------------------------------------
     def write(self, steps) -> bool:
@@ -93,10 +94,11 @@ class LedgerWriter:
         if not force and self.clock() < self.next_try:
             self._persist()
             return False
-        before = self._head_seq()
+        before = self._seq_before()
         try:
-            self.ledger.append_many(self.pending)
+            out = self.ledger.append_many(self.pending)
         except (OSError, LetheError) as e:
+            self._known = None
             # The entries may be in while a later step failed (the anchor or checkpoint on a full
             # disk): drop from the pending list what the ledger's head shows was appended.
             after = self._head_seq()
@@ -108,11 +110,30 @@ class LedgerWriter:
             self.alarm("ledger_unwritable", e)
             self._persist()
             return False
+        self._remember(out)
         self.pending = []
         self.backoff_s = 0.0
         self.next_try = 0.0
         self._clear()
         return True
+
+    def _seq_before(self) -> int | None:
+        """The ledger's last seq before an append: remembered from our own last append while the file
+        has not changed since (no other process appended), else read (the ledger's running state)."""
+        try:
+            st = os.stat(self.ledger.path)
+        except (OSError, AttributeError):
+            return self._head_seq()
+        if self._known is not None and self._known[0] == (st.st_ino, st.st_size):
+            return self._known[1]
+        return self._head_seq()
+
+    def _remember(self, out) -> None:
+        try:
+            st = os.stat(self.ledger.path)
+            self._known = ((st.st_ino, st.st_size), int(out[-1]["seq"])) if out else None
+        except (OSError, AttributeError, KeyError, TypeError, ValueError, IndexError):
+            self._known = None
 
     def _head_seq(self) -> int | None:
         try:

@@ -5,10 +5,11 @@ Per file (``docs/intake.md`` explains each step and what a crash after it means)
     lstat + safety checks
     -> open O_NOFOLLOW|O_NONBLOCK, fstat the descriptor, read the bytes from it
     -> content MAC (keyed) -> item id = first 32 hex digits
-    -> ledger  received{item, kind, bytes, complete_at}
-    -> featurise (or: paused / rejected)
+    -> featurise in a worker process (or: paused / rejected / too close to the deadline)
     -> vault: every row and the item marker in ONE transaction (fsync'd), idempotent by item id
-    -> ledger  featurised{item, kind, rows}   or   rejected{item, kind, reason}
+    -> ledger  received{item, kind, bytes, complete_at}
+               and featurised{item, kind, rows}   or   rejected{item, kind, reason}
+               (one append, one fsync, for the whole group)
     -> destroy: overwrite through the open descriptor, unlink by name under the
        inbox descriptor after re-checking (dev, ino), fsync the directory
     -> ledger  destroyed{item, kind, complete_at, exposure_s}
@@ -36,6 +37,7 @@ from __future__ import annotations
 
 from typing import Any
 
+import contextlib
 import logging
 import os
 import stat
@@ -63,6 +65,7 @@ UNFINISHED_REASONS = {
 DEADLINE_MARGIN_MIN_S = 2.0   # files this close to their deadline (or raw_seconds/10; <= raw_seconds/2): unread
 TAKEN_LIMIT = 2          # the agent died this often while parsing it: destroyed unparsed ("taken_twice")
 DESTROY_SECONDS = 2.0    # bound on the overwrites of one group (the unlinks follow regardless)
+IO_THREADS = 16         # overwrites (and their fsyncs) of one group issued together: the journal commits them at once
 READER_TIMEOUT_MIN_S = 5.0   # a child parsing one file longer than max(this, raw_seconds / 3) is stopped
 
 
@@ -177,6 +180,8 @@ class Intake:
             raise ValueError(f"workers must be a positive number of threads, got {workers!r}")
         self.workers = int(workers)
         self._executor: ThreadPoolExecutor | None = None
+        self._io_executor: ThreadPoolExecutor | None = None
+        self._ledger_started = False
         self.reader_timeout_s = max(READER_TIMEOUT_MIN_S, self.raw_seconds / 3.0)
         self.isolate = bool(isolate) and hasattr(os, "fork")
         self.pool: Any = None   # ForkedPool, made on the first group to parse
@@ -197,6 +202,9 @@ class Intake:
         if self._executor is not None:
             self._executor.shutdown(wait=True)
             self._executor = None
+        if self._io_executor is not None:
+            self._io_executor.shutdown(wait=True)
+            self._io_executor = None
         self.inbox.close()
         for v in self._own:
             v.close()
@@ -325,7 +333,7 @@ class Intake:
         return done
 
     def _front(self, names, judged_at: float | None = None) -> list:
-        """Steps 1-5 for a group: look, open, read, MAC, ``received``, featurise."""
+        """Steps 1-4 for a group: look, open, read, MAC, featurise (``received`` is written by :meth:`_back`)."""
         judged_at = time.time() if judged_at is None else float(judged_at)
         works: list[_Work] = []
         try:
@@ -334,9 +342,6 @@ class Intake:
                 if w is not None:
                     works.append(w)
             if works:
-                self.log.write([("received", {"item": w.out.item, "kind": w.out.kind,
-                                              "bytes": w.out.bytes, "complete_at": w.out.complete_at})
-                                for w in works])
                 self._featurise_all(works)
             return works
         except BaseException:
@@ -346,17 +351,28 @@ class Intake:
             raise
 
     def _back(self, works) -> list[Outcome]:
-        """Steps 6-9 for a group: vault commit, ``featurised``/``rejected``, destroy, ``destroyed``.
+        """Steps 5-8 for a group: vault commit, ``received`` + ``featurised``/``rejected``, destroy, ``destroyed``.
 
-        Destruction never waits for bookkeeping: a ledger that cannot be
+        Every ledger write of a group happens here, in two appends (one fsync
+        each): ``received`` and the outcome of every file of the group after
+        the vault commit and before any destruction, then ``destroyed`` for the
+        entries gone.  (``received`` used to be a third append before
+        featurising; an agent killed while featurising leaves its files in the
+        inbox, to be received when taken again, so nothing is lost by writing
+        it with the outcome.)  Destruction never waits for bookkeeping: a ledger that cannot be
         written (disk full, a damaged line) only queues the entries
         (:class:`LedgerWriter`); the files are destroyed all the same.
         """
         try:
             if not works:
                 return []
+            steps = [("received", {"item": w.out.item, "kind": w.out.kind, "bytes": w.out.bytes,
+                                   "complete_at": w.out.complete_at}) for w in works]
+            if self._ledger_empty():
+                # A new ledger must start before the vault holds data (it refuses to start over data).
+                self.log.write(steps)
+                steps = []
             self._commit_all(works)
-            steps = []
             for w in works:
                 o = w.out
                 if o.status == "rejected":
@@ -380,6 +396,15 @@ class Intake:
             for w in works:
                 if w.opened is not None:
                     w.opened.close()
+
+    def _ledger_empty(self) -> bool:
+        if self._ledger_started:
+            return False
+        try:
+            self._ledger_started = os.stat(self.home.ledger_path).st_size > 0
+        except FileNotFoundError:
+            return True
+        return not self._ledger_started
 
     def _prepare(self, name: str, judged_at: float):
         """lstat, safety checks, safe open and read, item id.  ``None``: nothing to take now."""
@@ -490,6 +515,8 @@ class Intake:
             from . import warm_up
 
             warm_up(self.policy)
+            with contextlib.suppress(ImportError):
+                import threadpoolctl  # noqa: F401  (the forked workers limit their BLAS pools with it)
             self._readers_loaded = True
 
     def _featurise_forked(self, todo) -> None:
@@ -598,13 +625,13 @@ class Intake:
                 w.out.aside = w.name != w.out.name
         held = [w for w in works if w.opened is not None]
         deadline = time.monotonic() + DESTROY_SECONDS
-        self._each(lambda w: self.inbox.overwrite(w.opened, deadline=deadline), held)
+        self._each_io(lambda w: self.inbox.overwrite(w.opened, deadline=deadline), held)
         for w in works:
             w.out.removed = self.inbox.unlink_checked(w.name, w.opened, None if w.opened else w.lst)
             if w.opened is not None:
                 w.out.overwritten_bytes = w.opened.overwritten
         # Closing the last descriptor of an unlinked file frees its blocks: also worth overlapping.
-        self._each(lambda w: w.opened.close(), held)
+        self._each_io(lambda w: w.opened.close(), held)
         for w in works:
             w.opened = None
         for folder in sorted({w.name.rpartition("/")[0] for w in works}):
@@ -656,6 +683,23 @@ class Intake:
         else:
             for x in items:
                 fn(x)
+
+    def _each_io(self, fn, items) -> None:
+        """``fn`` over ``items`` in up to :data:`IO_THREADS` threads (blocking I/O: fsync, freeing blocks).
+
+        Concurrent fsyncs of a group's files share the file system's journal
+        commits instead of waiting for one each; the threads hold no lock of
+        the agent and only wait on the kernel.
+        """
+        if len(items) <= 1:
+            for x in items:
+                fn(x)
+            return
+        if self._io_executor is None:
+            from concurrent.futures import ThreadPoolExecutor
+
+            self._io_executor = ThreadPoolExecutor(max_workers=IO_THREADS, thread_name_prefix="lethe-io")
+        list(self._io_executor.map(fn, items))
 
     def _pool(self):
         if self._executor is None:

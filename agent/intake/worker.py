@@ -44,6 +44,7 @@ from ..errors import RejectedInput
 
 _LEN = struct.Struct(">I")
 MAX_ANSWER_BYTES = 256 << 20
+PIPE_BYTES = 1 << 20    # asked for both pipes of a persistent worker (Linux F_SETPIPE_SZ; 64 KiB otherwise)
 
 
 class WorkerDied(Exception):
@@ -223,10 +224,12 @@ class ForkedWorker:
         self.answers_r = -1
         self.forks = 0
         self.last_exit: int | None = None
+        self.pipe_bytes = 1 << 16
 
     def _fork(self) -> None:
         jobs_r, jobs_w = os.pipe()
         ans_r, ans_w = os.pipe()
+        self.pipe_bytes = min(_grow_pipe(jobs_w), _grow_pipe(ans_w))
         pid = os.fork()
         if pid == 0:
             code = 0
@@ -267,6 +270,60 @@ class ForkedWorker:
             return WorkerDied("reader_crashed", f"the reader process ended while parsing "
                                                 f"({_how(self.last_exit)})")
 
+    def run(self, jobs, now: float | None, timeout_s: float) -> list:
+        """Answers for ``[(name, data), ...]`` in order, the next job queued while the child parses one.
+
+        The job after the one being parsed is written ahead into the job pipe
+        when both fit in it together (so a write never waits for the child
+        while the child waits to send an answer), and the child starts on it
+        as soon as it has answered: the child does not idle while the agent
+        reads its answer and writes the next job.  Each file still has its own
+        deadline, counted from the previous answer, and a child that dies or
+        hangs still takes only the file it was parsing: the file written
+        ahead was not begun (the child reads a job only after answering the
+        one before) and is sent again to the next child.
+        """
+        jobs = list(jobs)
+        bodies: list[bytes | None] = [None] * len(jobs)
+        out: list = []
+        sent = 0   # jobs written to the current child; out holds the answers read so far
+        while len(out) < len(jobs):
+            got = len(out)
+            if not self.pid:
+                self._fork()
+                sent = got
+            try:
+                while sent < len(jobs) and (sent == got or (sent == got + 1 and self._fits(bodies, jobs, got, sent))):
+                    _write_all(self.jobs_w, self._frame(bodies, jobs, sent, now, timeout_s))
+                    bodies[sent] = None
+                    sent += 1
+                deadline = time.monotonic() + timeout_s
+                (n,) = _LEN.unpack(_read(self.answers_r, 4, deadline))
+                if n > MAX_ANSWER_BYTES:
+                    raise EOFError
+                out.append(_decode(jobs[got][0], _read(self.answers_r, n, deadline)))
+            except TimeoutError:
+                self.close(kill=True)
+                out.append(WorkerDied("reader_timeout", f"parsing took longer than {timeout_s:g} s; "
+                                                        f"the reader process was stopped"))
+            except (EOFError, OSError, ValueError, KeyError, TypeError):
+                self.close(kill=True)
+                out.append(WorkerDied("reader_crashed", f"the reader process ended while parsing "
+                                                        f"({_how(self.last_exit)})"))
+        return out
+
+    def _frame(self, bodies, jobs, i, now, timeout_s) -> bytes:
+        if bodies[i] is None:
+            name, data = jobs[i]
+            body = pickle.dumps((name, data, now, timeout_s))
+            bodies[i] = _LEN.pack(len(body)) + body
+        return bodies[i]
+
+    def _fits(self, bodies, jobs, got, ahead) -> bool:
+        """Whether the job being parsed and the one ahead fit in the job pipe together."""
+        size = sum(len(jobs[i][1]) + 512 for i in (got, ahead))
+        return size <= self.pipe_bytes
+
     def close(self, kill: bool = False) -> None:
         """Stop the child (closing its job pipe ends it; ``kill`` for one that may hang) and reap it."""
         if not self.pid:
@@ -299,6 +356,7 @@ def _answer(name, data, policy, now) -> dict:
 def _child_loop(jobs_r: int, ans_w: int, policy) -> None:
     for sig in (signal.SIGALRM, signal.SIGTERM, signal.SIGINT):   # not the agent's handlers
         signal.signal(sig, signal.SIG_DFL)
+    limits = _one_thread()   # one worker per core: BLAS/OpenMP pools in a worker only oversubscribe  # noqa: F841
 
     while True:
         try:
@@ -315,6 +373,31 @@ def _child_loop(jobs_r: int, ans_w: int, policy) -> None:
         del data
         body = json.dumps(ans, default=_plain).encode("utf-8")
         _write_all(ans_w, _LEN.pack(len(body)) + body)
+
+
+def _one_thread():
+    """Limit the BLAS and OpenMP thread pools loaded in this process to one thread (threadpoolctl)."""
+    try:
+        from threadpoolctl import threadpool_limits
+
+        return threadpool_limits(limits=1)
+    except Exception:  # noqa: BLE001 - a missing or failing introspection must not stop a reader
+        return None
+
+
+def _grow_pipe(fd: int) -> int:
+    """Ask for a :data:`PIPE_BYTES` pipe buffer; returns the size the pipe has."""
+    import fcntl
+
+    setsz = getattr(fcntl, "F_SETPIPE_SZ", None)
+    getsz = getattr(fcntl, "F_GETPIPE_SZ", None)
+    if setsz is not None:
+        with contextlib.suppress(OSError):
+            fcntl.fcntl(fd, setsz, PIPE_BYTES)
+    if getsz is not None:
+        with contextlib.suppress(OSError):
+            return int(fcntl.fcntl(fd, getsz))
+    return 1 << 16
 
 
 def _read_blocking(fd: int, n: int) -> bytes:
@@ -348,7 +431,7 @@ class ForkedPool:
         with self._lock:
             w = self._idle.pop()
         try:
-            return [w.featurise(name, data, now, timeout_s) for name, data in jobs]
+            return w.run(jobs, now, timeout_s)
         finally:
             with self._lock:
                 self._idle.append(w)
