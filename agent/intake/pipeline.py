@@ -110,6 +110,7 @@ class _Work:
     out: Outcome
     final: bool = False   # rejected before featurising (unsafe, unread, paused, unknown)
     res: object = None
+    taken_at: float = field(default_factory=time.time)   # when _prepare looked at it (real clock)
 
 
 class Intake:
@@ -166,14 +167,14 @@ class Intake:
         self.inbox = InboxDir(self.home.inbox, policy.intake.max_file_bytes)
         # Items a previous run left open (received, never destroyed): the only ones reconcile may close,
         # and the only ones whose sighting is remembered (nothing per file is kept for a whole drain).
-        self.open_at_start: set[str] | None
-        try:
-            self.open_at_start = set(open_items(self.ledger))
-        except (OSError, LetheError, ValueError):
-            self.open_at_start = None   # reconcile then remembers every item seen
+        # Read on the first file taken (before this run's first ``received``), not here: reading the
+        # ledger's state before its first append would keep a torn tail from being repaired by it.
+        self.open_at_start: set[str] | None = None
+        self._open_known = False
         self.seen_items: set[str] = set()
         # Read, parse and commit must fit before the deadline: closer than this, a file is destroyed unread.
-        self.deadline_margin_s = min(max(DEADLINE_MARGIN_MIN_S, self.raw_seconds / 10.0), self.raw_seconds / 2.0)
+        self.base_margin_s = min(max(DEADLINE_MARGIN_MIN_S, self.raw_seconds / 10.0), self.raw_seconds / 2.0)
+        self.recent_latency_s = 0.0   # decaying maximum of "taken -> destroyed" over the last groups
         if workers is None:
             workers = min(2, os.cpu_count() or 1)
         if int(workers) < 1:
@@ -397,6 +398,13 @@ class Intake:
                 if w.opened is not None:
                     w.opened.close()
 
+    @property
+    def deadline_margin_s(self) -> float:
+        """How close to its deadline a file may be taken and still be read: the larger of the base margin
+        (``max(2 s, raw_seconds / 10)``) and twice the recent time from taking a file to destroying it
+        (so a loaded machine starts destroying unread earlier), never more than ``raw_seconds / 2``."""
+        return min(max(self.base_margin_s, 2.0 * self.recent_latency_s), self.raw_seconds / 2.0)
+
     def _ledger_empty(self) -> bool:
         if self._ledger_started:
             return False
@@ -405,6 +413,15 @@ class Intake:
         except FileNotFoundError:
             return True
         return not self._ledger_started
+
+    def _items_open_at_start(self) -> set[str] | None:
+        if not self._open_known:
+            self._open_known = True
+            try:
+                self.open_at_start = set(open_items(self.ledger))
+            except (OSError, LetheError, ValueError):
+                self.open_at_start = None   # reconcile then remembers every item seen
+        return self.open_at_start
 
     def _prepare(self, name: str, judged_at: float):
         """lstat, safety checks, safe open and read, item id.  ``None``: nothing to take now."""
@@ -473,7 +490,8 @@ class Intake:
                 out.detail = (f"the agent died {self.suspects[out.item]} times while parsing it; "
                               f"destroyed unparsed")
                 log.error("taken_twice item=%s kind=%s", out.item[:12], kind)
-        if self.open_at_start is None or out.item in self.open_at_start:
+        open0 = self._items_open_at_start()
+        if open0 is None or out.item in open0:
             self.seen_items.add(out.item)
         return w
 
@@ -637,6 +655,8 @@ class Intake:
         for folder in sorted({w.name.rpartition("/")[0] for w in works}):
             self.inbox.fsync(folder + "/x" if folder else None)
         t = time.time()
+        taken = min((w.taken_at for w in works), default=t)
+        self.recent_latency_s = max(t - taken, 0.9 * self.recent_latency_s)
         for w in works:
             w.out.destroyed_at = t
             w.out.exposure_s = round(max(0.0, t - w.out.complete_at), 6)
@@ -717,13 +737,14 @@ class Intake:
         Returns how many items were closed.
         """
         n = 0
+        open0 = self._items_open_at_start()
         try:
             opened = open_items(self.ledger)
         except (OSError, LetheError, ValueError) as e:
             self.log.alarm("ledger_unreadable", e)
             return 0
         for item, entry in opened.items():
-            if item in self.seen_items or (self.open_at_start is not None and item not in self.open_at_start):
+            if item in self.seen_items or (open0 is not None and item not in open0):
                 continue   # swept in this run, or received in this run and still waiting in the inbox
             complete_at = float(entry.get("complete_at") or started_at)
             self.log.write([("destroyed", {"item": item, "kind": entry.get("kind", "unknown"),
