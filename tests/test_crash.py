@@ -155,7 +155,7 @@ def test_sigkill_at_random_points_during_backfill(tmp_path, monkeypatch):
 
     got = _vault_counts(crash)
     # Files the crash home reached too close to their deadline (its restarts fall behind on a loaded
-    # machine) are destroyed unread by the retention rule: their rows are missing, never any others'.
+    # machine) are destroyed unparsed by the retention rule: their rows are missing, never any others'.
     # (Item ids are keyed per home, so the two homes' items cannot be matched one by one.)
     unread = _deadline_items(crash) - _featurised_items(crash)
     if not unread:

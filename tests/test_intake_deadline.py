@@ -24,8 +24,8 @@ def _events(h):
     return [(e["event"], e.get("reason")) for e in Ledger(h).entries()]
 
 
-def test_file_too_close_to_its_deadline_is_destroyed_unread_with_a_reason(hp):
-    """Judged 1 s before its deadline: not read nor parsed, destroyed, the ledger says why."""
+def test_file_too_close_to_its_deadline_is_destroyed_unparsed_with_a_reason(hp):
+    """Judged 1 s before its deadline: not parsed nor kept, destroyed, the ledger says why."""
     from agent.intake.pipeline import Intake
 
     h, policy = hp

@@ -443,13 +443,6 @@ class Intake:
             kind = "unknown"
         elif refusal is not None and refusal.reason in _REFUSED_UNREAD:
             err = refusal
-        elif judged_at >= complete_at + self.raw_seconds - self.deadline_margin_s:
-            # The retention rule wins over featurising: too close to its deadline to be read, parsed
-            # and committed in time (a backlog larger than the machine can featurise in the window).
-            err = UnsafeEntry(self.inbox.display(name), "retention_deadline",
-                              f"not featurised within retention.raw_seconds = {self.raw_seconds:g} s "
-                              f"(intake was behind); destroyed unread")
-            unfinished = "deadline"
         if err is None or (unfinished is not None and stat.S_ISREG(lst.st_mode) and lst.st_nlink == 1):
             try:
                 # Oversize and unfinished files are opened too, but only so they can be overwritten.
@@ -483,7 +476,15 @@ class Intake:
             out = Outcome(shown, self.mac(data)[:32], kind, "rejected", bytes=len(data), complete_at=complete_at,
                           name=name)
             w = _Work(name, lst, opened, data, out)
-            if self.suspects.get(out.item, 0) >= self.taken_limit:
+            if judged_at >= complete_at + self.raw_seconds - self.deadline_margin_s:
+                # The retention rule wins over featurising: too close to its deadline to be parsed and
+                # committed in time (more arrived than the machine can featurise in the window).  Its
+                # bytes were read for the item id only (the same id in every life of the agent).
+                w.final, w.data = True, None
+                out.reason = "retention_deadline"
+                out.detail = (f"not featurised within retention.raw_seconds = {self.raw_seconds:g} s "
+                              f"(intake was behind); destroyed unparsed")
+            elif self.suspects.get(out.item, 0) >= self.taken_limit:
                 # Taken before without an outcome, the agent died each time: never parse it again.
                 w.final, w.data = True, None
                 out.reason = "taken_twice"
