@@ -16,7 +16,8 @@ process on fresh homes under a temporary directory:
   that files/s measures featurising, not the retention rule destroying unread
   what a loaded machine cannot featurise inside 30 s;
 * **backlog**: ``lethe run --once`` over 1,000 and over ``--backlog`` (10,000)
-  demo files dropped at once: seconds, files destroyed later than
+  demo files dropped at once (copied next to the inbox, then renamed in: well
+  under a second for 10,000): seconds, files destroyed later than
   ``retention.raw_seconds`` after they were complete, peak RSS, and the time
   from spawn to the first file leaving the inbox, and how many files the
   retention rule destroyed unread at their deadline (``retention_deadline``);
@@ -209,6 +210,23 @@ def fill(inbox: Path, files) -> None:
         shutil.copyfile(f, inbox / f.name)
 
 
+def drop_at_once(home, files) -> float:
+    """Copy ``files`` next to the inbox, then rename them all in (as a sync tool's folder lands):
+    10,000 renames take well under a second, where copying them in took longer than the 30-s window
+    on a loaded machine (the first files were past their deadline before the agent started).
+    Returns the seconds the renames took."""
+    staging = Path(home.root) / "staging"
+    staging.mkdir()
+    for f in files:
+        shutil.copyfile(f, staging / f.name)
+    t0 = time.monotonic()
+    for f in files:
+        os.rename(staging / f.name, home.inbox / f.name)
+    took = time.monotonic() - t0
+    staging.rmdir()
+    return took
+
+
 def long_accel_files(dst: Path, n: int, hours: float = 6.0, rate_hz: float = 10.0, seed: int = 3) -> list[Path]:
     """Synthetic accelerometry recordings of ``hours`` each (gravity on z plus noise), fast to write."""
     import numpy as np
@@ -315,7 +333,7 @@ def rep_reasons(out: bytes) -> dict:
 
 def backlog_run(home, files) -> dict:
     """``lethe run --once`` over ``files`` dropped at once; polls the inbox for the first destruction."""
-    fill(home.inbox, files)
+    rename_s = drop_at_once(home, files)
     n0 = len(os.listdir(home.inbox))
     t_spawn = time.monotonic()
     p = subprocess.Popen(lethe_cmd("--home", str(home.root), "run", "--once", "--json"), cwd=ROOT,
@@ -334,7 +352,7 @@ def backlog_run(home, files) -> dict:
 
     limit = home.load_policy().retention.raw_seconds
     rep = verify_ledger(home)
-    return {"files": len(files), "seconds": round(wall, 2),
+    return {"files": len(files), "seconds": round(wall, 2), "dropped_in_s": round(rename_s, 3),
             "first_destroy_s": None if first is None else round(first, 3),
             "past_limit": sum(1 for e in rep.exposures if e is not None and e > limit),
             "exposure_max_s": rep.exposure["max_s"], "peak_rss_mb": round(peak_kb(err.decode()) / 1024.0, 1),
