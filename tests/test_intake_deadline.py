@@ -154,3 +154,35 @@ def test_margin_grows_with_the_recent_time_from_taking_to_destroying(hp, recent_
         it.recent_latency_s = recent_latency_s
         outs = it.process_many([p.name], judged_at=time.time() + policy.retention.raw_seconds - 8.0)
     assert [(o.status, o.reason) for o in outs] == [expected]
+
+
+@pytest.mark.parametrize(("queued_after", "expected"), [(0, ("featurised", None)),
+                                                        (10_000, ("rejected", "retention_deadline"))])
+def test_long_queue_behind_a_file_stops_featurising_in_time(hp, queued_after, expected):
+    """Taken at once, but 10,000 files queued behind it at 10 ms each would reach the deadline: destroyed
+    unparsed so that the queue can be destroyed in time; with nothing queued it is featurised."""
+    from agent.intake.pipeline import Intake
+
+    h, policy = hp
+    p = h.inbox / f"snd_{stamp(T0)}.wav"
+    p.write_bytes(wav_bytes())
+    with Intake(h, policy) as it:
+        it.queued_after, it.per_file_s = queued_after, 0.010
+        outs = it.process_many([p.name])
+    assert [(o.status, o.reason) for o in outs] == [expected]
+
+
+def test_drain_tells_intake_how_many_files_are_queued_behind_each_group(hp):
+    from agent.intake.drain import adaptive_batches
+    from agent.intake.pipeline import Intake
+
+    h, policy = hp
+    for i in range(10):
+        (h.inbox / f"m{i}.mood.csv").write_bytes(b"x")
+    with Intake(h, policy) as it:
+        ready, _, _ = it.scan(settle_s=0.0, limit=4)
+        assert it.ready_total == 10 and len(ready) == 4
+        it.group_files = 3
+        seen = [(names, it.queued_after) for names in adaptive_batches(ready, it)]
+    assert [(len(n), q) for n, q in seen] == [(3, 7), (1, 6)]
+    assert it.queued_after == 0

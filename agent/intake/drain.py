@@ -102,19 +102,31 @@ def batches(candidates, max_file_bytes: int, max_files: int = BATCH_FILES, max_b
 
 
 def adaptive_batches(candidates, intake: Intake, max_bytes: int = BATCH_BYTES):
-    """Like :func:`batches`, the group size read from ``intake.group_files`` as each group is cut."""
+    """Like :func:`batches`, the group size read from ``intake.group_files`` as each group is cut.
+
+    Before each group is handed on, ``intake.queued_after`` is set to how many
+    ready files are still queued behind it (all of the last scan's ready files,
+    not only this chunk), for the deadline rule of :class:`Intake`.
+    """
     group: list = []
     size = 0
+    total = max(int(getattr(intake, "ready_total", 0) or 0), len(candidates))
+    taken = 0
     for c in candidates:
         n = min(int(c.lst.st_size), int(intake.inbox.max_file_bytes))
         alone = intake.is_suspect(c.name)   # a file a dead agent was parsing goes in a group of its own
         if group and (alone or len(group) >= intake.group_files or size + n > max_bytes):
+            taken += len(group)
+            intake.queued_after = total - taken
             yield [x.name for x in group]
             group, size = [], 0
         group.append(c)
         size += n
     if group:
+        taken += len(group)
+        intake.queued_after = total - taken
         yield [x.name for x in group]
+    intake.queued_after = 0
 
 
 def process_safely(intake: Intake, names, outcomes) -> list:

@@ -175,6 +175,11 @@ class Intake:
         # Read, parse and commit must fit before the deadline: closer than this, a file is destroyed unread.
         self.base_margin_s = min(max(DEADLINE_MARGIN_MIN_S, self.raw_seconds / 10.0), self.raw_seconds / 2.0)
         self.recent_latency_s = 0.0   # decaying maximum of "taken -> destroyed" over the last groups
+        # A backlog: files queued behind the group being taken (set by the drain) and the recent wall time of
+        # the durable half per file (what destroying each of them will take at least, parsed or not).
+        self.ready_total = 0
+        self.queued_after = 0
+        self.per_file_s = 0.0
         if workers is None:
             workers = min(2, os.cpu_count() or 1)
         if int(workers) < 1:
@@ -242,7 +247,10 @@ class Intake:
         """
         judged_at = time.time() if judged_at is None else judged_at
         settle_s = float(self.policy.retention.settle_seconds if settle_s is None else settle_s)
-        ready, settling, waiting = scan_inbox(self.inbox, judged_at, settle_s, self.raw_seconds, limit=limit)
+        counts: dict = {}
+        ready, settling, waiting = scan_inbox(self.inbox, judged_at, settle_s, self.raw_seconds, limit=limit,
+                                              counts=counts)
+        self.ready_total = int(counts.get("ready", len(ready)))
         if self.parsing.suspect_tags:
             # Files a dead agent was parsing go last (and alone: see drain), so a kill that hit
             # them by chance does not hit them again first thing in the next life.
@@ -364,6 +372,7 @@ class Intake:
         written (disk full, a damaged line) only queues the entries
         (:class:`LedgerWriter`); the files are destroyed all the same.
         """
+        t_back = time.monotonic()
         try:
             if not works:
                 return []
@@ -392,6 +401,8 @@ class Intake:
             self.log.write([("destroyed", {"item": w.out.item, "kind": w.out.kind,
                                            "complete_at": w.out.complete_at,
                                            "exposure_s": w.out.exposure_s}) for w in gone])
+            per = (time.monotonic() - t_back) / len(works)
+            self.per_file_s = per if not self.per_file_s else 0.7 * self.per_file_s + 0.3 * per
             return [w.out for w in works]
         finally:
             for w in works:
@@ -476,10 +487,12 @@ class Intake:
             out = Outcome(shown, self.mac(data)[:32], kind, "rejected", bytes=len(data), complete_at=complete_at,
                           name=name)
             w = _Work(name, lst, opened, data, out)
-            if judged_at >= complete_at + self.raw_seconds - self.deadline_margin_s:
+            behind_s = self.queued_after * self.per_file_s   # destroying everything queued behind it
+            if judged_at + behind_s >= complete_at + self.raw_seconds - self.deadline_margin_s:
                 # The retention rule wins over featurising: too close to its deadline to be parsed and
-                # committed in time (more arrived than the machine can featurise in the window).  Its
-                # bytes were read for the item id only (the same id in every life of the agent).
+                # committed in time, or so many files are queued behind it that destroying them all at
+                # the recent pace would reach the deadline (more arrived than the machine can featurise
+                # in the window).  Its bytes were read for the item id only (the same id in every life).
                 w.final, w.data = True, None
                 out.reason = "retention_deadline"
                 out.detail = (f"not featurised within retention.raw_seconds = {self.raw_seconds:g} s "

@@ -102,7 +102,8 @@ def _walk(dfd: int, prefix: str, dev: int, depth: int, max_depth: int):
                 os.close(sub)
 
 
-def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float, limit: int | None = None):
+def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float, limit: int | None = None,
+         counts: dict | None = None):
     """Entries under the inbox, split into ``(ready, settling, waiting)``.
 
     ``ready`` is sorted oldest deadline first and holds files complete (not
@@ -112,14 +113,21 @@ def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float, limit: in
     being written; ``waiting`` are unfinished names still inside the window.
 
     ``limit`` keeps only the ``limit`` ready entries with the closest deadlines
-    (a bounded heap while walking: a chunk of a large backlog, in order).
+    (a bounded heap while walking: a chunk of a large backlog, in order);
+    ``counts["ready"]`` then receives how many were ready in all.
     """
     if limit is not None and int(limit) < 1:
         raise ValueError(f"limit must be a positive number of entries, got {limit!r}")
     settling: list = []
     waiting: list = []
+    total = [0]
 
     def ready_ones():
+        for c in _classified():
+            total[0] += 1
+            yield c
+
+    def _classified():
         for name, lst in walk(inbox):
             why = unfinished_reason(name)
             c = Candidate(name, lst, complete_time(lst, judged_at), unread=why)
@@ -140,4 +148,6 @@ def scan(inbox, judged_at: float, settle_s: float, raw_seconds: float, limit: in
         ready = sorted(ready_ones(), key=lambda c: c.deadline_key)
     else:
         ready = heapq.nsmallest(int(limit), ready_ones(), key=lambda c: c.deadline_key)
+    if counts is not None:
+        counts["ready"] = total[0]
     return ready, settling, waiting
