@@ -65,6 +65,7 @@ UNFINISHED_REASONS = {
 DEADLINE_MARGIN_MIN_S = 2.0   # files this close to their deadline (or raw_seconds/10; <= raw_seconds/2): unread
 TAKEN_LIMIT = 2          # the agent died this often while parsing it: destroyed unparsed ("taken_twice")
 DESTROY_SECONDS = 2.0    # bound on the overwrites of one group (the unlinks follow regardless)
+PACE_GROUP_FILES = 16   # groups at least this large measure the per-file pace of the durable half
 IO_THREADS = 16         # overwrites (and their fsyncs) of one group issued together: the journal commits them at once
 READER_TIMEOUT_MIN_S = 5.0   # a child parsing one file longer than max(this, raw_seconds / 3) is stopped
 
@@ -401,8 +402,9 @@ class Intake:
             self.log.write([("destroyed", {"item": w.out.item, "kind": w.out.kind,
                                            "complete_at": w.out.complete_at,
                                            "exposure_s": w.out.exposure_s}) for w in gone])
-            per = (time.monotonic() - t_back) / len(works)
-            self.per_file_s = per if not self.per_file_s else 0.7 * self.per_file_s + 0.3 * per
+            if len(works) >= PACE_GROUP_FILES:   # a queue is destroyed in full groups: small ones overstate it
+                per = (time.monotonic() - t_back) / len(works)
+                self.per_file_s = per if not self.per_file_s else 0.7 * self.per_file_s + 0.3 * per
             return [w.out for w in works]
         finally:
             for w in works:
