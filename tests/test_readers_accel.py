@@ -6,6 +6,8 @@ import io
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from agent.errors import RejectedInput
 from agent.intake import featurise
@@ -326,3 +328,26 @@ def test_a_trailing_comma_is_a_bad_value(default_policy):
 def test_header_variants_that_are_not_time_x_y_z_are_bad_header(default_policy, header):
     data = ("# unit=g rate_hz=10\n" + header + "\n" + "\n".join(_rows(40)) + "\n").encode()
     assert reason(data, default_policy) == "bad_header"
+
+
+# Reference: numpy.median (the mean of the two middle values for even n).  Values drawn
+# from a few points around the limits, so the counts often sit exactly at the boundary
+# and the two middle values often straddle a limit.
+_near_limits = st.sampled_from([0.0, 0.1, 0.29, 0.3, 0.31, 1.0, 2.9, 3.0, 3.1, 9.8])
+
+
+@given(st.lists(_near_limits, min_size=1, max_size=12))
+@settings(max_examples=400, deadline=None)
+def test_median_within_equals_numpy_median(values):
+    from agent.intake.readers.accel import median_within
+
+    x = np.array(values)
+    assert median_within(x, 0.3, 3.0) == (0.3 <= float(np.median(x)) <= 3.0)
+
+
+def test_median_of_two_values_straddling_the_lower_limit():
+    # (0.1 + 0.9) / 2 = 0.5 is inside 0.3-3 although one middle value is below 0.3.
+    from agent.intake.readers.accel import median_within
+
+    assert median_within(np.array([0.1, 0.9]), 0.3, 3.0)
+    assert not median_within(np.array([0.1, 0.2, 0.9, 9.0]), 0.3, 0.5)

@@ -192,12 +192,30 @@ def _check_rate(path, policy, *, declared: float | None, measured: float) -> Non
                    f"± {tol:.0%} (intake.accel_rate_tolerance)")
 
 
+def median_within(x: np.ndarray, lo: float, hi: float) -> bool:
+    """``lo <= float(np.median(x)) <= hi`` for a non-empty 1-d array without NaN, by counting.
+
+    The median averages the order statistics ``(n - 1) // 2`` and ``n // 2``
+    (one and the same for odd ``n``).  Both are at least ``lo`` exactly when
+    at most ``(n - 1) // 2`` values are below ``lo``, and both at most ``hi``
+    exactly when at most ``n - 1 - n // 2`` values are above ``hi``; if both
+    hold, so does the median (the mean of two numbers in ``[lo, hi]``).  Only
+    when a count fails is the median computed, because two order statistics on
+    either side of a limit can still average inside it.  Two counting passes
+    instead of a partition: about a tenth of the time on a 6-hour burst
+    (tested against :func:`numpy.median`).
+    """
+    n = x.size
+    if np.count_nonzero(x < lo) <= (n - 1) // 2 and np.count_nonzero(x > hi) <= n - 1 - n // 2:
+        return True
+    return lo <= _median(x) <= hi
+
+
 def _checked_magnitude(path, xyz_g: np.ndarray) -> np.ndarray:
     """Vector magnitude in g; ``bad_unit`` when its median is not what gravity reads."""
     mag = np.sqrt(np.einsum("ij,ij->i", xyz_g, xyz_g))
-    mag_med = _median(mag)
     lo, hi = MAGNITUDE_RANGE_G
-    if not lo <= mag_med <= hi:
+    if not median_within(mag, lo, hi):
         reject(path, "bad_unit",
                f"the median magnitude is not within {lo:g}–{hi:g} g, as a device sensing "
                "gravity reads; is the declared unit right?")
