@@ -157,3 +157,13 @@ def test_unknown_grouping_is_refused_by_the_fit(demo):
     eps, g, _, _, rows = demo
     with pytest.raises(ValueError, match="expected 'auto' or one of"):
         fit_model(g, rows, None, episodes=eps, folds=3, recovery_sims=0, weights="six")
+
+
+def test_the_chosen_groupings_screening_recovery_is_extended_to_the_full_count(demo):
+    # 20 simulations asked for: each candidate is screened with max(10, 20 // 2) = 10, and the
+    # chosen one's recovery is then extended to 20 (its 10 screening refits reused)
+    eps, g, _, _, rows = demo
+    f = fit_model(g, rows, None, seed=0, episodes=eps, folds=3, restarts=1, recovery_sims=20, n_jobs=1)
+    assert all(r["screen_sims"] == 10 for r in f.grouping["candidates"])
+    assert f.recovery["n_sims"] == 20
+    assert set(f.recovery["params"]) == set(f.params["identifiable"])
