@@ -32,6 +32,7 @@ from dataclasses import dataclass
 
 from .errors import DataError, IntegrityError, StateError
 from .canonical import dumps as canonical_json
+from .hpke_suites import enc_length, suite_of
 from .contracts import schema as _contract
 
 MAGIC = b"\x89LETHE\r\n"
@@ -83,7 +84,6 @@ def check_header(h, source: str) -> dict:
 # ----------------------------------------------------------------------------- seal and sign
 def seal_bundle(payload: dict, header: dict, recipient_public_key, device_key) -> bytes:
     """Serialise, seal (HPKE, header as info) and sign (Ed25519) a bundle; returns its bytes."""
-    from .study.keys import enc_length, suite_of
 
     header_bytes = canonical_json(header)
     if not 2 <= len(header_bytes) <= MAX_HEADER:
@@ -186,7 +186,6 @@ def read_bundle(data: bytes, *, registry, study_key, approved_policies, source: 
 
     from .export.payload import validate_payload
     from .study.bounded import loads_bounded
-    from .study.keys import enc_length, suite_of
 
     parts = split_bundle(data, source)
 
@@ -275,11 +274,3 @@ def bundle_name(seq: int, pseudonym: str | None = None) -> str:
         return f"{pseudonym}-{int(seq):06d}{SUFFIX}"
     return f"bundle-{int(seq):06d}{SUFFIX}"
 
-
-def __getattr__(name: str):
-    # The export flow moved to agent.export.flow; these names stay importable from here.
-    if name in ("export_bundle", "home_card", "next_seq"):
-        from .export import flow
-
-        return getattr(flow, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -27,12 +27,12 @@ from contextlib import contextmanager, suppress
 from pathlib import Path
 
 from .errors import StateError
-from .fsutil import DIR_MODE, FILE_MODE, LockHeld, file_lock, fsync_dir, write_private
+from .fsutil import DIR_MODE, FILE_MODE, LockHeld, file_lock, write_private
 
-# write_private and fsync_dir live in agent.fsutil; the names stay importable
-# from here for modules not yet switched.
-__all__ = ["DIR_MODE", "FILE_MODE", "SUBDIRS", "Home", "default_home_path", "fsync_dir",
-           "overwrite_and_unlink", "write_private"]
+# write_private is agent.fsutil's; intake/ledgerlog.py still imports it from here
+# (to be switched by the intake work), so the name is not yet removed.
+__all__ = ["DIR_MODE", "FILE_MODE", "SUBDIRS", "Home", "default_home_path", "overwrite_and_unlink",
+           "write_private"]
 
 SUBDIRS = ("inbox", "outbox", "keys", "logs", "state", "cache", "cache/numba")
 

@@ -113,7 +113,7 @@ def _dir(home) -> Path:
 
 
 def _write(path: Path, doc: dict) -> None:
-    from .home import write_private
+    from .fsutil import write_private
 
     write_private(path, (json.dumps(doc, indent=1, sort_keys=True) + "\n").encode())
 

@@ -20,7 +20,7 @@ from cryptography.hazmat.primitives.asymmetric.x25519 import X25519PrivateKey
 from pyhpke import AEADId, CipherSuite, KDFId, KEMId
 
 from agent.bundle import split_bundle
-from agent.study.keys import enc_length, suite_of
+from agent.hpke_suites import enc_length, suite_of
 
 from _bundle_fixtures import Study
 
@@ -153,7 +153,8 @@ def test_pq_public_key_layout_matches_xwing_vector():
     # confirms it, and with it our public-key layout (ML-KEM key || X25519 key, 1216 bytes).
     import hashlib
 
-    from agent.study.keys import _public_from_private, public_key_object
+    from agent.hpke_suites import public_key_object
+    from agent.study.keys import _public_from_private
 
     data = json.loads((VECTORS / "HPKE" / "hpke-pq-test-vectors.json").read_text())
     v = next(x for x in data if x["kem_id"] == 0x647A)

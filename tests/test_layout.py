@@ -54,3 +54,43 @@ def test_researcher_side_imports_no_device_internals(path):
         for internal in DEVICE_INTERNALS:
             assert not (target == f"agent.{internal}" or target.startswith(f"agent.{internal}.")), \
                 f"{path.relative_to(AGENT.parent)}:{line} imports {target}"
+
+
+# The device's side of the boundary: what runs on the participant's machine.
+DEVICE_SIDE = ("bundle", "export", "participant", "intake", "vault", "keystore", "codebook", "ledger",
+               "episodes", "graph", "caps", "model", "quiz", "uploader", "pause")
+# What the device may read of the researcher's package: the documents exchanged with
+# the researcher (study card, withdrawal certificate) and the bounded JSON reader.
+RESEARCHER_DOCUMENTS = ("agent.study.card", "agent.study.withdrawal", "agent.study.bounded")
+
+
+def _top(path: Path) -> str:
+    return path.relative_to(AGENT).with_suffix("").parts[0]
+
+
+@pytest.mark.parametrize("path", [p for p in SOURCES if _top(p) in DEVICE_SIDE],
+                         ids=lambda p: str(p.relative_to(AGENT)))
+def test_device_side_imports_only_exchanged_documents_from_the_researcher_package(path):
+    for module, level, names, line in _imports(path):
+        target = _resolve(path, module, level)
+        if target == "agent" and "study" in names:
+            target = "agent.study"
+        if target == "agent.study" or target.startswith("agent.study."):
+            assert target in RESEARCHER_DOCUMENTS, f"{path.relative_to(AGENT.parent)}:{line} imports {target}"
+
+
+def test_hpke_suite_table_is_neutral():
+    # Both sides import agent.hpke_suites; it imports neither side.
+    path = AGENT / "hpke_suites.py"
+    for module, level, _names, line in _imports(path):
+        target = _resolve(path, module, level)
+        for side in ("study",) + DEVICE_SIDE:
+            assert not (target == f"agent.{side}" or target.startswith(f"agent.{side}.")), \
+                f"hpke_suites.py:{line} imports {target}"
+
+
+def test_the_rules_see_the_imports_they_forbid(tmp_path):
+    # The checks above only mean something if the import reader finds relative imports.
+    f = AGENT / "bundle.py"
+    found = {_resolve(f, m, lv) for m, lv, _n, _l in _imports(f)}
+    assert "agent.hpke_suites" in found and "agent.errors" in found

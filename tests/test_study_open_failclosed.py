@@ -18,7 +18,7 @@ from agent.errors import EXIT_DATA, EXIT_STATE, DataError
 from agent.canonical import dumps as canonical_json
 from agent.study.bounded import MAX_SAFE_INT, loads_bounded, nesting_depth
 from agent.study.card import device_key_id
-from agent.study.keys import suite_of
+from agent.hpke_suites import suite_of
 from agent.study.open import bundle_paths, open_bundles
 from agent.study.registry import Registry
 

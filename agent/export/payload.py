@@ -391,7 +391,7 @@ def build_payload(home, policy, vault, now: float | None = None) -> dict:
     """Build the payload from the home (vault episodes, graph, fit, quiz, ledger).
 
     The relabelling map grows as new places appear; it is saved to the vault
-    only when a bundle is sealed (:func:`agent.bundle.export_bundle`), so a
+    only when a bundle is sealed (:func:`agent.export.flow.export_bundle`), so a
     preview writes nothing.
     """
     return build_payload_and_relabel(home, policy, vault, now)[0]

@@ -38,7 +38,8 @@ from dataclasses import dataclass
 from zoneinfo import ZoneInfo
 
 from ..errors import DataError, StateError
-from ..home import Home, write_private
+from ..fsutil import write_private
+from ..home import Home
 
 DEFAULT_WAKING = ("08:00", "22:00")
 _HHMM = re.compile(r"^([01]\d|2[0-4]):([0-5]\d)$")

@@ -29,7 +29,8 @@ from ..errors import DataError, IntegrityError, StateError
 from ..fsutil import write_private
 from ..identity import device_key_id
 from ..canonical import dumps as canonical_json
-from .keys import PUBLIC_KEY_BYTES, SUITES, b64d, b64e, key_fingerprint, load_public
+from ..hpke_suites import PUBLIC_KEY_BYTES, SUITES, key_fingerprint, public_key_object
+from .keys import b64d, b64e, load_public
 
 CARD_FORMAT = "lethe-study-card"
 CARD_VERSION = 2
@@ -58,8 +59,6 @@ class StudyCard:
         return dict(SUITES[self.suite])
 
     def hpke_public_key(self):
-        from .keys import public_key_object
-
         return public_key_object(self.suite, self.public_key)
 
     def as_dict(self) -> dict:

@@ -31,7 +31,8 @@ import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
-from ...home import Home, write_private
+from ...fsutil import write_private
+from ...home import Home
 
 LOGIN_TTL_S = 120.0
 SESSION_TTL_S = 12 * 3600.0

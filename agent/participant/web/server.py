@@ -13,7 +13,8 @@ import threading
 import time
 import webbrowser
 
-from ...home import Home, write_private
+from ...fsutil import write_private
+from ...home import Home
 from . import auth
 
 LOOPBACK = "127.0.0.1"

@@ -107,7 +107,7 @@ def write_mood_answer(home: Home, policy, ratings: dict[str, int], now: float | 
     sees half a file.  Returns the file name.
     """
     from ...errors import DataError
-    from ...home import write_private
+    from ...fsutil import write_private
 
     s = policy.schedule
     emotions = list(s.emotions)
