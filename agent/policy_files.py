@@ -1,8 +1,8 @@
 """The policies shipped with lethe, as package data: list them, write one out for editing.
 
-The repository's ``policies/`` folder is the source; ``agent/data/policies/``
-holds the same files so an installed lethe has them wherever it runs (a test
-checks the two are identical).  ``lethe policy list`` and ``lethe policy write
+``agent/data/policies/`` is the one copy: it is package data, so an installed
+lethe (editable or not) has the files wherever it runs, and the repository's
+``policies/`` is a symbolic link to it.  ``lethe policy list`` and ``lethe policy write
 NAME FILE`` are the commands.
 """
 

@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import os
 import socket
-import threading
 
 import pytest
 
 from agent.destroy import destroy_entry, destroy_path, destroy_tree, open_dir, overwrite_fd
+
+from link_swaps import LinkSwaps, real_dir, real_file, snapshot
 
 MiB = 1 << 20
 
@@ -247,49 +248,19 @@ def test_plain_names_only(tmp_path):
 @pytest.mark.slow
 def test_race_10000_swaps_of_entries_and_subfolders_for_links(tmp_path, outside):
     """A thread swaps tree entries and subfolders for links to the outside 10,000 times while trees are destroyed."""
-    before = _snap(outside)
+    before = snapshot(outside)
     t = tmp_path / "tree"
-    t.mkdir()
-    swaps = 0
-    stop = threading.Event()
-
-    def swapper():
-        nonlocal swaps
-        i = 0
-        while swaps < 10_000 and not stop.is_set():
-            i += 1
-            for name, target in (("sub", outside), ("x.wav", outside / "keep0.wav")):
-                p = t / name
-                try:
-                    if os.path.islink(p) or not os.path.lexists(p):
-                        if os.path.islink(p):
-                            os.unlink(p)
-                        if name == "sub":
-                            os.mkdir(p)
-                            (p / "y.wav").write_bytes(b"q" * 100)
-                        else:
-                            p.write_bytes(b"q" * 100)
-                    else:
-                        os.rename(p, tmp_path / f"aside{i}")
-                        os.symlink(target, p)
-                    swaps += 1
-                except OSError:
-                    pass
-
-    (t / "sub").mkdir()
-    th = threading.Thread(target=swapper)
-    th.start()
+    (t / "sub").mkdir(parents=True)
+    entries = [("sub", outside, real_dir({"y.wav": b"q" * 100})),
+               ("x.wav", outside / "keep0.wav", real_file(b"q" * 100))]
     rounds = 0
-    try:
-        while th.is_alive():
+    with LinkSwaps(t, tmp_path, entries) as race:
+        while race.running:
             fd = open_dir(t)
             try:
                 destroy_tree(fd, max_bytes=MiB)
             finally:
                 os.close(fd)
             rounds += 1
-    finally:
-        stop.set()
-        th.join()
-    assert swaps >= 10_000 and rounds > 0
-    assert _snap(outside) == before
+    assert race.swaps >= 10_000 and rounds > 0
+    assert snapshot(outside) == before

@@ -8,7 +8,6 @@ set; under CI (LETHE_CI_SERVICES=1) a missing Secret Service is a failure.
 from __future__ import annotations
 
 import json
-import os
 import shutil
 import subprocess
 import sys
@@ -18,23 +17,16 @@ import pytest
 
 from agent.keystore import Keystore, KeyringUnavailableError, key_storage
 
-if not os.environ.get("LETHE_SECRET_SERVICE"):
-    if os.environ.get("LETHE_CI_SERVICES"):
-        raise RuntimeError("CI: the keyring tests need a Secret Service; run them under bash .ci/with-keyring")
-    pytest.skip("no Secret Service here; run under bash .ci/with-keyring", allow_module_level=True)
+from secret_service import in_a_fresh_keyring_session, require_secret_service, use_real_keyring
+
+require_secret_service()
 
 REPO = Path(__file__).resolve().parent.parent
 
 
 @pytest.fixture
 def real_keyring(monkeypatch):
-    monkeypatch.delenv("LETHE_NO_KEYRING", raising=False)
-    monkeypatch.delenv("LETHE_KEY_STORAGE", raising=False)
-    import keyring
-    import keyring.backends.SecretService
-
-    assert isinstance(keyring.get_keyring(), keyring.backends.SecretService.Keyring)
-    return keyring
+    return use_real_keyring(monkeypatch)
 
 
 @pytest.fixture
@@ -67,12 +59,7 @@ def test_no_secret_in_the_key_files(home, ks):
 
 def _on_another_machine(code: str, root) -> subprocess.CompletedProcess:
     """Run ``code`` in a new D-Bus session with a new, empty keyring (another machine's)."""
-    env = {k: v for k, v in os.environ.items()
-           if k not in ("LETHE_IN_KEYRING_SESSION", "XDG_RUNTIME_DIR", "XDG_DATA_HOME", "LETHE_KEYRING_DATA",
-                        "DBUS_SESSION_BUS_ADDRESS", "LETHE_KEY_STORAGE", "LETHE_NO_KEYRING")}
-    env["PYTHONPATH"] = str(REPO)
-    return subprocess.run(["bash", str(REPO / ".ci" / "with-keyring"), sys.executable, "-c", code, str(root)],
-                          env=env, capture_output=True, text=True, timeout=120)
+    return in_a_fresh_keyring_session([sys.executable, "-c", code, str(root)], timeout_s=120)
 
 
 def test_a_copied_home_does_not_open_elsewhere(tmp_path, home, ks):

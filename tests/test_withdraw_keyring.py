@@ -7,20 +7,16 @@ set; under CI (LETHE_CI_SERVICES=1) a missing Secret Service is a failure.
 
 from __future__ import annotations
 
-import contextlib
 import json
-import os
-import subprocess
 import sys
 
 import pytest
 
-from intake_samples import REPO, make_home
+from intake_samples import make_home
+from secret_service import (forget_keyring_entries, in_a_fresh_keyring_session, require_secret_service,
+                            use_real_keyring)
 
-if not os.environ.get("LETHE_SECRET_SERVICE"):
-    if os.environ.get("LETHE_CI_SERVICES"):
-        raise RuntimeError("CI: the keyring tests need a Secret Service; run them under bash .ci/with-keyring")
-    pytest.skip("no Secret Service here; run under bash .ci/with-keyring", allow_module_level=True)
+require_secret_service()
 
 STUDY = "harbour-days-2027"
 
@@ -28,8 +24,7 @@ STUDY = "harbour-days-2027"
 @pytest.fixture
 def kh(tmp_path, monkeypatch):
     """A home whose three keys are held by the real Secret Service, with a ledger entry, a vault record, a drop."""
-    monkeypatch.delenv("LETHE_NO_KEYRING", raising=False)
-    monkeypatch.delenv("LETHE_KEY_STORAGE", raising=False)
+    use_real_keyring(monkeypatch)
     from agent.keystore import Keystore, key_storage
     from agent.ledger import Ledger
     from agent.vault import Vault
@@ -44,11 +39,7 @@ def kh(tmp_path, monkeypatch):
     (h.inbox / "snd_1.wav").write_bytes(b"RIFF" + b"\1" * 4000)
     h.entries = [json.loads((h.keys / n).read_text()) for n in ("vault.key", "content.key", "device.ed25519")]
     yield h
-    import keyring
-
-    for doc in h.entries:  # the keyring entries outlive the home when the withdrawal could not reach them
-        with contextlib.suppress(keyring.errors.PasswordDeleteError):
-            keyring.delete_password(doc["service"], doc["account"])
+    forget_keyring_entries(h.entries)  # they outlive the home when the withdrawal could not reach them
 
 
 def _only_the_record(h) -> dict:
@@ -93,14 +84,7 @@ def test_study_refuses_the_unsigned_record(kh, monkeypatch):
 
 def test_cli_withdraw_in_a_fresh_empty_keyring_tells_the_participant_to_contact_the_study(kh):
     # Another D-Bus session with a new, empty gnome-keyring: the entries the key files name are not there.
-    env = {k: v for k, v in os.environ.items()
-           if k not in ("LETHE_IN_KEYRING_SESSION", "XDG_RUNTIME_DIR", "XDG_DATA_HOME", "LETHE_KEYRING_DATA",
-                        "DBUS_SESSION_BUS_ADDRESS", "LETHE_KEY_STORAGE", "LETHE_NO_KEYRING")}
-    env["PYTHONPATH"] = str(REPO)
-    env["PATH"] = os.path.dirname(sys.executable) + ":/usr/bin:/bin"
-    r = subprocess.run(["bash", str(REPO / ".ci" / "with-keyring"), sys.executable, "-m", "agent.cli",
-                        "--home", str(kh.root), "withdraw", "--yes"],
-                       env=env, capture_output=True, text=True, timeout=180)
+    r = in_a_fresh_keyring_session([sys.executable, "-m", "agent.cli", "--home", str(kh.root), "withdraw", "--yes"])
     assert r.returncode == 0, r.stderr
     assert "could NOT be signed" in r.stdout and "contact the study team" in r.stdout
     assert "has no entry" in _only_the_record(kh)["why_unsigned"]

@@ -7,11 +7,11 @@ import os
 import signal
 import subprocess
 import sys
-import threading
 
 import pytest
 
 from intake_samples import REPO, make_home
+from link_swaps import LinkSwaps, real_dir, real_file, snapshot
 
 STUDY = "harbour-days-2027"
 
@@ -176,41 +176,14 @@ def test_race_10000_link_swaps_during_withdrawal(wh):
     """Inbox entries and subfolders swapped for links to the outside 10,000 times while withdrawals run."""
     from agent.participant.withdraw import withdraw
 
-    before = _snap(wh.outside)
-    swaps, stop = [0], threading.Event()
+    before = snapshot(wh.outside)
     box = wh.inbox
-
-    def swapper():
-        i = 0
-        while swaps[0] < 10_000 and not stop.is_set():
-            i += 1
-            for name, target in (("sub", wh.outside), ("snd.wav", wh.outside / "snd_0.wav")):
-                p = box / name
-                try:
-                    if os.path.islink(p) or not os.path.lexists(p):
-                        if os.path.islink(p):
-                            os.unlink(p)
-                        if name == "sub":
-                            os.mkdir(p)
-                            (p / "snd_0.wav").write_bytes(b"q" * 64)
-                        else:
-                            p.write_bytes(b"q" * 64)
-                    else:
-                        os.rename(p, wh.root.parent / f"aside{i}")
-                        os.symlink(target, p)
-                    swaps[0] += 1
-                except OSError:
-                    pass
-
-    th = threading.Thread(target=swapper)
-    th.start()
-    try:
+    entries = [("sub", wh.outside, real_dir({"snd_0.wav": b"q" * 64})),
+               ("snd.wav", wh.outside / "snd_0.wav", real_file(b"q" * 64))]
+    with LinkSwaps(box, wh.root.parent, entries) as race:
         withdraw(wh)                       # the full withdrawal, once
-        while th.is_alive():               # then the finishing pass, again and again
+        while race.running:                # then the finishing pass, again and again
             box.mkdir(exist_ok=True)
             withdraw(wh)
-    finally:
-        stop.set()
-        th.join()
-    assert swaps[0] >= 10_000
-    assert _snap(wh.outside) == before
+    assert race.swaps >= 10_000
+    assert snapshot(wh.outside) == before
