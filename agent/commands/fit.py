@@ -10,7 +10,7 @@ from ._common import add_json, emit, home_from
 def register(sub) -> None:
     p = sub.add_parser("fit", help="fit the memory model to your quiz answers (model vs baselines table)",
                        description="Fit the memory model to your memory-test answers, on this laptop, and "
-                                   "print it beside its rivals. It needs at least 20 answers on 3 different "
+                                   "print it beside its rivals. It needs at least 12 answers on 3 different "
                                    "days; before that it says how many there are (exit 5).")
     p.add_argument("--seed", type=int, default=0, help="seed for restarts, folds and bootstrap (default 0)")
     p.add_argument("--no-store", action="store_true", help="do not store the result in the vault")

@@ -463,7 +463,7 @@ def load_home_inputs(home):
     return join_answers(trials, answers), episodes
 
 
-MIN_FIT_ANSWERS = 20
+MIN_FIT_ANSWERS = 12
 """Answered trials a participant's fit needs (see :func:`check_enough_answers`)."""
 MIN_FIT_DAYS = 3
 """Distinct trial days a participant's fit needs: cross-validation folds are whole days."""
@@ -473,13 +473,13 @@ def check_enough_answers(rows, *, source: str = "fit") -> None:
     """Refuse a participant's fit on too few answers (:class:`StateError`, exit 5).
 
     Below ``MIN_FIT_ANSWERS`` answered trials on ``MIN_FIT_DAYS`` distinct days
-    a fit only shows noise: with a handful of four-option choices the fitted
-    temperatures run to their bounds (a rival scored -107 nats per held-out
-    trial on 4 answers), the day folds hold one or two trials, and the
-    recovery check has nothing to recover.  The thresholds are a practical
-    floor (common practice, no source), not a power analysis; ``lethe study
-    plan`` sizes a study.  :func:`fit_model` itself does not refuse (tests and
-    simulations call it on small designs on purpose).
+    a fit only shows noise: on a handful of four-option choices the day folds
+    hold one or two trials each and the recovery check has nothing to recover.
+    Twelve is about what one quiz session leaves (20 questions, a few "not
+    sure").  The thresholds are a practical floor (common practice, no
+    source), not a power analysis; ``lethe study plan`` sizes a study.
+    :func:`fit_model` itself does not refuse (tests and simulations call it on
+    small designs on purpose).
     """
     answered = [r for r in rows if r.get("choice") is not None]
     days = {str(r.get("date", "")) for r in answered}
