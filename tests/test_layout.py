@@ -94,3 +94,20 @@ def test_the_rules_see_the_imports_they_forbid(tmp_path):
     f = AGENT / "bundle.py"
     found = {_resolve(f, m, lv) for m, lv, _n, _l in _imports(f)}
     assert "agent.hpke_suites" in found and "agent.errors" in found
+
+
+def test_every_data_file_of_the_package_is_declared_package_data():
+    # A non-editable install (pip install ., a wheel) carries only the files that
+    # [tool.setuptools.package-data] names; a schema or template missing there works
+    # in the editable checkout and fails for an installed user.
+    import tomllib
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parent.parent
+    pkg = root / "agent"
+    patterns = tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"]["package-data"]["agent"]
+    declared = {p for pattern in patterns for p in pkg.glob(pattern) if p.is_file()}
+    data = {p for p in pkg.rglob("*") if p.is_file() and p.suffix not in (".py", ".pyc")
+            and "__pycache__" not in p.parts}
+    missing = sorted(str(p.relative_to(root)) for p in data - declared)
+    assert not missing, f"not in pyproject.toml [tool.setuptools.package-data]: {missing}"
