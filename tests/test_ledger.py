@@ -247,6 +247,22 @@ def test_torn_tail_is_repaired_and_recorded(home, ledger):
     assert after.head == {"seq": 3, "hash": e["hash"]}
 
 
+def test_torn_tail_is_repaired_when_the_state_was_read_first(home, ledger):
+    # a restarted agent reads its state (open items, counts) before its first append;
+    # that read must not make the append skip the repair of a torn last line
+    ledger.append("agent_start")
+    with open(home.ledger_path, "ab") as f:
+        f.write(b'{"v":2,"seq":1,"prev":"ab')
+    fresh = Ledger(home, Keystore(home).device_key())
+    fresh.open_items()
+    fresh.state()
+    fresh.append("agent_start")
+    assert [x["event"] for x in fresh.entries()] == ["agent_start", "repaired", "agent_start"]
+    assert fresh.damaged == 0
+    r = verify_ledger(home, retention_limit_s=30)
+    assert r.ok, r.problems
+
+
 def test_whole_entry_missing_only_its_newline_is_kept(home, ledger):
     ledger.append("agent_start")
     ledger.append("resumed")

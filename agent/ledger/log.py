@@ -305,6 +305,7 @@ class Ledger:
         self._lock = _path_lock(self.path)
         self._state: LogState | None = None
         self._tail: tuple[int, int] | None = None  # (inode, size) the state was read up to
+        self._torn = b""  # an incomplete last line found by that read (repaired by the next append)
         self._damaged_seen = 0
         self._reloaded = False  # the last _sync did not continue from this object's own appends
 
@@ -326,7 +327,7 @@ class Ledger:
         """Bring the running state up to the file's end; returns (state, torn tail bytes)."""
         st = os.fstat(fd)
         if self._state is not None and self._tail == (st.st_ino, st.st_size):
-            return self._state, b""
+            return self._state, self._torn  # a torn tail seen by a read stays to be repaired
         self._reloaded = True
         state = None
         if self._state is not None and self._tail and self._tail[0] == st.st_ino \
@@ -347,6 +348,7 @@ class Ledger:
         torn = self._replay(fd, state, st.st_size)
         self._state = state
         self._tail = (st.st_ino, st.st_size)
+        self._torn = torn
         return state, torn
 
     def _line_ends_with(self, fd, state: LogState) -> bool:
@@ -486,12 +488,12 @@ class Ledger:
                     state.offset += len(line) + 1
                     state.apply(entry, line)
                 st = os.fstat(fd)
-                self._tail = (st.st_ino, st.st_size)
+                self._tail, self._torn = (st.st_ino, st.st_size), b""
                 self._write_anchor(seq, prev)
                 if state.size // CHECKPOINT_EVERY != before:
                     self._write_checkpoint(state)
             except BaseException:
-                self._state, self._tail = None, None  # re-read on the next call
+                self._state, self._tail, self._torn = None, None, b""  # re-read on the next call
                 raise
             finally:
                 os.close(fd)
