@@ -323,3 +323,49 @@ def test_default_grouping_has_at_most_three_classes(demo):
 def test_unknown_weights_scheme_is_refused(demo):
     with pytest.raises(ValueError, match="expected one of"):
         ModelSpec.full(demo[2], weights="six")
+
+
+# ------------------------------------------------------------- shared fits (speed, issue 11 item 6)
+def test_centrality_rival_reused_from_the_nested_fit_equals_its_own_fit(demo):
+    # With one restart fit_model reuses the chosen model's nested beta = 0 fits as
+    # the centrality rival; they must equal the rival fitted on its own
+    # (the same cross-validation, run separately; common practice, no source).
+    from agent.model.baselines import EigenModel
+    from agent.model.crossval import cross_validate
+    from agent.model.rivals import centrality_spec
+
+    eps, g, mg, _, rows = demo
+    f = fit_model(g, rows, None, seed=0, episodes=eps, folds=3, restarts=1, recovery_sims=0,
+                  weights="grouped", n_jobs=1)
+    own = cross_validate({"centrality": EigenModel(centrality_spec(mg, "grouped"), restarts=1, seed=2)},
+                         TrialDesign(mg, rows), 3, 0, n_jobs=1, in_sample=True)
+    assert f.baselines["centrality"]["pooled"]["loglik"]["value"] == pytest.approx(
+        own["centrality"]["pooled"]["loglik"]["value"], abs=1e-12)
+    for a, b in zip(f.baselines["centrality"]["folds"], own["centrality"]["folds"], strict=True):
+        assert a["loglik"]["value"] == pytest.approx(b["loglik"]["value"], abs=1e-12)
+    theta = own["_fitted"]["centrality"].params()["theta"]
+    assert f.params["rivals"]["centrality"]["tau"] == pytest.approx(
+        own["_fitted"]["centrality"].params()["tau"], rel=1e-12)
+    for key, val in theta.items():
+        assert f.params["rivals"]["centrality"]["theta"][key] == pytest.approx(val, rel=1e-12)
+
+
+def test_one_restart_fit_does_not_depend_on_the_random_stream(demo):
+    # restarts = 1 starts only at the box centre (and the nested start), so the
+    # seed of the draws cannot change the fit (common practice, no source).
+    from agent.model.baselines import EigenModel
+
+    _, _, mg, _, rows = demo
+    design = TrialDesign(mg, rows)
+    a = EigenModel(ModelSpec.full(mg), restarts=1).fit(design, rng=np.random.default_rng(1))
+    b = EigenModel(ModelSpec.full(mg), restarts=1).fit(design, rng=np.random.default_rng(2))
+    np.testing.assert_array_equal(a.p, b.p)
+    assert a.nested is not None and a.nested.spec.fit_beta is False
+
+
+def test_score_fitted_refuses_a_wrong_number_of_folds(demo):
+    from agent.model.crossval import score_fitted
+
+    _, _, mg, _, rows = demo
+    with pytest.raises(ValueError, match="one per fold"):
+        score_fitted([], TrialDesign(mg, rows), 3, 0)

@@ -178,6 +178,7 @@ class EigenModel:
         self.seed = int(seed)
         self.maxiter = int(maxiter)
         self.p: Any = None
+        self.nested: EigenModel | None = None  # the fitted beta = 0 model behind the nested start
         self.nll: float | None = None
         self.objective: float | None = None
         self.runs: list[dict] = []
@@ -194,10 +195,14 @@ class EigenModel:
         # disconnected graph the activation jumps between components as β moves,
         # the objective is piecewise smooth, and a local method only finds the
         # piece it starts in.  The box centre is always one of the starts.
-        draws = [self.spec.start(rng) for _ in range(SCREEN * self.restarts)]
-        values = np.array([negative_log_likelihood(self.spec, cache, q) + self.spec.penalty(q)[0]
-                           for q in draws])
-        best_draws = [draws[i] for i in np.argsort(values)[: self.restarts - 1]]
+        # With one restart no draw is kept (the centre is the only seeded start),
+        # so the screen is skipped: the same fit without SCREEN wasted solves.
+        best_draws: list = []
+        if self.restarts > 1:
+            draws = [self.spec.start(rng) for _ in range(SCREEN * self.restarts)]
+            values = np.array([negative_log_likelihood(self.spec, cache, q) + self.spec.penalty(q)[0]
+                               for q in draws])
+            best_draws = [draws[i] for i in np.argsort(values)[: self.restarts - 1]]
         starts = [self.spec.start()] + best_draws + self._nested_starts(design, rng)
         best: Any = None
         self.runs = []
@@ -223,12 +228,14 @@ class EigenModel:
         the nested one (up to the prior).
         """
         spec = self.spec
+        self.nested = None
         if not (spec.fit_beta and spec.free):
             return []
         sub = ModelSpec(spec.graph, weights=spec.weights, reference=spec.reference, zero=spec.zero,
                         fit_beta=False, beta_fixed=0.0, name="nested", prior=spec.prior,
                         beta_relative=spec.beta_relative)
         inner = EigenModel(sub, restarts=1, seed=self.seed, maxiter=self.maxiter).fit(design, rng=rng)
+        self.nested = inner
         theta_p, tau_p = inner.p[:-1], inner.p[-1]
         return [np.concatenate([theta_p, [LOG_BETA_NESTED_START], [tau_p]])]
 

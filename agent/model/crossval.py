@@ -136,7 +136,7 @@ def run_fits(jobs: list, n_jobs: int | None = None) -> list:
 
 
 def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0, *,
-                   n_jobs: int | None = 1, in_sample: bool = False) -> dict:
+                   n_jobs: int | None = 1, in_sample: bool = False, keep_fits: bool = False) -> dict:
     """Fit every predictor on k-1 folds and score it on the held-out fold.
 
     Returns ``{name: {"folds": [...], "pooled": {...}}}`` plus, under
@@ -144,8 +144,10 @@ def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0,
     held-out log-probabilities and under ``"_rows"`` the held-out rows.  Pooled
     metrics are over all held-out predictions together.  With ``in_sample``
     each predictor is also fitted on every answered trial, returned under
-    ``"_fitted"`` (name -> fitted predictor).  Fits run in ``n_jobs`` worker
-    processes (None: every usable core).
+    ``"_fitted"`` (name -> fitted predictor).  With ``keep_fits`` the fitted
+    predictor of every fold is returned under ``"_fold_fits"`` (name -> list by
+    fold), for :func:`score_fitted`.  Fits run in ``n_jobs`` worker processes
+    (None: every usable core).
     """
     import copy
 
@@ -165,30 +167,61 @@ def cross_validate(predictors: dict, design: TrialDesign, k: int, seed: int = 0,
     out: dict = {}
     lps: dict[str, Any] = {}
     fitted: dict[str, Any] = {}
+    fold_fits: dict[str, list] = {}
     for name in predictors:
-        pooled_lp = np.full(design.opt_mask.shape, -np.inf)
-        per_fold = []
+        by_fold: dict[int, Any] = {}
+        fits: list = [None] * len(folds)
         for (nm, fold), (fit, lp_test) in zip(where, results, strict=True):
             if nm != name:
                 continue
             if fold is None:
                 fitted[name] = fit
                 continue
-            test = folds[fold]
-            pooled_lp[test] = lp_test
-            m = metrics(pooled_lp, design, np.random.default_rng([seed, fold, 7]), rows=test)
-            m.pop("_per_trial")
-            m["fold"] = fold
-            m["days"] = sorted(set(design.dates[test].astype(str)))
-            per_fold.append(m)
-        rows = np.concatenate(folds)
-        pooled = metrics(pooled_lp, design, np.random.default_rng([seed, 99]), rows=rows)
-        pooled.pop("_per_trial")
-        out[name] = {"folds": per_fold, "pooled": pooled}
-        lps[name] = pooled_lp
+            by_fold[fold] = lp_test
+            fits[fold] = fit
+        out[name], lps[name] = _score(by_fold, folds, design, seed)
+        fold_fits[name] = fits
     out["_folds"] = [len(f) for f in folds]
     out["_lp"] = lps
     out["_rows"] = np.concatenate(folds)
     if in_sample:
         out["_fitted"] = fitted
+    if keep_fits:
+        out["_fold_fits"] = fold_fits
     return out
+
+
+def _score(lp_by_fold: dict, folds: list[np.ndarray], design: TrialDesign, seed: int):
+    """Per-fold and pooled metrics from each fold's held-out log-probabilities."""
+    pooled_lp = np.full(design.opt_mask.shape, -np.inf)
+    per_fold = []
+    for fold in sorted(lp_by_fold):
+        test = folds[fold]
+        pooled_lp[test] = lp_by_fold[fold]
+        m = metrics(pooled_lp, design, np.random.default_rng([seed, fold, 7]), rows=test)
+        m.pop("_per_trial")
+        m["fold"] = fold
+        m["days"] = sorted(set(design.dates[test].astype(str)))
+        per_fold.append(m)
+    rows = np.concatenate(folds)
+    pooled = metrics(pooled_lp, design, np.random.default_rng([seed, 99]), rows=rows)
+    pooled.pop("_per_trial")
+    return {"folds": per_fold, "pooled": pooled}, pooled_lp
+
+
+def score_fitted(fold_fits: list, design: TrialDesign, k: int, seed: int = 0) -> tuple[dict, np.ndarray]:
+    """Held-out metrics of predictors already fitted on the folds of :func:`cross_validate`.
+
+    ``fold_fits[f]`` must have been fitted on the training trials of fold ``f``
+    of ``day_folds(design, k, seed)`` (for example a by-product of another
+    predictor's fits, see ``EigenModel.nested``).  Returns the same
+    ``{"folds", "pooled"}`` record as :func:`cross_validate` and the pooled
+    held-out log-probabilities.
+    """
+    folds = day_folds(design, k, seed)
+    if len(fold_fits) != len(folds):
+        raise ValueError(f"score_fitted: expected {len(folds)} fitted predictors (one per fold), "
+                         f"got {len(fold_fits)}")
+    lp_by_fold = {f: fit.log_probabilities(design.subset(test))
+                  for f, (fit, test) in enumerate(zip(fold_fits, folds, strict=True))}
+    return _score(lp_by_fold, folds, design, seed)

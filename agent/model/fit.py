@@ -16,7 +16,7 @@ from scipy.sparse.csgraph import connected_components
 
 from ..errors import DataError, StateError
 from .compare import information_criteria, paired_differences
-from .crossval import chance_metrics, cross_validate
+from .crossval import chance_metrics, cross_validate, score_fitted
 from .rivals import LABELS as RIVAL_LABELS
 from .recovery import recover, recovery_summary
 from .rivals import centrality_spec, model_and_rivals
@@ -194,6 +194,21 @@ def fit_model(graph, trials_with_answers, policy=None, seed: int = 0, *, episode
                           n_jobs, recovery_sims)
 
 
+def _adopt(pred: EigenModel, fitted: EigenModel) -> EigenModel:
+    """``pred`` (unfitted) carrying the fit of ``fitted``, an equivalent spec fitted the same way."""
+    import copy
+
+    if (pred.spec.free != fitted.spec.free or pred.spec.fit_beta != fitted.spec.fit_beta
+            or pred.spec.beta_fixed != fitted.spec.beta_fixed or pred.spec.prior != fitted.spec.prior
+            or pred.spec.reference != fitted.spec.reference or tuple(pred.spec.zero) != tuple(fitted.spec.zero)
+            or pred.spec.weights != fitted.spec.weights):
+        raise ValueError(f"{pred.name}: the fitted {fitted.name!r} model has a different specification")
+    out = copy.copy(pred)
+    out.p, out.objective, out.nll = fitted.p, fitted.objective, fitted.nll
+    out.converged, out.n_eigh, out.runs = fitted.converged, fitted.n_eigh, list(fitted.runs)
+    return out
+
+
 def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restarts, weights,
                n_jobs, recovery_sims) -> FitResult:
     t0 = time.perf_counter()
@@ -224,8 +239,9 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
     preds = {f"model:{w}": EigenModel(ModelSpec.full(mg, weights=w), restarts=r, seed=seed)
              for w in candidates}
     preds.update({k: v for k, v in rivals.items() if k not in ("model", "centrality")})
-    cv_all = cross_validate(preds, design, k, seed, n_jobs=n_jobs, in_sample=True)
+    cv_all = cross_validate(preds, design, k, seed, n_jobs=n_jobs, in_sample=True, keep_fits=True)
     full = cv_all.pop("_fitted")
+    fold_fits = cv_all.pop("_fold_fits")
     answered = design.subset(np.flatnonzero(design.answered))
     t_full = time.perf_counter() - t0
 
@@ -254,11 +270,20 @@ def _fit_model(graph, trials_with_answers, policy, seed, episodes, folds, restar
                 "rule": GROUPING_RULE, "candidates": table}
 
     model = full[f"model:{chosen}"]
-    cen = cross_validate({"centrality": EigenModel(centrality_spec(mg, chosen), restarts=r, seed=seed + 2)},
-                         design, k, seed, n_jobs=n_jobs, in_sample=True)
-    full["centrality"] = cen.pop("_fitted")["centrality"]
-    cv_all["_lp"]["centrality"] = cen["_lp"]["centrality"]
-    cv_all["centrality"] = cen["centrality"]
+    cen_pred = EigenModel(centrality_spec(mg, chosen), restarts=r, seed=seed + 2)
+    nested = [fit.nested for fit in [model, *fold_fits[f"model:{chosen}"]]]
+    if r == 1 and all(fit is not None for fit in nested):
+        # With one restart the centrality rival's fit (centre start, no screen)
+        # is exactly the nested beta = 0 fit behind the chosen model's nested
+        # start, on the same training trials: reuse it instead of refitting.
+        full["centrality"] = _adopt(cen_pred, nested[0])
+        cv_all["centrality"], cv_all["_lp"]["centrality"] = score_fitted(
+            [_adopt(cen_pred, fit) for fit in nested[1:]], design, k, seed)
+    else:
+        cen = cross_validate({"centrality": cen_pred}, design, k, seed, n_jobs=n_jobs, in_sample=True)
+        full["centrality"] = cen.pop("_fitted")["centrality"]
+        cv_all["_lp"]["centrality"] = cen["_lp"]["centrality"]
+        cv_all["centrality"] = cen["centrality"]
     order = ["model", *[n for n in rivals if n != "model"]]
     cv_all["model"] = cv_all[f"model:{chosen}"]
     cv_all["_lp"]["model"] = cv_all["_lp"][f"model:{chosen}"]
