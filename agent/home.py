@@ -29,10 +29,7 @@ from pathlib import Path
 from .errors import StateError
 from .fsutil import DIR_MODE, FILE_MODE, LockHeld, file_lock, write_private
 
-# write_private is agent.fsutil's; intake/ledgerlog.py still imports it from here
-# (to be switched by the intake work), so the name is not yet removed.
-__all__ = ["DIR_MODE", "FILE_MODE", "SUBDIRS", "Home", "default_home_path", "overwrite_and_unlink",
-           "write_private"]
+__all__ = ["DIR_MODE", "FILE_MODE", "SUBDIRS", "Home", "default_home_path", "overwrite_and_unlink"]
 
 SUBDIRS = ("inbox", "outbox", "keys", "logs", "state", "cache", "cache/numba")
 

@@ -95,7 +95,7 @@ def bench_startup_and_verify(root: Path, sizes) -> dict:
     """Issue 15: start-up and status independent of ledger length; verification on all cores."""
     import shutil
 
-    from agent.intake.pipeline import intake_counts
+    from agent.intake.report import intake_counts
     from agent.ledger.log import CHECKPOINT_NAME
 
     out = {}

@@ -104,7 +104,7 @@ def test_part_file_inside_the_window_waits(hp):
 
 
 def test_status_counts_subfolders_and_partials(hp):
-    from agent.intake.pipeline import intake_counts
+    from agent.intake.report import intake_counts
 
     h, policy = hp
     (h.inbox / "d").mkdir()
@@ -131,7 +131,7 @@ def test_garbage_ledger_line_does_not_stop_destruction(hp):
     alarm = read_alarm(h)
     if alarm is not None:                                    # the ledger refused to extend the damaged line
         assert alarm["reason"] == "ledger_unwritable" and alarm["pending"] >= 1
-    from agent.intake.pipeline import intake_counts
+    from agent.intake.report import intake_counts
 
     assert intake_counts(h, policy)["alarm"] == alarm
 

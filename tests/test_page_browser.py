@@ -233,7 +233,7 @@ def test_3c_every_page_reflows_at_200_percent(world, browser):
 
 
 def test_4_mood_answer_is_taken_in_and_destroyed(world, browser):
-    from agent.intake.pipeline import intake_counts
+    from agent.intake.report import intake_counts
     from agent.policy import load_policy
 
     root = world["root"]

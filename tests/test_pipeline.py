@@ -136,7 +136,7 @@ def test_scan_orders_oldest_deadline_first(h, policy):
 
 def test_backdated_mtime_does_not_hide_exposure(h, policy):
     # utime can back-date mtime but not ctime: complete_at follows the later of the two.
-    from agent.intake.pipeline import complete_time
+    from agent.intake.scan import complete_time
 
     p = drop(h.inbox, "x.mood.csv", mood_csv_bytes(policy))
     os.utime(p, (T0, T0))
@@ -146,7 +146,7 @@ def test_backdated_mtime_does_not_hide_exposure(h, policy):
 
 
 def test_future_timestamp_is_capped_at_judgement(h, policy):
-    from agent.intake.pipeline import complete_time
+    from agent.intake.scan import complete_time
 
     p = drop(h.inbox, "x.mood.csv", mood_csv_bytes(policy))
     judged = time.time()
@@ -179,7 +179,7 @@ def test_reconcile_closes_item_unlinked_before_destroyed_entry(h, policy):
 
 
 def test_intake_counts_from_ledger_and_inbox(h, policy):
-    from agent.intake.pipeline import intake_counts
+    from agent.intake.report import intake_counts
 
     drop(h.inbox, f"snd_{stamp(T0)}.wav", wav_bytes())
     drop(h.inbox, "bad.mood.csv", b"time\n")
@@ -223,7 +223,7 @@ def test_exposure_percentiles_match_numpy():
     # Hyndman and Fan type 7 is numpy.percentile's default ("linear").
     import numpy as np
 
-    from agent.intake.pipeline import exposure_stats
+    from agent.intake.report import exposure_stats
 
     xs = [0.3, 5.0, 0.01, 2.2, 9.9, 0.7, 1.1]
     got = exposure_stats(xs)

@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from agent.intake.geo import EARTH_RADIUS_M, haversine_m, mean_position
+from agent.geo import EARTH_RADIUS_M, haversine_m
+from agent.intake.geo import mean_position
 from agent.intake.staypoints import extract_stays
 
 T0 = 1793800800.0

@@ -169,7 +169,8 @@ def participant_enrols(ctx: DemoContext) -> None:
 def collect_days(ctx: DemoContext) -> None:
     from ..demo.generator import Scenario, simulate_days, write_day, write_truth
     from ..home import Home
-    from ..intake.pipeline import drain, intake_counts
+    from ..intake.pipeline import drain
+    from ..intake.report import intake_counts
 
     home = Home(ctx.home_dir)
     policy = home.load_policy()

@@ -1,6 +1,6 @@
 """Positions for stay points: the mean of a small cluster of fixes.
 
-Distances come from :mod:`agent.geo` (re-exported here for the intake modules).
+Distances come from :mod:`agent.geo`.
 """
 
 from __future__ import annotations
@@ -8,9 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..geo import EARTH_RADIUS_M, haversine_m  # the one haversine (agent/geo.py)
-
-__all__ = ["EARTH_RADIUS_M", "haversine_m", "mean_position"]
+__all__ = ["mean_position"]
 
 
 def mean_position(lat, lon):

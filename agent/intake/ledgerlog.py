@@ -193,7 +193,7 @@ def read_alarm(home) -> dict | None:
 
 def _write_state(path, doc) -> None:
     """Best effort: on a full disk this fails quietly (the alarm is also in memory and the log)."""
-    from ..home import write_private
+    from ..fsutil import write_private
 
     with contextlib.suppress(OSError):
         write_private(path, json.dumps(doc, sort_keys=True).encode())
@@ -242,7 +242,7 @@ class ParseMarks:
         self._lock = threading.Lock()
         self.fd = -1
         try:
-            from ..home import write_private
+            from ..fsutil import write_private
 
             write_private(self.path, "".join(f"={i} {n} {self.tags.get(i, '-')}\n"
                                              for i, n in self.counts.items()).encode("ascii"))

@@ -48,8 +48,9 @@ from dataclasses import dataclass, field
 from ..errors import LetheError, RejectedInput
 from ..home import Home
 from .item import classify
-from .safety import InboxDir, UnsafeEntry, entry_type
-from .scan import DESTROYING_PREFIX, Candidate, complete_time, unfinished_reason  # noqa: F401
+from ..destroy import entry_kind
+from .safety import InboxDir, UnsafeEntry
+from .scan import DESTROYING_PREFIX, complete_time, unfinished_reason
 from .scan import scan as scan_inbox
 
 log = logging.getLogger("lethe.intake")
@@ -389,7 +390,7 @@ class Intake:
                 if o.status == "rejected":
                     steps.append(("rejected", {"item": o.item, "kind": o.kind, "reason": o.reason}))
                     log.warning("rejected item=%s kind=%s reason=%s type=%s", o.item[:12], o.kind,
-                                o.reason, entry_type(w.lst))
+                                o.reason, entry_kind(w.lst))
                 else:
                     steps.append(("featurised", {"item": o.item, "kind": o.kind, "rows": o.rows}))
             self.log.write(steps)
@@ -791,7 +792,6 @@ def open_items(ledger) -> dict[str, dict]:
 
 
 from .ledgerlog import LedgerWriter, ParseMarks  # noqa: E402  (after Intake: it imports nothing from here)
-from .report import DrainReport, exposure_stats, intake_counts  # noqa: E402,F401  (compatibility)
 
 
 _FROM_DRAIN = ("BATCH_BYTES", "BATCH_FILES", "STUCK_PASSES", "batches", "drain", "process_safely")

@@ -54,8 +54,6 @@ class UnsafeEntry(RejectedInput):
     """An inbox entry refused for what it *is* (link, pipe, device, size), not its content."""
 
 
-#: ``'file'``, ``'dir'``, ``'symlink'``, ``'fifo'``, ``'socket'`` or ``'device'`` (one definition, in destroy).
-entry_type = entry_kind
 
 
 def same_file(a: os.stat_result, b: os.stat_result, *, strict: bool = False) -> bool:
@@ -112,7 +110,7 @@ class InboxDir:
             raise StateError(f"{self.path}: the inbox does not exist; run 'lethe init' first") from None
         if not stat.S_ISDIR(st.st_mode):
             raise StateError(f"{self.path}: the inbox must be a real directory, "
-                             f"found a {entry_type(st)}; refusing to follow it")
+                             f"found a {entry_kind(st)}; refusing to follow it")
         self.fd = os.open(self.path, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | os.O_CLOEXEC)
         self.st = os.fstat(self.fd)
 
@@ -182,7 +180,7 @@ class InboxDir:
 
     def refusal(self, name: str, st: os.stat_result) -> UnsafeEntry | None:
         """Why ``name`` must not be read, judged from its ``lstat``; ``None`` if it may be."""
-        t = entry_type(st)
+        t = entry_kind(st)
         shown = self.display(name)
         if t in ("symlink", "fifo", "socket", "device"):
             return UnsafeEntry(shown, t, UNSAFE_REASONS[t])
@@ -209,7 +207,7 @@ class InboxDir:
         """
         shown = self.display(name)
         if not stat.S_ISREG(lst.st_mode):
-            raise UnsafeEntry(shown, entry_type(lst) if entry_type(lst) != "dir" else "directory",
+            raise UnsafeEntry(shown, entry_kind(lst) if entry_kind(lst) != "dir" else "directory",
                               "not a regular file")
         with self.parent(name) as (dfd, base):
             if dfd is None:
@@ -237,7 +235,7 @@ class InboxDir:
         problem = None
         fst = opened.st
         if not stat.S_ISREG(fst.st_mode):
-            problem = UnsafeEntry(shown, "changed", f"became a {entry_type(fst)} before it was opened")
+            problem = UnsafeEntry(shown, "changed", f"became a {entry_kind(fst)} before it was opened")
         elif not same_file(fst, lst, strict=True):
             problem = UnsafeEntry(shown, "changed", "was replaced between lstat and open")
         elif fst.st_nlink != 1:

@@ -19,7 +19,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .geo import haversine_m, mean_position
+from ..geo import haversine_m
+from .geo import mean_position
 
 
 def extract_stays(fixes, radius_m: float, min_minutes: float, *, flush: bool = False,

@@ -39,7 +39,8 @@ from dataclasses import dataclass, field
 
 from .drain import process_safely
 from .item import classify
-from .pipeline import DrainReport, Intake
+from .pipeline import Intake
+from .report import DrainReport
 from .report import ReportBuilder
 from .scan import unfinished_reason, walk
 

@@ -20,7 +20,7 @@ def agent_running(home: Home) -> bool | None:
 
 
 def collect_status(home, now: float | None = None, passphrase=None) -> dict:
-    from ..intake.pipeline import intake_counts
+    from ..intake.report import intake_counts
     from ..pause import read_pause, is_paused
 
     home = home if isinstance(home, Home) else Home(home)

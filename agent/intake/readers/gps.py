@@ -16,7 +16,7 @@ import math
 from collections import Counter
 from datetime import datetime, UTC
 
-from ..geo import haversine_m
+from ...geo import haversine_m
 from ..item import ItemResult
 from ._common import decode_text, now_or, parse_iso, plausible_time, reject
 

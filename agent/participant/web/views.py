@@ -129,7 +129,7 @@ def write_mood_answer(home: Home, policy, ratings: dict[str, int], now: float | 
 
 
 def mood_counts(home: Home) -> dict:
-    from ...intake.pipeline import intake_counts
+    from ...intake.report import intake_counts
 
     ic = intake_counts(home)
     return {k: int(ic[k].get("mood", 0)) for k in ("received", "featurised", "rejected", "destroyed")}
