@@ -48,7 +48,7 @@ __all__ = ["ContractError", "SCHEMA_NAMES", "apply_defaults", "check_header", "i
            "schema", "validate"]
 
 SCHEMA_NAMES = ("policy", "board-limits", "study-card", "enrolment", "withdrawal", "payload", "scenario",
-                "bundle-header", "ledger-entry")
+                "bundle-header", "ledger-entry", "server-api")
 
 
 class ContractError(DataError):
