@@ -81,3 +81,21 @@ def test_an_enrolment_request_meets_the_contract(world):
 
     doc = make_enrolment(world.study.card, world.study.policy, "pBbbb2222", Ed25519PrivateKey.generate())
     check("enrolment-request", {"invitation": world.store.invite(1)[0], "enrolment": doc})
+
+
+@pytest.mark.parametrize(("body", "key"), [
+    ([], "<document>"),
+    ({"invitation": "x"}, "enrolment"),
+    ({"invitation": "x", "enrolment": {}, "note": 1}, "note"),
+    ({"invitation": 5, "enrolment": {}}, "invitation"),
+    ({"invitation": "c0de" * 26, "enrolment": {}}, "invitation"),
+])
+def test_an_enrolment_request_off_the_contract_is_refused_naming_the_key(world, body, key):
+    before = world.store.counts()
+    r = world.post_json("/v1/enrolments", body)
+    assert r.status_code == 400, r.text
+    check("error", r.json())
+    message = r.json()["error"]["message"]
+    assert r.json()["error"]["code"] == "invalid" and f"[{key}]" in message
+    assert "c0dec0de" not in message  # an invitation code is never echoed
+    assert world.store.counts() == before

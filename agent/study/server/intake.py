@@ -142,12 +142,14 @@ def accept_bundle(ctx: StudyContext, data: bytes, source: str) -> tuple[int, dic
 def accept_enrolment(ctx: StudyContext, doc, source: str) -> tuple[int, dict]:
     from ..card import verify_enrolment
 
-    if not isinstance(doc, dict) or set(doc) != {"invitation", "enrolment"}:
-        raise UploadError(400, "invalid", f"{source}: expected a JSON object with exactly 'invitation' and "
-                                          f"'enrolment'")
+    from ... import contracts
+
+    # the request's shape is the server-api contract's "enrolment-request" part
+    for key, message in contracts.iter_problems("server-api", doc, part="enrolment-request"):
+        if key == "invitation":  # never echo a code (it may be a real one, slightly mistyped)
+            message = "expected the invitation code as a string of 1-100 characters"
+        raise UploadError(400, "invalid", f"{source}: [{key or '<document>'}] {message}")
     code = doc["invitation"]
-    if not isinstance(code, str) or not 1 <= len(code) <= 100:
-        raise UploadError(400, "invalid", f"{source}: [invitation] expected the invitation code as a string")
     try:
         e = verify_enrolment(doc["enrolment"], source)
     except LetheError as err:
