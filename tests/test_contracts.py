@@ -147,3 +147,12 @@ def test_unexpected_map_key_names_the_key():
     p["counts"]["hours_by_kind"]["gps"] = 1
     with pytest.raises(ContractError, match=r"\[counts.hours_by_kind.gps\] unexpected key: expected a non-time"):
         validate("payload", p, "b.json")
+
+
+def test_a_doc_without_its_generated_block_markers_is_refused_by_name():
+    from agent.contracts import docblock
+
+    with pytest.raises(ValueError, match=r"docs/x\.md has no generated block markers"):
+        docblock.splice("no markers here", "<!-- b -->", "<!-- e -->", "<!-- b -->t<!-- e -->", name="docs/x.md")
+    assert docblock.splice("a<!-- b -->old<!-- e -->z", "<!-- b -->", "<!-- e -->", "<!-- b -->new<!-- e -->",
+                           name="docs/x.md") == "a<!-- b -->new<!-- e -->z"
