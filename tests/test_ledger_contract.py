@@ -22,24 +22,17 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from jsonschema import Draft202012Validator
 
 from agent import contracts
+from stepping_clock import T0
+from stepping_clock import SteppingClock as Clock
+
 from agent.keystore import Keystore
 from agent.ledger import LEDGER_EVENTS, ZERO_HASH, EventError, Ledger, verify_ledger
 
-T0 = 1_790_000_000.0
 V1 = Path(__file__).resolve().parent / "data" / "ledger-v1"
 V1_KEY = Ed25519PrivateKey.from_private_bytes(
     hashlib.sha256(b"lethe ledger v1 fixture (a test key, not a secret)").digest())
 SCHEMA = Path(__file__).resolve().parent.parent / "agent" / "contracts" / "schemas" / "ledger-entry.json"
 IT = "0123456789abcdef0123456789abcdef"
-
-
-class Clock:
-    def __init__(self):
-        self.t = T0
-
-    def __call__(self):
-        self.t += 0.5
-        return self.t
 
 
 @pytest.fixture

@@ -9,20 +9,13 @@ import shutil
 import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
+from stepping_clock import T0
+from stepping_clock import SteppingClock as Clock
+
 from agent.keystore import Keystore, device_key_id
 from agent.ledger import Ledger, entry_hash, verify_ledger
 
-T0 = 1_790_000_000.0
 N_ITEMS = 4  # 1 agent_start + 3 entries per item = 13 entries, seq 0..12
-
-
-class Clock:
-    def __init__(self):
-        self.t = T0
-
-    def __call__(self):
-        self.t += 0.5
-        return self.t
 
 
 @pytest.fixture
