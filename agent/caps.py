@@ -163,6 +163,17 @@ def mutual_top_m(rows, cols, count, first, n_nodes: int, degree_cap: int) -> np.
     return top[:e] & top[e:]
 
 
+def _pair_index(rows, cols, n_nodes: int) -> tuple[dict[tuple[int, int], int], list[list[int]]]:
+    """``eid[(i, j)] = eid[(j, i)] = k`` for pair ``k``, and every node's neighbours in pair order."""
+    eid: dict[tuple[int, int], int] = {}
+    nbrs: list[list[int]] = [[] for _ in range(int(n_nodes))]
+    for k, (i, j) in enumerate(zip(np.asarray(rows).tolist(), np.asarray(cols).tolist(), strict=True)):
+        eid[(i, j)] = eid[(j, i)] = k
+        nbrs[i].append(j)
+        nbrs[j].append(i)
+    return eid, nbrs
+
+
 def _routine_rows(rows, cols, n_nodes: int, node_kind_name, hours=None, via=None):
     """The routine constraints of the b-matching MILP as sparse rows (see :func:`b_matching`).
 
@@ -190,12 +201,7 @@ def _routine_rows(rows, cols, n_nodes: int, node_kind_name, hours=None, via=None
     linked = np.zeros(int(n_nodes), dtype=bool)
     linked[rows] = True
     linked[cols] = True
-    eid: dict[tuple[int, int], int] = {}
-    nbrs: list[list[int]] = [[] for _ in range(int(n_nodes))]
-    for k, (i, j) in enumerate(zip(rows.tolist(), cols.tolist(), strict=False)):
-        eid[(i, j)] = eid[(j, i)] = k
-        nbrs[i].append(j)
-        nbrs[j].append(i)
+    eid, nbrs = _pair_index(rows, cols, int(n_nodes))
     y_r: list[int] = []
     y_c: list[int] = []
     y_v: list[float] = []
@@ -485,12 +491,7 @@ def _repair_routine(rows, cols, w, n, m, inc, linked, kind, keep, method, opts):
     from scipy.optimize import linprog
 
     e = len(rows)
-    eid: dict[tuple[int, int], int] = {}
-    nbrs: list[list[int]] = [[] for _ in range(n)]
-    for k, (i, j) in enumerate(zip(rows.tolist(), cols.tolist(), strict=False)):
-        eid[(i, j)] = eid[(j, i)] = k
-        nbrs[i].append(j)
-        nbrs[j].append(i)
+    eid, nbrs = _pair_index(rows, cols, n)
     r_list, c_list = rows.tolist(), cols.tolist()
     use_min = linked if linked.any() else None
     a_ub = inc if use_min is None else sp.vstack([inc, -inc[np.flatnonzero(linked)]]).tocsr()
@@ -566,12 +567,7 @@ def routine_greedy(rows, cols, count, first, n_nodes: int, degree_cap: int,
     kind = [str(k) for k in node_kind_name]
     rank = np.empty(e, dtype=np.int64)
     rank[order_strongest(first, count)] = np.arange(e)  # 0 = strongest
-    eid: dict[tuple[int, int], int] = {}
-    nbrs: list[list[int]] = [[] for _ in range(n)]
-    for k, (i, j) in enumerate(zip(rows.tolist(), cols.tolist(), strict=False)):
-        eid[(i, j)] = eid[(j, i)] = k
-        nbrs[i].append(j)
-        nbrs[j].append(i)
+    eid, nbrs = _pair_index(rows, cols, n)
     for v in range(n):  # strongest neighbour first
         nbrs[v].sort(key=lambda u, v=v: int(rank[eid[(v, u)]]))  # type: ignore[misc]
     keep = np.zeros(e, dtype=bool)
